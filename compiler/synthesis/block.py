@@ -1,0 +1,116 @@
+"""The diagonal block of one layer on physical qubits: terms in, CNOT+RZ circuit out."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Sequence
+
+import networkx as nx
+from qiskit import QuantumCircuit
+
+from compiler.synthesis.parity import ParityNetwork, synthesize_parities
+from compiler.synthesis.steiner import SteinerCost, all_pairs_distances
+
+__all__ = ["Block", "Region", "make_region", "synthesize_block", "block_circuit"]
+
+
+@dataclass(frozen=True)
+class Region:
+    """The physical qubits a block may use (a connected set) and their adjacency."""
+
+    qubits: tuple[int, ...]            # wire index -> physical qubit
+    adj: tuple[tuple[int, ...], ...]   # adjacency over wire indices
+    cost: SteinerCost
+
+    def wire(self, physical: int) -> int:
+        return self.qubits.index(physical)
+
+
+def make_region(graph: nx.Graph, used: Sequence[int]) -> Region:
+    """The used qubits plus, if they are not connected, the nodes of a Steiner tree joining them.
+
+    The extra qubits hold |0> and act as relays; they end in |0> because the block ends in a
+    permutation of the region's wires.
+    """
+    used = sorted(set(used))
+    nodes = set(used)
+    if len(used) > 1 and not nx.is_connected(graph.subgraph(used)):
+        from networkx.algorithms.approximation import steiner_tree
+
+        nodes |= set(steiner_tree(graph, used, method="mehlhorn").nodes)
+    qubits = tuple(sorted(nodes))
+    index = {q: i for i, q in enumerate(qubits)}
+    adj = tuple(tuple(sorted(index[v] for v in graph[q] if v in index)) for q in qubits)
+    dist = all_pairs_distances([list(a) for a in adj])
+    return Region(qubits, adj, SteinerCost(dist))
+
+
+@dataclass(frozen=True)
+class Block:
+    """A synthesised block: gates on physical qubits and where each variable ends.
+
+    gates: ``("cx", control, target)`` or ``("rz", qubit, angle)``, physical indices.
+    final_placement: variable i -> physical qubit after the block.
+    global_phase: from terms on the empty set (exp(-i θ) each).
+    """
+
+    gates: tuple[tuple, ...]
+    initial_placement: tuple[int, ...]
+    final_placement: tuple[int, ...]
+    global_phase: float
+
+    @property
+    def cnots(self) -> int:
+        return sum(1 for g in self.gates if g[0] == "cx")
+
+
+def synthesize_block(
+    terms: Sequence[tuple[Sequence[int], float]],
+    region: Region,
+    placement: Sequence[int],
+    *,
+    seeds: Sequence[int] = (0,),
+    lams: Sequence[float] = (0.5,),
+) -> Block:
+    """Synthesise ``Π exp(-i θ Z_S)`` on ``region`` starting from ``placement``.
+
+    terms: ``(S, θ)`` with ``S`` logical qubit indices; repeated sets add their angles.
+    placement: logical qubit i -> physical qubit (all inside the region).
+    seeds, lams: every pair is tried; the network with the fewest CNOTs is kept.
+    """
+    wire_of = {q: i for i, q in enumerate(region.qubits)}
+    start = [wire_of[p] for p in placement]
+    phase = 0.0
+    acc: dict[int, float] = {}
+    for support, theta in terms:
+        m = 0
+        for v in support:
+            m ^= 1 << start[v]
+        if m == 0:
+            phase -= theta
+            continue
+        acc[m] = acc.get(m, 0.0) + 2.0 * theta
+    parities = sorted(acc.items())
+    adj = [list(a) for a in region.adj]
+    best: ParityNetwork | None = None
+    for lam in lams:
+        for seed in seeds:
+            net = synthesize_parities(parities, adj, cost=region.cost, lam=lam, seed=seed)
+            if best is None or net.cnots < best.cnots:
+                best = net
+    q = region.qubits
+    gates = tuple(("cx", q[g[1]], q[g[2]]) if g[0] == "cx" else ("rz", q[g[1]], g[2]) for g in best.gates)
+    end_of = {s: w for w, s in enumerate(best.final)}
+    final = tuple(q[end_of[s]] for s in start)
+    return Block(gates, tuple(placement), final, phase)
+
+
+def block_circuit(block: Block, num_qubits: int) -> QuantumCircuit:
+    """The block as a circuit on ``num_qubits`` physical wires (cx and rz only)."""
+    qc = QuantumCircuit(num_qubits, global_phase=block.global_phase)
+    for g in block.gates:
+        if g[0] == "cx":
+            qc.cx(g[1], g[2])
+        else:
+            qc.rz(g[2], g[1])
+    return qc

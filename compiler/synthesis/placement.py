@@ -1,0 +1,213 @@
+"""Placement of a model's variables on physical qubits for the structured strategy.
+
+Candidates, best first:
+
+1. an exact embedding: a subgraph monomorphism of the interaction graph (variables joined
+   when they share a term) into the coupling graph, found with VF2 (Cordella, Foggia, Sansone
+   & Vento 2004; rustworkx's implementation, with a call limit so it cannot run away);
+2. seeded greedy placements polished by local search, minimising the total Steiner cost of
+   the terms (:mod:`compiler.synthesis.steiner`): grow from a central qubit, always placing
+   the unplaced variable most tied to the placed ones on the free qubit that adds least
+   cost; then move or swap single variables while that lowers the total.
+"""
+
+from __future__ import annotations
+
+import random
+from typing import Sequence
+
+import networkx as nx
+import rustworkx as rx
+
+from compiler.synthesis.steiner import SteinerCost, all_pairs_distances
+
+__all__ = ["interaction_graph", "exact_embedding", "placement_cost", "search_placement",
+           "candidate_placements"]
+
+
+def interaction_graph(supports: Sequence[Sequence[int]], n: int) -> nx.Graph:
+    """Variables 0..n-1, an edge between two variables that share a term (weight = count)."""
+    g = nx.Graph()
+    g.add_nodes_from(range(n))
+    for s in supports:
+        s = sorted(set(s))
+        for i, a in enumerate(s):
+            for b in s[i + 1:]:
+                w = g.get_edge_data(a, b, {"weight": 0})["weight"]
+                g.add_edge(a, b, weight=w + 1)
+    return g
+
+
+def exact_embedding(inter: nx.Graph, coupling: nx.Graph, *, call_limit: int = 200_000) -> list[int] | None:
+    """Variable -> qubit such that every interaction edge is a coupling edge, or None."""
+    n = inter.number_of_nodes()
+    if inter.number_of_edges() > coupling.number_of_edges() or n > coupling.number_of_nodes():
+        return None
+    big = rx.PyGraph()
+    cnodes = sorted(coupling.nodes)
+    big.add_nodes_from(cnodes)
+    cidx = {q: i for i, q in enumerate(cnodes)}
+    big.add_edges_from_no_data([(cidx[a], cidx[b]) for a, b in coupling.edges])
+    small = rx.PyGraph()
+    small.add_nodes_from(range(n))
+    small.add_edges_from_no_data(list(inter.edges))
+    try:
+        it = rx.vf2_mapping(big, small, subgraph=True, induced=False, call_limit=call_limit)
+        mapping = next(iter(it), None)
+    except Exception:  # rustworkx raises when the call limit is hit on some versions
+        mapping = None
+    if mapping is None:
+        return None
+    out = [0] * n
+    for qi, v in mapping.items():
+        out[v] = cnodes[qi]
+    return out
+
+
+class _Scorer:
+    def __init__(self, supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int):
+        self.nodes = sorted(coupling.nodes)
+        self.index = {q: i for i, q in enumerate(self.nodes)}
+        adj = [[self.index[v] for v in coupling[q]] for q in self.nodes]
+        self.dist = all_pairs_distances(adj)
+        self.cost = SteinerCost(self.dist)
+        self.supports = [tuple(sorted(set(s))) for s in supports if len(set(s)) >= 2]
+        self.by_var: list[list[int]] = [[] for _ in range(n)]
+        for k, s in enumerate(self.supports):
+            for v in s:
+                self.by_var[v].append(k)
+
+    def term(self, k: int, pos: list[int]) -> int:
+        m = 0
+        for v in self.supports[k]:
+            if pos[v] >= 0:
+                m |= 1 << pos[v]
+        return self.cost(m)
+
+    def total(self, pos: list[int]) -> int:
+        return sum(self.term(k, pos) for k in range(len(self.supports)))
+
+
+def placement_cost(supports: Sequence[Sequence[int]], coupling: nx.Graph, placement: Sequence[int]) -> int:
+    """Total Steiner cost of the terms (order >= 2) under ``placement``."""
+    sc = _Scorer(supports, coupling, len(placement))
+    return sc.total([sc.index[p] for p in placement])
+
+
+def search_placement(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int, *, seed: int = 0,
+                     sweeps: int = 4, scorer: _Scorer | None = None,
+                     start: Sequence[int] | None = None) -> list[int]:
+    """A greedy placement (or ``start``) improved by local search; deterministic per seed."""
+    sc = scorer or _Scorer(supports, coupling, n)
+    rng = random.Random(seed)
+    N = len(sc.nodes)
+    dist = sc.dist
+    inter = interaction_graph(sc.supports, n)
+    if start is not None:
+        pos = [sc.index[p] for p in start]
+    else:
+        pos = [-1] * n
+        free = set(range(N))
+        ecc = [max(row) for row in dist]
+        centre_val = min(ecc)
+        centres = [q for q in range(N) if ecc[q] == centre_val]
+        first_q = centres[rng.randrange(len(centres))] if seed else centres[0]
+        degs = sorted(range(n), key=lambda v: (-inter.degree(v, weight="weight"), v))
+        first_v = degs[0] if seed == 0 else degs[rng.randrange(min(len(degs), 3))]
+        pos[first_v] = first_q
+        free.discard(first_q)
+        placed = {first_v}
+        while len(placed) < n:
+            tie = {}
+            for v in range(n):
+                if pos[v] < 0:
+                    tie[v] = sum(d["weight"] for u, d in inter[v].items() if u in placed)
+            top = max(tie.values())
+            cands = sorted(v for v, t in tie.items() if t == top)
+            v = cands[rng.randrange(len(cands))] if seed else cands[0]
+            if top == 0:
+                # a new component: put it next to what is placed
+                near = min(free, key=lambda q: (min(dist[q][pos[u]] for u in placed), q))
+                pos[v] = near
+            else:
+                best = None
+                # candidate qubits: free qubits within distance 2 of a placed neighbour
+                nb = [pos[u] for u in inter[v] if u in placed]
+                cand = {q for q in free if min(dist[q][p] for p in nb) <= 2} or free
+                for q in sorted(cand):
+                    pos[v] = q
+                    c = sum(sc.term(k, pos) for k in sc.by_var[v])
+                    c2 = sum(dist[q][p] for p in nb)
+                    key = (c, c2, rng.random() if seed else 0.0, q)
+                    if best is None or key < best[0]:
+                        best = (key, q)
+                pos[v] = best[1]
+            free.discard(pos[v])
+            placed.add(v)
+    # local search: move a variable to a free qubit or swap two variables
+    for _ in range(sweeps):
+        improved = False
+        order = list(range(n))
+        rng.shuffle(order)
+        occupied = {p: v for v, p in enumerate(pos)}
+        for v in order:
+            here = pos[v]
+            base_v = sum(sc.term(k, pos) for k in sc.by_var[v])
+            near = [q for q in range(N) if 0 < dist[here][q] <= 2]
+            best = (0, None)
+            for q in near:
+                u = occupied.get(q)
+                if u is None:
+                    pos[v] = q
+                    d = sum(sc.term(k, pos) for k in sc.by_var[v]) - base_v
+                    pos[v] = here
+                else:
+                    ks = set(sc.by_var[v]) | set(sc.by_var[u])
+                    before = sum(sc.term(k, pos) for k in ks)
+                    pos[v], pos[u] = q, here
+                    d = sum(sc.term(k, pos) for k in ks) - before
+                    pos[v], pos[u] = here, q
+                if d < best[0]:
+                    best = (d, q)
+            if best[1] is not None:
+                q = best[1]
+                u = occupied.get(q)
+                if u is None:
+                    del occupied[here]
+                    pos[v] = q
+                    occupied[q] = v
+                else:
+                    pos[v], pos[u] = q, here
+                    occupied[q], occupied[here] = v, u
+                improved = True
+        if not improved:
+            break
+    return [sc.nodes[p] for p in pos]
+
+
+def candidate_placements(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int, *, seed: int = 0,
+                         count: int = 3) -> list[tuple[str, list[int]]]:
+    """Up to ``count`` distinct placements, the cheapest (by Steiner cost) first.
+
+    Each is ``(how, placement)`` with ``how`` one of ``"exact"``, ``"search"``.
+    """
+    sc = _Scorer(supports, coupling, n)
+    found: list[tuple[int, str, list[int]]] = []
+    seen: set[tuple[int, ...]] = set()
+    complete = coupling.number_of_edges() == len(sc.nodes) * (len(sc.nodes) - 1) // 2
+    if complete:
+        p = list(sorted(coupling.nodes)[:n])
+        return [("exact", p)]
+    inter = interaction_graph(sc.supports, n)
+    emb = exact_embedding(inter, coupling)
+    if emb is not None:
+        emb = search_placement(supports, coupling, n, seed=seed, scorer=sc, start=emb)
+        seen.add(tuple(emb))
+        found.append((sc.total([sc.index[p] for p in emb]), "exact", emb))
+    for s in range(count):
+        p = search_placement(supports, coupling, n, seed=seed * 1000 + s, scorer=sc)
+        if tuple(p) not in seen:
+            seen.add(tuple(p))
+            found.append((sc.total([sc.index[q] for q in p]), "search", p))
+    found.sort(key=lambda x: x[0])
+    return [(how, p) for _, how, p in found[:count]]
