@@ -1,0 +1,200 @@
+"""Studies: one model against several targets; one task per row.
+
+:func:`run_task` is the single task function every executor runs (in-process, in a
+local worker process or on a Dask worker). A task and a row are plain JSON-able dicts,
+so a task can be hashed (:func:`task_key`) and shipped anywhere.
+
+A task::
+
+    {"model": Model.to_dict(), "connectivity": {"family": "grid", "size": None, "edges": None},
+     "gate_set": "cx", "strategy": "auto", "seeds": 5, "family": "clique", "layers": 1, "seed": 0,
+     "compile_only": False, "profile": "NAME" | {profile dict} | None, "noise_scale": 1.0,
+     "memory_budget_bytes": None, "error_budget": True, "fidelity_target": None}
+
+Examples:
+    >>> t = make_tasks({"name": "pair", "variables": ["a", "b"], "cliques": [["a", "b"]]},
+    ...                ["line", "all-to-all"], compile_only=True, strategy="generic", seeds=1)
+    >>> [run_task(x)["two_qubit_gates"] for x in t]
+    [2, 2]
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import time
+from typing import Any, Iterable, Mapping, Sequence
+
+from compiler.ansatz import FAMILIES, build_ansatz
+from compiler.compile import STRATEGIES, compile_ansatz
+from compiler.errors import ModelError, TargetError, ToposcoutError
+from compiler.model import Limits, Model, parse_model
+from compiler.targets import BUILTIN_FAMILIES, make_connectivity, parse_edge_list, get_gate_set, read_edge_list
+from compiler.version import __version__
+
+__all__ = ["TASK_DEFAULTS", "normalise_task", "task_key", "make_tasks", "run_task", "connectivity_spec"]
+
+TASK_DEFAULTS: dict[str, Any] = {
+    "gate_set": "cx",
+    "strategy": "auto",
+    "seeds": 5,
+    "family": "clique",
+    "layers": 1,
+    "seed": 0,
+    "compile_only": False,
+    "profile": None,
+    "noise_scale": 1.0,
+    "memory_budget_bytes": None,
+    "error_budget": True,
+    "fidelity_target": None,
+}
+
+
+def connectivity_spec(spec: str | Mapping[str, Any]) -> dict:
+    """Turn ``"grid:3x4"``, ``"custom:FILE"`` or a dict into ``{"family", "size", "edges"}``."""
+    if isinstance(spec, Mapping):
+        d = {"family": spec.get("family"), "size": spec.get("size"), "edges": spec.get("edges")}
+    else:
+        family, _, size = str(spec).partition(":")
+        d = {"family": family.strip(), "size": size or None, "edges": None}
+        if d["family"] == "custom":
+            if not size:
+                raise TargetError("custom needs an edge-list file: custom:PATH", field="connectivity")
+            d["edges"] = [list(e) for e in read_edge_list(size)]
+            d["size"] = None
+    if isinstance(d["edges"], str):
+        d["edges"] = [list(e) for e in parse_edge_list(d["edges"])]
+    if d["size"] is not None:
+        d["size"] = str(d["size"])
+    return d
+
+
+def normalise_task(task: Mapping[str, Any]) -> dict:
+    """Fill defaults and normalise the model, so equal work has an equal key."""
+    out = dict(TASK_DEFAULTS)
+    unknown = set(task) - set(TASK_DEFAULTS) - {"model", "connectivity"}
+    if unknown:
+        raise ModelError(f"unknown task fields {sorted(unknown)}", field=sorted(unknown)[0])
+    out.update({k: v for k, v in task.items() if k != "model"})
+    model = task["model"]
+    if not isinstance(model, Model):
+        model = parse_model(model, "json") if isinstance(model, Mapping) else parse_model(model)
+    out["model"] = model.to_dict()
+    out["connectivity"] = connectivity_spec(task["connectivity"])
+    return out
+
+
+def task_key(task: Mapping[str, Any]) -> str:
+    """SHA-256 of the canonical JSON of the normalised task and the toposcout version."""
+    canon = json.dumps({"task": normalise_task(task), "version": __version__}, sort_keys=True,
+                       separators=(",", ":"), allow_nan=False)
+    return hashlib.sha256(canon.encode()).hexdigest()
+
+
+def make_tasks(
+    model: Model | Mapping[str, Any],
+    connectivities: Sequence[str | Mapping[str, Any]] | None = None,
+    *,
+    noise_scales: Iterable[float] | None = None,
+    **options: Any,
+) -> list[dict]:
+    """One task per (connectivity, noise scale); options are task fields.
+
+    connectivities: default None: every built-in family, sized to the model.
+    noise_scales: default None: one task per connectivity at ``options["noise_scale"]``.
+    """
+    m = model if isinstance(model, Model) else parse_model(dict(model), "json")
+    specs = [connectivity_spec(c) for c in (connectivities or BUILTIN_FAMILIES)]
+    scales = list(noise_scales) if noise_scales else [options.pop("noise_scale", 1.0)]
+    # check every combination before any expensive work starts
+    probe = dict(TASK_DEFAULTS)
+    probe.update(options)
+    for s in scales:
+        _check_options({**probe, "noise_scale": s})
+    for spec in specs:
+        make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"])
+    get_gate_set(probe["gate_set"])
+    tasks = []
+    for spec in specs:
+        for k, s in enumerate(scales):
+            t = {"model": m.to_dict(), "connectivity": spec, **options, "noise_scale": float(s)}
+            if options.get("fidelity_target") is not None and k > 0:
+                t["fidelity_target"] = None  # the threshold is searched once per connectivity
+            tasks.append(t)
+    return tasks
+
+
+def _check_options(t: Mapping[str, Any]) -> None:
+    if t["strategy"] not in STRATEGIES:
+        raise ModelError(f"unknown strategy {t['strategy']!r}; choose one of {', '.join(STRATEGIES)}",
+                         field="strategy")
+    if t["family"] not in FAMILIES:
+        raise ModelError(f"unknown family {t['family']!r}; choose one of {', '.join(FAMILIES)}", field="family")
+    for name in ("seeds", "layers"):
+        v = t[name]
+        if not isinstance(v, int) or isinstance(v, bool) or v < 1 or v > 64:
+            raise ModelError(f"{name} must be an integer from 1 to 64, got {v!r}", field=name)
+    ns = t["noise_scale"]
+    if not isinstance(ns, (int, float)) or isinstance(ns, bool) or not math.isfinite(ns) or ns < 0:
+        raise ModelError(f"noise_scale must be a finite number >= 0, got {ns!r}", field="noise_scale")
+
+
+def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
+    """Compile (and unless ``compile_only``, simulate) one row; never raises a ToposcoutError.
+
+    A ToposcoutError becomes a row with ``error`` (the message) and ``error_field`` set;
+    anything else is a bug and propagates.
+    """
+    started = time.perf_counter()
+    row: dict[str, Any] = {"error": None, "error_field": None}
+    try:
+        t = dict(TASK_DEFAULTS)
+        t.update(task)
+        spec = connectivity_spec(t["connectivity"])
+        row.update(connectivity=spec["family"], noise_scale=t["noise_scale"], gate_set=t["gate_set"],
+                   strategy_requested=t["strategy"])
+        _check_options(t)
+        model = parse_model(dict(t["model"]), "json", limits=limits)
+        row["model"] = model.name
+        ansatz = build_ansatz(model, family=t["family"], layers=t["layers"], seed=t["seed"])
+        st = ansatz.stats()
+        row.update(family=t["family"], layers=t["layers"], variables=model.num_variables,
+                   terms=st["terms"], lower_bound_two_qubit=st["lower_bound_two_qubit"],
+                   logical_cnots=st["cnots"], logical_depth=st["depth"])
+        conn = make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"])
+        gate_set = get_gate_set(t["gate_set"])
+        row["connectivity"] = conn.name
+        row["connectivity_family"] = conn.family
+        compiled = compile_ansatz(ansatz, conn, gate_set, strategy=t["strategy"], seeds=t["seeds"])
+        fig = compiled.figures()
+        fig["layout"] = {v: p for v, p in zip(model.variables, compiled.initial_layout)}
+        fig["final_layout"] = {v: p for v, p in zip(model.variables, compiled.final_layout)}
+        fig.pop("initial_layout")
+        row.update(fig)
+        if not t["compile_only"]:
+            row.update(_noise_row(compiled, ansatz, t))
+    except ToposcoutError as exc:
+        row["error"] = str(exc)
+        row["error_field"] = exc.field
+    row["row_seconds"] = round(time.perf_counter() - started, 4)
+    return row
+
+
+def _noise_row(compiled, ansatz, t: Mapping[str, Any]) -> dict:
+    from compiler.metrics import noise_figures, threshold_two_qubit_error
+    from compiler.profiles import DEFAULT_PROFILE, load_profile, DeviceProfile
+
+    spec = t["profile"] or DEFAULT_PROFILE
+    if isinstance(spec, Mapping):
+        profile = DeviceProfile.from_dict(dict(spec)).scaled(t["noise_scale"])
+    else:
+        profile = load_profile(spec, noise_scale=t["noise_scale"])
+    out = {"profile": profile.name}
+    out.update(noise_figures(compiled, ansatz, profile, memory_budget_bytes=t["memory_budget_bytes"],
+                             error_budget=t["error_budget"]))
+    if t["fidelity_target"] is not None:
+        base = profile.scaled(1.0 / t["noise_scale"]) if t["noise_scale"] else profile
+        out.update(threshold_two_qubit_error(compiled, ansatz, base, fidelity_target=t["fidelity_target"],
+                                             memory_budget_bytes=t["memory_budget_bytes"]))
+    return out

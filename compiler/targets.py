@@ -1,0 +1,336 @@
+"""Connectivities (coupling graphs) and gate sets: the hardware side of a target.
+
+The families and gate sets are described in ``topologies/connectivities.toml`` and
+``topologies/gate_sets.toml``; the generators are here. Each connectivity is sized to
+the smallest instance that fits the model unless a size is given.
+
+Examples:
+    >>> make_connectivity("grid", 10).name
+    'grid-4x3'
+    >>> make_connectivity("heavy-hex", 20).num_qubits      # distance 5: (5·25 − 10 − 1)/2
+    57
+    >>> make_connectivity("line", 9, size=8)
+    Traceback (most recent call last):
+    ...
+    compiler.errors.TargetError: the model has 9 variables but line-8 has 8 qubits; pick a connectivity with at least 9 qubits or let toposcout size it
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass
+from functools import lru_cache
+from pathlib import Path
+from typing import Sequence
+
+import networkx as nx
+from qiskit.circuit import Delay, Parameter
+from qiskit.circuit.library import (
+    CXGate,
+    CZGate,
+    Measure,
+    RXGate,
+    RXXGate,
+    RYGate,
+    RZGate,
+    RZZGate,
+    SXGate,
+    XGate,
+)
+from qiskit.transpiler import CouplingMap, Target
+
+from compiler.errors import TargetError
+
+__all__ = [
+    "TOPOLOGY_DIR",
+    "CONNECTIVITY_FAMILIES",
+    "GATE_SETS",
+    "Connectivity",
+    "GateSet",
+    "make_connectivity",
+    "parse_connectivity",
+    "get_gate_set",
+    "build_target",
+    "heavy_hex_qubits",
+    "connectivity_catalogue",
+    "gate_set_catalogue",
+]
+
+#: the folder of connectivity, gate-set and profile data files.
+TOPOLOGY_DIR = Path(__file__).resolve().parent.parent / "topologies"
+
+
+@lru_cache(maxsize=None)
+def _toml(name: str) -> dict:
+    with open(TOPOLOGY_DIR / name, "rb") as fh:
+        return tomllib.load(fh)
+
+
+def connectivity_catalogue() -> dict[str, dict]:
+    """The connectivity families with their descriptions (from the data file)."""
+    return dict(_toml("connectivities.toml"))
+
+
+def gate_set_catalogue() -> dict[str, dict]:
+    """The gate sets with their descriptions (from the data file)."""
+    return dict(_toml("gate_sets.toml"))
+
+
+CONNECTIVITY_FAMILIES: tuple[str, ...] = tuple(connectivity_catalogue())
+GATE_SETS: tuple[str, ...] = tuple(gate_set_catalogue())
+#: the families `toposcout compare` uses when none is named.
+BUILTIN_FAMILIES: tuple[str, ...] = tuple(f for f in CONNECTIVITY_FAMILIES if f != "custom")
+
+
+@dataclass(frozen=True)
+class Connectivity:
+    """An undirected coupling graph on ``num_qubits`` physical qubits."""
+
+    name: str
+    family: str
+    num_qubits: int
+    edges: tuple[tuple[int, int], ...]
+    size: str | None = None  # the size argument that rebuilds it (e.g. "3x4", "5")
+
+    def coupling_map(self) -> CouplingMap:
+        """A bidirectional qiskit CouplingMap."""
+        cm = CouplingMap()
+        for q in range(self.num_qubits):
+            cm.add_physical_qubit(q)
+        for a, b in self.edges:
+            cm.add_edge(a, b)
+            cm.add_edge(b, a)
+        return cm
+
+    def graph(self) -> nx.Graph:
+        g = nx.Graph()
+        g.add_nodes_from(range(self.num_qubits))
+        g.add_edges_from(self.edges)
+        return g
+
+    def coords(self) -> list[tuple[float, float]]:
+        """Drawing coordinates for each physical qubit (lattice positions where natural)."""
+        n = self.num_qubits
+        if self.family == "line":
+            return [(float(i), 0.0) for i in range(n)]
+        if self.family in ("ring", "all-to-all"):
+            return [(math.cos(2 * math.pi * i / n), math.sin(2 * math.pi * i / n)) for i in range(n)]
+        if self.family == "grid":
+            _, cols = (int(x) for x in self.size.split("x"))
+            return [(float(i % cols), -float(i // cols)) for i in range(n)]
+        pos = nx.kamada_kawai_layout(self.graph())
+        return [(float(pos[i][0]), float(pos[i][1])) for i in range(n)]
+
+    def to_dict(self) -> dict:
+        return {"name": self.name, "family": self.family, "num_qubits": self.num_qubits,
+                "edges": [list(e) for e in self.edges], "size": self.size}
+
+
+def heavy_hex_qubits(distance: int) -> int:
+    """Qubits of the heavy-hex lattice of odd code distance d: (5d² − 2d − 1)/2.
+
+    Chamberland, Zhu, Yoder, Hertzberg & Cross, "Topological and subsystem codes on
+    low-degree graphs with flag qubits", Phys. Rev. X 10, 011022 (2020).
+    """
+    return (5 * distance * distance - 2 * distance - 1) // 2
+
+
+def _undirected(edges) -> tuple[tuple[int, int], ...]:
+    return tuple(sorted({(min(a, b), max(a, b)) for a, b in edges if a != b}))
+
+
+def _too_small(n_vars: int, name: str, n_qubits: int) -> TargetError:
+    return TargetError(
+        f"the model has {n_vars} variables but {name} has {n_qubits} qubits; pick a connectivity with at "
+        f"least {n_vars} qubits or let toposcout size it",
+        field="connectivity",
+    )
+
+
+def _positive_int(size, family: str) -> int:
+    try:
+        v = int(size)
+    except (TypeError, ValueError):
+        raise TargetError(f"{family} size {size!r} is not an integer; "
+                          f"{connectivity_catalogue()[family]['size']}", field="connectivity") from None
+    if v < 1 or str(v) != str(size).strip():
+        raise TargetError(f"{family} size {size!r} must be a positive integer", field="connectivity")
+    return v
+
+
+def read_edge_list(path: str | Path) -> list[tuple[int, int]]:
+    """Read a custom coupling graph: one ``a b`` pair of qubit indices per line."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except (FileNotFoundError, IsADirectoryError, UnicodeDecodeError):
+        raise TargetError(f"edge-list file {str(p)!r} cannot be read; give the path of a text file with one "
+                          f"'a b' pair per line", field="connectivity") from None
+    return parse_edge_list(text, str(p))
+
+
+def parse_edge_list(text: str, where: str = "edge list") -> list[tuple[int, int]]:
+    edges = []
+    for lineno, line in enumerate(text.splitlines(), start=1):
+        line = line.split("#", 1)[0].strip()
+        if not line:
+            continue
+        parts = line.replace(",", " ").split()
+        if len(parts) != 2 or not all(p.isdigit() for p in parts):
+            raise TargetError(f"{where} line {lineno}: expected two qubit indices 'a b', found {line!r}",
+                              field=f"line {lineno}")
+        a, b = int(parts[0]), int(parts[1])
+        if a == b:
+            raise TargetError(f"{where} line {lineno}: an edge from qubit {a} to itself", field=f"line {lineno}")
+        edges.append((a, b))
+    if not edges:
+        raise TargetError(f"{where} has no edges", field="connectivity")
+    return edges
+
+
+def make_connectivity(
+    family: str,
+    num_variables: int,
+    *,
+    size: int | str | Sequence[int] | None = None,
+    edges: Sequence[Sequence[int]] | None = None,
+) -> Connectivity:
+    """The connectivity of ``family`` sized for ``num_variables`` (or to ``size``).
+
+    size: default None: the smallest instance that fits. Line, ring, all-to-all: the
+        number of qubits; grid: ``"RxC"``, ``(R, C)`` or one number for a square; heavy-hex:
+        the odd code distance.
+    edges: the edge list of a ``custom`` connectivity.
+    """
+    n = num_variables
+    if family not in CONNECTIVITY_FAMILIES:
+        raise TargetError(
+            f"unknown connectivity {family!r}; choose one of {', '.join(CONNECTIVITY_FAMILIES)}",
+            field="connectivity",
+        )
+    if family == "line":
+        q = n if size is None else _positive_int(size, family)
+        c = Connectivity(f"line-{q}", family, q, tuple((i, i + 1) for i in range(q - 1)), str(q))
+    elif family == "ring":
+        q = max(3, n) if size is None else _positive_int(size, family)
+        if q < 3:
+            raise TargetError("a ring needs at least 3 qubits", field="connectivity")
+        c = Connectivity(f"ring-{q}", family, q, _undirected([(i, (i + 1) % q) for i in range(q)]), str(q))
+    elif family == "all-to-all":
+        q = n if size is None else _positive_int(size, family)
+        c = Connectivity(f"all-to-all-{q}", family, q, tuple((i, j) for i in range(q) for j in range(i + 1, q)), str(q))
+    elif family == "grid":
+        if size is None:
+            r = math.isqrt(n - 1) + 1 if n > 1 else 1
+            cols = max(1, math.ceil(n / r))
+        else:
+            if isinstance(size, (tuple, list)) and len(size) == 2:
+                r, cols = (_positive_int(x, family) for x in size)
+            elif isinstance(size, str) and "x" in size.lower():
+                parts = size.lower().split("x")
+                if len(parts) != 2:
+                    raise TargetError(f"grid size {size!r}: write rows x columns, e.g. 3x4", field="connectivity")
+                r, cols = (_positive_int(x, family) for x in parts)
+            else:
+                r = cols = _positive_int(size, family)
+        edges_g = []
+        for i in range(r):
+            for j in range(cols):
+                q = i * cols + j
+                if j + 1 < cols:
+                    edges_g.append((q, q + 1))
+                if i + 1 < r:
+                    edges_g.append((q, q + cols))
+        c = Connectivity(f"grid-{r}x{cols}", family, r * cols, _undirected(edges_g), f"{r}x{cols}")
+    elif family == "heavy-hex":
+        if size is None:
+            d = 3
+            while heavy_hex_qubits(d) < n:
+                d += 2
+        else:
+            d = _positive_int(size, family)
+            if d < 3 or d % 2 == 0:
+                raise TargetError(f"heavy-hex distance must be odd and at least 3, got {d}", field="connectivity")
+        cm = CouplingMap.from_heavy_hex(d)
+        c = Connectivity(f"heavy-hex-{d}", family, cm.size(), _undirected(cm.get_edges()), str(d))
+    else:  # custom
+        if edges is None:
+            raise TargetError("a custom connectivity needs an edge list (custom:FILE)", field="connectivity")
+        e = _undirected(tuple(int(x) for x in pair) for pair in edges)
+        q = max(max(p) for p in e) + 1
+        g = nx.Graph(e)
+        g.add_nodes_from(range(q))
+        if not nx.is_connected(g):
+            parts = nx.number_connected_components(g)
+            raise TargetError(f"the custom coupling graph has {parts} disconnected parts; every qubit must be "
+                              f"reachable from every other", field="connectivity")
+        c = Connectivity(f"custom-{q}", family, q, e, None)
+    if c.num_qubits < n:
+        raise _too_small(n, c.name, c.num_qubits)
+    return c
+
+
+def parse_connectivity(spec: str, num_variables: int) -> Connectivity:
+    """Read ``FAMILY[:SIZE]`` as written on the command line (``custom:FILE`` for a file)."""
+    family, _, size = spec.partition(":")
+    family = family.strip()
+    if family == "custom":
+        if not size:
+            raise TargetError("custom needs an edge-list file: custom:PATH", field="connectivity")
+        return make_connectivity("custom", num_variables, edges=read_edge_list(size))
+    return make_connectivity(family, num_variables, size=size or None)
+
+
+@dataclass(frozen=True)
+class GateSet:
+    """A native basis: one entangling gate and some single-qubit gates."""
+
+    name: str
+    one_qubit: tuple[str, ...]
+    two_qubit: str
+
+    @property
+    def basis(self) -> tuple[str, ...]:
+        return (self.two_qubit,) + self.one_qubit
+
+
+def get_gate_set(name: str) -> GateSet:
+    """The gate set ``name`` (one of :data:`GATE_SETS`)."""
+    cat = gate_set_catalogue()
+    if name not in cat:
+        raise TargetError(f"unknown gate set {name!r}; choose one of {', '.join(cat)}", field="gate_set")
+    e = cat[name]
+    return GateSet(name, tuple(e["one_qubit"]), e["two_qubit"])
+
+
+_GATES = {
+    "cx": lambda: CXGate(),
+    "cz": lambda: CZGate(),
+    "rzz": lambda: RZZGate(Parameter("θ")),
+    "rxx": lambda: RXXGate(Parameter("θ")),
+    "rz": lambda: RZGate(Parameter("λ")),
+    "ry": lambda: RYGate(Parameter("θ")),
+    "rx": lambda: RXGate(Parameter("θ")),
+    "sx": lambda: SXGate(),
+    "x": lambda: XGate(),
+}
+
+
+def build_target(connectivity: Connectivity, gate_set: GateSet, *, properties=None) -> Target:
+    """A qiskit Target of the connectivity and gate set (dt = 1 ns).
+
+    properties: default None (no errors or durations); else a callable
+        ``properties(gate_name, qubits) -> InstructionProperties | None`` used for every
+        instruction (the noise study passes durations this way).
+    """
+    prop = properties or (lambda name, qubits: None)
+    n = connectivity.num_qubits
+    t = Target(num_qubits=n, dt=1e-9)
+    for g in gate_set.one_qubit:
+        t.add_instruction(_GATES[g](), {(q,): prop(g, (q,)) for q in range(n)})
+    directed = [(a, b) for a, b in connectivity.edges] + [(b, a) for a, b in connectivity.edges]
+    t.add_instruction(_GATES[gate_set.two_qubit](), {e: prop(gate_set.two_qubit, e) for e in directed})
+    t.add_instruction(Measure(), {(q,): prop("measure", (q,)) for q in range(n)})
+    t.add_instruction(Delay(Parameter("t")), {(q,): None for q in range(n)})
+    return t
