@@ -54,6 +54,8 @@ __all__ = [
     "QubitParams",
     "EdgeParams",
     "PROFILE_NAMES",
+    "DEFAULT_PROFILE",
+    "profile_catalogue",
     "profile_dirs",
     "load_profile",
     "parse_profile",
@@ -83,6 +85,8 @@ def _builtin_names() -> tuple[str, ...]:
 
 #: names of the built-in profiles (file stems).
 PROFILE_NAMES: tuple[str, ...] = _builtin_names()
+#: the profile of a task that names none.
+DEFAULT_PROFILE = "superconducting"
 
 _QUBIT_KEYS = ("t1_us", "t2_us", "one_qubit_error", "p1_given_0", "p0_given_1")
 _EDGE_KEYS = ("two_qubit_error", "two_qubit_ns")
@@ -378,6 +382,16 @@ def load_profile(name_or_path: str | Path | Mapping[str, Any] | DeviceProfile, *
     except tomllib.TOMLDecodeError as exc:
         raise ProfileError(f"profile {path.name}: not valid TOML: {exc}", field="profile") from exc
     return parse_profile(data, noise_scale=noise_scale, name=data.get("name", path.stem))
+
+
+def profile_catalogue() -> dict[str, str]:
+    """Built-in profile name -> its one-line description (with the numbers that matter)."""
+    out = {}
+    for name in PROFILE_NAMES:
+        p = load_profile(name)
+        out[name] = (f"{p.description} [1q {p.one_qubit_error:g}, 2q {p.two_qubit_error:g} avg infidelity; "
+                     f"T1 {p.t1_us:g} us, T2 {p.t2_us:g} us; 2q gate {p.two_qubit_ns:g} ns]")
+    return out
 
 
 # --- conversion (Nielsen 2002) ------------------------------------------------------------
