@@ -156,19 +156,25 @@ def compile_generic(
     best: tuple | None = None
     for seed in range(seeds):
         pm = generate_preset_pass_manager(optimization_level, target=target, seed_transpiler=seed)
-        swaps = [0]
+        swaps: list = [0, {}]
 
         def count_swaps(pass_, dag, time, property_set, count, _s=swaps):
+            # SWAPs exist between routing and translation; keep the fullest snapshot.
             n = dag.count_ops().get("swap", 0)
             if n > _s[0]:
-                _s[0] = n
+                where: dict[str, int] = {}
+                for node in dag.op_nodes():
+                    if node.op.name == "swap":
+                        a, b = sorted(dag.find_bit(q).index for q in node.qargs)
+                        where[f"{a}-{b}"] = where.get(f"{a}-{b}", 0) + 1
+                _s[0], _s[1] = n, where
 
         out = pm.run(logical, callback=count_swaps)
         two = sum(1 for ins in out.data if ins.operation.num_qubits == 2)
         depth = out.depth(lambda ins: ins.operation.name not in _NON_GATES)
         key = (two, depth, seed)
         if best is None or key < best[0]:
-            best = (key, out, swaps[0], seed)
+            best = (key, out, swaps, seed)
     elapsed = time.perf_counter() - start
     _, out, swaps, seed = best
     check_coupling(out, connectivity)
@@ -181,9 +187,10 @@ def compile_generic(
         strategy="generic",
         seed=seed,
         compile_seconds=elapsed,
-        swaps=swaps,
+        swaps=swaps[0],
         connectivity=connectivity,
         gate_set=gate_set,
+        extra={"swap_edges": dict(sorted(swaps[1].items()))},
     )
 
 

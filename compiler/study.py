@@ -9,7 +9,11 @@ A task::
     {"model": Model.to_dict(), "connectivity": {"family": "grid", "size": None, "edges": None},
      "gate_set": "cx", "strategy": "auto", "seeds": 5, "family": "clique", "layers": 1, "seed": 0,
      "compile_only": False, "profile": "NAME" | {profile dict} | None, "noise_scale": 1.0,
-     "memory_budget_bytes": None, "error_budget": True, "fidelity_target": None}
+     "memory_budget_bytes": None, "error_budget": True, "fidelity_target": None,
+     "keep_circuit": False}
+
+With ``keep_circuit`` the row also carries ``circuit_qpy_b64``: the compiled circuit as
+base64 QPY (the service stores it apart from the row).
 
 Examples:
     >>> t = make_tasks({"name": "pair", "variables": ["a", "b"], "cliques": [["a", "b"]]},
@@ -48,6 +52,7 @@ TASK_DEFAULTS: dict[str, Any] = {
     "memory_budget_bytes": None,
     "error_budget": True,
     "fidelity_target": None,
+    "keep_circuit": False,
 }
 
 
@@ -172,6 +177,12 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         fig["final_layout"] = {v: p for v, p in zip(model.variables, compiled.final_layout)}
         fig.pop("initial_layout")
         row.update(fig)
+        if t["keep_circuit"]:
+            import base64
+
+            from compiler.compile import qpy_bytes
+
+            row["circuit_qpy_b64"] = base64.b64encode(qpy_bytes(compiled)).decode("ascii")
         if not t["compile_only"]:
             row.update(_noise_row(compiled, ansatz, t))
     except ToposcoutError as exc:
