@@ -14,16 +14,21 @@ from compiler.targets import BUILTIN_FAMILIES, GATE_SETS, get_gate_set, make_con
 from tests.conftest import compiled_distribution, logical_distribution
 
 
+@pytest.mark.parametrize("strategy", ["generic", "auto"])
 @pytest.mark.parametrize("family", BUILTIN_FAMILIES)
-def test_compiled_distribution_equals_logical(example_path, family):
+def test_compiled_distribution_equals_logical(example_path, family, strategy):
     # Reference: qiskit.quantum_info.Statevector of the logical circuit; whatever layout and
     # routing did, the distribution over the model's variables must be unchanged (tol 1e-9).
     m = load_model(example_path)
     a = build_ansatz(m, seed=2)
     c = compile_ansatz(a, make_connectivity(family, m.num_variables), get_gate_set("cx"),
-                       strategy="generic", seeds=2)
+                       strategy=strategy, seeds=2)
     check_coupling(c.circuit, c.connectivity)
     np.testing.assert_allclose(compiled_distribution(c), logical_distribution(a), atol=1e-9)
+    if strategy == "auto":
+        f = c.figures()
+        assert f["auto_winner"] == c.strategy
+        assert f["two_qubit_gates"] == min(f["generic_two_qubit_gates"], f["structured_two_qubit_gates"])
 
 
 @pytest.mark.parametrize("gate_set", GATE_SETS)
