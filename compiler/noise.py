@@ -303,12 +303,23 @@ def build_noise_model(sched: Scheduled, profile: DeviceProfile,
     basis = sorted(set(sites) | {"measure"})
     nm = NoiseModel(basis_gates=[b for b in basis if b != "measure"])
     for name, where in sorted(sites.items()):
+        groups: dict[tuple, list[tuple[int, ...]]] = {}
         for qs in sorted(where):
             if (len(qs) == 1 and not switches.one_qubit) or (len(qs) == 2 and not switches.two_qubit):
                 continue
-            err = gate_error(profile, [sched.physical_qubits[k] for k in qs], name)
-            if err is not None:
-                nm.add_quantum_error(err, name, list(qs))
+            phys = [sched.physical_qubits[k] for k in qs]
+            key = (tuple(profile.qubit(p) for p in phys), profile.edge(*phys) if len(phys) == 2 else None)
+            groups.setdefault(key, []).append(qs)
+        uniform = len(groups) == 1 and len(next(iter(groups.values()))) == len(where)
+        for key, members in groups.items():
+            err = gate_error(profile, [sched.physical_qubits[k] for k in members[0]], name)
+            if err is None:
+                continue
+            if uniform:  # one error for every site: a smaller model, same channels
+                nm.add_all_qubit_quantum_error(err, name)
+            else:
+                for qs in members:
+                    nm.add_quantum_error(err, name, list(qs))
     if switches.readout:
         for k, m in zip(sched.measured, readout_matrices(sched, profile, switches)):
             if not np.allclose(m, np.eye(2)):
