@@ -226,3 +226,19 @@ def test_noiseless_switches_give_the_ideal_state():
     assert np.max(np.abs(rho - m @ m.conj().T)) < 1e-9
     assert len(build_noise_model(sched, prof, off).noise_instructions) == 0
     assert noisy_circuit(sched, prof, off).count_ops() == sched.circuit.count_ops()
+
+
+def test_per_qubit_gate_override_reaches_only_its_physical_qubit():
+    # per-qubit overrides are keyed by physical index and survive the relabelling: an sx on
+    # physical 4 (compact 1) with r = 0.1 loses 1 - p/2 = 1 - r of fidelity (N&C 8.3.4), while
+    # physical 1 (compact 0) keeps r = 0.001
+    qc = QuantumCircuit(6, 2)
+    qc.sx(1)
+    qc.sx(4)
+    qc.measure(1, 0)
+    qc.measure(4, 1)
+    prof = profile(e1=1e-3, qubit=[{"index": 4, "one_qubit_error": 0.1}])
+    sched = schedule_circuit(qc, (1, 4), prof)
+    rho = simulate_noisy(sched, prof).rho
+    ideal = simulate_ideal(sched)
+    assert ideal.fidelity_with(rho) == pytest.approx((1 - 1e-3) * (1 - 0.1), abs=1e-12)
