@@ -109,3 +109,20 @@ def test_reduce_statevector_orders_variables_little_endian():
     psi[0b100] = 1.0  # q2 = 1
     m = reduce_statevector(psi, [2, 0], 3)
     assert m.shape == (4, 2) and abs(m[0b01, 0]) == 1.0  # variable 0 = q2 = 1
+
+
+def test_over_budget_row_fails_alone_and_other_rows_complete():
+    # the issue: a row whose active qubits exceed the budget is refused (message in the row),
+    # the other rows of the same list of tasks still complete
+    from compiler.study import make_tasks, run_task
+
+    budget = estimate_memory_bytes(4)
+    big = make_tasks(chain(6).to_dict(), ["line", "ring"], memory_budget_bytes=budget, error_budget=False,
+                     seeds=1)
+    small = make_tasks(chain(3).to_dict(), ["line"], memory_budget_bytes=budget, error_budget=False, seeds=1)
+    rows = [run_task(t) for t in big + small]
+    for r in rows[:2]:
+        assert r["error_field"] == "memory_budget_bytes" and "6 active qubits" in r["error"]
+        assert "compile-only" in r["error"] and r["two_qubit_gates"] > 0  # compile figures kept
+        assert r.get("state_fidelity") is None
+    assert rows[2]["error"] is None and 0 < rows[2]["state_fidelity"] < 1
