@@ -89,7 +89,7 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
 
     seed: default 0; seeds the placement search and the greedy tie-breaking.
     """
-    from compiler.compile import Compiled, check_coupling, measured_layout
+    from compiler.compiled import Compiled, check_coupling, measured_layout
 
     start = time.perf_counter()
     n = ansatz.num_qubits
