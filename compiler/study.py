@@ -120,6 +120,8 @@ def make_tasks(
     for spec in specs:
         make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"])
     get_gate_set(probe["gate_set"])
+    if not probe["compile_only"]:
+        _profile(probe["profile"], 1.0)
     tasks = []
     for spec in specs:
         for k, s in enumerate(scales):
@@ -192,15 +194,19 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
     return row
 
 
-def _noise_row(compiled, ansatz, t: Mapping[str, Any]) -> dict:
-    from compiler.metrics import noise_figures, threshold_two_qubit_error
+def _profile(spec: str | Mapping[str, Any] | None, noise_scale: float):
     from compiler.profiles import DEFAULT_PROFILE, DeviceProfile, load_profile
 
-    spec = t["profile"] or DEFAULT_PROFILE
+    spec = spec or DEFAULT_PROFILE
     if isinstance(spec, Mapping):
-        profile = DeviceProfile.from_dict(dict(spec), noise_scale=t["noise_scale"])
-    else:
-        profile = load_profile(spec, noise_scale=t["noise_scale"])
+        return DeviceProfile.from_dict(dict(spec), noise_scale=noise_scale)
+    return load_profile(spec, noise_scale=noise_scale)
+
+
+def _noise_row(compiled, ansatz, t: Mapping[str, Any]) -> dict:
+    from compiler.metrics import noise_figures, threshold_two_qubit_error
+
+    profile = _profile(t["profile"], t["noise_scale"])
     out = {"profile": profile.name}
     out.update(noise_figures(compiled, ansatz, profile, memory_budget_bytes=t["memory_budget_bytes"],
                              error_budget=t["error_budget"]))

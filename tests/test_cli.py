@@ -110,3 +110,83 @@ def test_console_script_runs_without_traceback(tmp_path):
                           cwd=ROOT)
     assert proc.returncode == 2
     assert "duplicate variable name" in proc.stderr and "Traceback" not in proc.stderr
+
+
+# --------------------------------------------------------------------------- the noise study
+
+SMALL = {"name": "pantry-doors", "variables": ["d0", "d1", "d2", "d3"],
+         "cliques": [["d0", "d1"], ["d1", "d2", "d3"]]}
+
+
+def test_noise_rows_in_json(tmp_path):
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", "-c", "all-to-all", "--profile", "trapped_ion",
+                         "--strategy", "generic", "--seeds", "1", "--json")
+    assert code == 0, err
+    doc = json.loads(out)
+    assert "not a promise about a device" in doc["caution"]
+    for r in doc["rows"]:
+        assert r["profile"] == "trapped_ion"
+        for key in ("state_fidelity", "hellinger_fidelity", "tvd", "kl_ideal_noisy", "mmd", "esp", "duration_us",
+                    "budget_two_qubit", "budget_one_qubit", "budget_idle", "budget_readout"):
+            assert key in r, key
+        assert 0 < r["state_fidelity"] < 1 and 0 < r["hellinger_fidelity"] <= 1
+
+
+def test_noise_sweep_and_threshold(tmp_path):
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", "--strategy", "generic", "--seeds", "1",
+                         "--noise-scale", "0", "--noise-scale", "1", "--noise-scale", "4",
+                         "--fidelity-target", "0.8", "--json")
+    assert code == 0, err
+    rows = sorted(json.loads(out)["rows"], key=lambda r: r["noise_scale"])
+    assert [r["noise_scale"] for r in rows] == [0.0, 1.0, 4.0]
+    # at noise_scale 0 every fidelity is 1; fidelity falls as the scale grows
+    assert rows[0]["state_fidelity"] == pytest.approx(1.0, abs=1e-9)
+    assert rows[0]["state_fidelity"] > rows[1]["state_fidelity"] > rows[2]["state_fidelity"]
+    with_threshold = [r for r in rows if r.get("threshold_two_qubit_error") is not None]
+    assert len(with_threshold) == 1
+    assert with_threshold[0]["fidelity_at_threshold"] >= 0.8
+
+
+def test_table_shows_fidelity_and_caution(tmp_path):
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "ring", "--strategy", "generic", "--seeds", "1")
+    assert code == 0, err
+    assert "F state" in out and "loss 2q/1q/idle/ro" in out and "not a promise about a device" in out
+
+
+def test_own_profile_file(tmp_path):
+    src = (ROOT / "topologies" / "profiles" / "superconducting.toml").read_text()
+    good = tmp_path / "lab.toml"
+    good.write_text(src.replace('name = "superconducting"', 'name = "lab-chip"'))
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", "--strategy", "generic", "--seeds", "1",
+                         "--profile", str(good), "--json")
+    assert code == 0, err
+    assert {r["profile"] for r in json.loads(out)["rows"]} == {"lab-chip"}
+
+
+def test_impossible_profile_is_refused(tmp_path):
+    src = (ROOT / "topologies" / "profiles" / "superconducting.toml").read_text()
+    bad = tmp_path / "bad.toml"
+    bad.write_text(src.replace("t2_us = 120.0", "t2_us = 400.0"))
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", "--profile", str(bad))
+    assert code == 2
+    assert "T2" in err and "Traceback" not in err
+
+
+def test_unknown_profile_name(tmp_path):
+    path = write(tmp_path, "m.json", SMALL)
+    code, _, err = run("compare", path, "-c", "line", "--profile", "quantum-toaster")
+    assert code == 2 and "quantum-toaster" in err
+
+
+def test_over_budget_row_fails_with_advice(tmp_path):
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", "--strategy", "generic", "--seeds", "1",
+                         "--memory-budget", "0.00001", "--json")
+    rows = json.loads(out)["rows"]
+    assert code == 1  # every row failed
+    assert all("compile-only" in r["error"] and "GiB" in r["error"] for r in rows)
