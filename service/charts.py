@@ -1,0 +1,432 @@
+"""Server-side charts of a study's rows: SVG (with ``<title>``/``<desc>``) or PNG bytes.
+
+Every chart is drawn from plain row dicts (what ``compiler.study.run_task`` returns and
+the API serves) with matplotlib's Agg backend and its object API (no pyplot state, so
+charts can be drawn from several request threads). Every chart carries a title, axis
+labels with units and a caption saying the figures come from a simulation under the
+named noise profile (or, for compile-only studies, from the compiler alone) and are not
+a device measurement.
+
+Chart kinds (:data:`CHART_KINDS`):
+
+* ``gates``    two-qubit gate count and depth per connectivity;
+* ``fidelity`` state fidelity and Hellinger fidelity per connectivity;
+* ``budget``   the error budget: Hellinger fidelity lost to each noise source, stacked;
+* ``sweep``    state fidelity against noise scale, with the fidelity target and each
+  connectivity's threshold scale marked (needs two or more noise scales).
+
+:func:`connectivity_chart` draws one connectivity with the model's variables on their
+physical qubits.
+
+Examples:
+    >>> rows = [{"connectivity": "line-2", "two_qubit_gates": 2, "depth": 7, "noise_scale": 1.0}]
+    >>> available_charts(rows)
+    ['gates']
+    >>> svg = render_chart("gates", rows, fmt="svg").decode()
+    >>> "<title" in svg and "not a device measurement" in svg
+    True
+"""
+
+from __future__ import annotations
+
+import io
+import re
+import textwrap
+from html import escape
+from typing import Any, Iterable, Mapping, Sequence
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+from matplotlib.figure import Figure  # noqa: E402
+
+from compiler.errors import ToposcoutError  # noqa: E402
+from compiler.targets import Connectivity, make_connectivity  # noqa: E402
+
+__all__ = [
+    "CHART_KINDS",
+    "CHART_TITLES",
+    "FORMATS",
+    "available_charts",
+    "caption",
+    "chart_description",
+    "render_chart",
+    "connectivity_chart",
+    "connectivity_for_row",
+    "drawing_description",
+    "usable_rows",
+]
+
+CHART_KINDS: tuple[str, ...] = ("gates", "fidelity", "budget", "sweep")
+CHART_TITLES: dict[str, str] = {
+    "gates": "Two-qubit gates and depth per connectivity",
+    "fidelity": "State and Hellinger fidelity per connectivity",
+    "budget": "Error budget: Hellinger fidelity lost per noise source",
+    "sweep": "State fidelity against noise scale",
+}
+FORMATS: tuple[str, ...] = ("svg", "png")
+
+_BUDGET = (("budget_two_qubit", "two-qubit gates", "#c0504d"),
+           ("budget_one_qubit", "one-qubit gates", "#e8a33d"),
+           ("budget_idle", "idling (T1/T2)", "#4f81bd"),
+           ("budget_readout", "readout", "#8064a2"))
+_BLUE, _ORANGE, _GREY = "#2f6db3", "#d9822b", "#b5b5b5"
+
+
+def usable_rows(rows: Iterable[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
+    """Rows that finished without an error (API rows that are still pending are dropped)."""
+    out = []
+    for r in rows:
+        if r.get("error") or r.get("status") in ("pending", "failed", "cancelled"):
+            continue
+        if r.get("two_qubit_gates") is None:
+            continue
+        out.append(r)
+    return out
+
+
+def _profile_of(rows: Sequence[Mapping[str, Any]]) -> str | None:
+    names = sorted({str(r["profile"]) for r in rows if r.get("profile")})
+    return ", ".join(names) if names else None
+
+
+def caption(rows: Sequence[Mapping[str, Any]], *, kind: str = "gates") -> str:
+    """The caption every chart carries: what the figures are and what they are not."""
+    profile = _profile_of(usable_rows(rows))
+    if profile and kind != "gates":
+        return (f"Simulation under the noise profile '{profile}' (invented typical values), "
+                f"not a device measurement.")
+    if profile:
+        return (f"Compiled circuits of a study simulated under the noise profile '{profile}'; "
+                f"compiler figures, not a device measurement.")
+    return "Compiler figures of a compile-only study (no noise simulated); not a device measurement."
+
+
+def _per_connectivity(rows: Sequence[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
+    """One row per connectivity (the one nearest noise scale 1), in first-seen order."""
+    best: dict[str, Mapping[str, Any]] = {}
+    for r in rows:
+        name = str(r.get("connectivity"))
+        d = abs(float(r.get("noise_scale") or 1.0) - 1.0)
+        if name not in best or d < abs(float(best[name].get("noise_scale") or 1.0) - 1.0):
+            best[name] = r
+    return list(best.values())
+
+
+def available_charts(rows: Iterable[Mapping[str, Any]]) -> list[str]:
+    """The chart kinds the rows can fill, in :data:`CHART_KINDS` order."""
+    ok = usable_rows(rows)
+    if not ok:
+        return []
+    kinds = ["gates"]
+    if any(r.get("state_fidelity") is not None for r in ok):
+        kinds.append("fidelity")
+    if any(r.get(k) is not None for r in ok for k, _, _ in _BUDGET):
+        kinds.append("budget")
+    scales = {float(r["noise_scale"]) for r in ok if r.get("state_fidelity") is not None
+              and r.get("noise_scale") is not None}
+    if len(scales) >= 2:
+        kinds.append("sweep")
+    return kinds
+
+
+def chart_description(kind: str, rows: Iterable[Mapping[str, Any]]) -> str:
+    """A one-paragraph text equivalent of a chart (its alt text and SVG ``<desc>``)."""
+    ok = usable_rows(rows)
+    per = _per_connectivity(ok)
+    if kind == "gates":
+        body = "; ".join(f"{r['connectivity']}: {r['two_qubit_gates']} two-qubit gates, depth {r.get('depth')}"
+                         for r in per)
+    elif kind == "fidelity":
+        body = "; ".join(f"{r['connectivity']}: state fidelity {_fmt(r.get('state_fidelity'))}, "
+                         f"Hellinger fidelity {_fmt(r.get('hellinger_fidelity'))}" for r in per)
+    elif kind == "budget":
+        body = "; ".join(f"{r['connectivity']}: " + ", ".join(f"{label} {_fmt(r.get(k))}" for k, label, _ in _BUDGET)
+                         for r in per)
+    elif kind == "sweep":
+        parts = []
+        for name, pts in _sweep_series(ok).items():
+            s = ", ".join(f"{x:g}x -> {_fmt(y)}" for x, y in pts)
+            thr = next((r.get("threshold_noise_scale") for r in ok if r.get("connectivity") == name
+                        and r.get("threshold_noise_scale") is not None), None)
+            parts.append(f"{name}: {s}" + (f"; target reached up to noise scale {thr:.3g}" if thr else ""))
+        body = "; ".join(parts)
+    else:
+        raise ToposcoutError(f"unknown chart {kind!r}; choose one of {', '.join(CHART_KINDS)}", field="chart")
+    return f"{CHART_TITLES[kind]}. {body}. {caption(ok, kind=kind)}"
+
+
+def _fmt(v: Any) -> str:
+    return "n/a" if v is None else f"{float(v):.3f}"
+
+
+def render_chart(kind: str, rows: Iterable[Mapping[str, Any]], *, fmt: str = "svg") -> bytes:
+    """Draw chart ``kind`` of the rows as SVG or PNG bytes.
+
+    Raises ToposcoutError (field ``chart``) for an unknown kind or format, or when the rows
+    cannot fill the chart (e.g. ``sweep`` with a single noise scale).
+    """
+    if fmt not in FORMATS:
+        raise ToposcoutError(f"unknown chart format {fmt!r}; choose svg or png", field="format")
+    if kind not in CHART_KINDS:
+        raise ToposcoutError(f"unknown chart {kind!r}; choose one of {', '.join(CHART_KINDS)}", field="chart")
+    ok = usable_rows(rows)
+    if kind not in available_charts(ok):
+        need = {"gates": "at least one finished row", "fidelity": "a noise simulation (not compile-only)",
+                "budget": "a noise simulation with the error budget",
+                "sweep": "finished noisy rows at two or more noise scales"}[kind]
+        raise ToposcoutError(f"the chart {kind!r} needs {need}; this study has none", field="chart")
+    draw = {"gates": _draw_gates, "fidelity": _draw_fidelity, "budget": _draw_budget, "sweep": _draw_sweep}[kind]
+    per = _per_connectivity(ok)
+    width = max(6.4, 1.1 * len(per) + 2.5) if kind != "sweep" else 7.0
+    fig = Figure(figsize=(min(width, 14.0), 4.6), layout="constrained")
+    draw(fig, ok)
+    fig.suptitle(CHART_TITLES[kind], fontsize=11)
+    _caption(fig, caption(ok, kind=kind))
+    return _save(fig, fmt, CHART_TITLES[kind], chart_description(kind, ok))
+
+
+def _caption(fig: Figure, text: str) -> None:
+    width_chars = int(fig.get_figwidth() * 15)
+    fig.supxlabel(textwrap.fill(text, width_chars), fontsize=8, style="italic", color="#444444")
+
+
+def _names(per: Sequence[Mapping[str, Any]]) -> list[str]:
+    return [str(r["connectivity"]) for r in per]
+
+
+def _draw_gates(fig: Figure, rows) -> None:
+    per = _per_connectivity(rows)
+    names = _names(per)
+    ax1, ax2 = fig.subplots(1, 2)
+    x = range(len(per))
+    bars = ax1.bar(x, [r["two_qubit_gates"] for r in per], color=_BLUE)
+    ax1.bar_label(bars, fontsize=8)
+    lb = next((r.get("lower_bound_two_qubit") for r in per if r.get("lower_bound_two_qubit") is not None), None)
+    if lb is not None:
+        ax1.axhline(lb, color="#333333", linestyle=":", linewidth=1, label=f"lower bound ({lb})")
+        ax1.legend(fontsize=8, loc="upper left")
+    ax1.set_ylabel("two-qubit gates (count)")
+    ax1.set_title("Two-qubit gate count", fontsize=10)
+    bars = ax2.bar(x, [r.get("depth") or 0 for r in per], color=_ORANGE, label="depth")
+    ax2.bar_label(bars, fontsize=8)
+    ax2.set_ylabel("circuit depth (layers of gates)")
+    ax2.set_title("Depth (without measurement)", fontsize=10)
+    for ax in (ax1, ax2):
+        ax.set_xticks(list(x), names, rotation=30, ha="right", fontsize=8)
+        ax.set_xlabel("connectivity (instance)")
+        ax.margins(y=0.15)
+
+
+def _draw_fidelity(fig: Figure, rows) -> None:
+    per = [r for r in _per_connectivity(rows) if r.get("state_fidelity") is not None]
+    names = _names(per)
+    ax = fig.subplots()
+    w = 0.38
+    xs = list(range(len(per)))
+    b1 = ax.bar([i - w / 2 for i in xs], [r["state_fidelity"] for r in per], w, color=_BLUE, label="state fidelity")
+    b2 = ax.bar([i + w / 2 for i in xs], [r.get("hellinger_fidelity") or 0 for r in per], w, color=_ORANGE,
+                label="Hellinger fidelity")
+    ax.bar_label(b1, fmt="%.3f", fontsize=7)
+    ax.bar_label(b2, fmt="%.3f", fontsize=7)
+    scales = sorted({r.get("noise_scale") for r in per})
+    ax.set_xticks(xs, names, rotation=30, ha="right", fontsize=8)
+    ax.set_xlabel("connectivity (instance)" + (f", noise scale {scales[0]:g}x" if len(scales) == 1 else ""))
+    ax.set_ylabel("fidelity (dimensionless, 0 to 1)")
+    ax.set_ylim(0, 1.12)
+    ax.legend(fontsize=8, loc="upper right", ncols=2)
+
+
+def _draw_budget(fig: Figure, rows) -> None:
+    per = [r for r in _per_connectivity(rows) if any(r.get(k) is not None for k, _, _ in _BUDGET)]
+    names = _names(per)
+    ax = fig.subplots()
+    xs = list(range(len(per)))
+    bottom = [0.0] * len(per)
+    for key, label, colour in _BUDGET:
+        vals = [max(0.0, float(r.get(key) or 0.0)) for r in per]
+        ax.bar(xs, vals, 0.6, bottom=bottom, color=colour, label=label)
+        bottom = [b + v for b, v in zip(bottom, vals)]
+    for i, r in enumerate(per):
+        if r.get("hellinger_fidelity") is not None:
+            ax.plot([i - 0.3, i + 0.3], [1 - r["hellinger_fidelity"]] * 2, color="#222222", linewidth=1.2,
+                    label="total loss (1 - Hellinger fidelity)" if i == 0 else None)
+    ax.set_xticks(xs, names, rotation=30, ha="right", fontsize=8)
+    ax.set_xlabel("connectivity (instance)")
+    ax.set_ylabel("Hellinger fidelity lost (absolute, 0 to 1)")
+    ax.margins(y=0.2)
+    ax.legend(fontsize=8, loc="upper left", ncols=2)
+
+
+def _sweep_series(rows) -> dict[str, list[tuple[float, float]]]:
+    series: dict[str, list[tuple[float, float]]] = {}
+    for r in rows:
+        if r.get("state_fidelity") is None or r.get("noise_scale") is None:
+            continue
+        series.setdefault(str(r["connectivity"]), []).append((float(r["noise_scale"]), float(r["state_fidelity"])))
+    return {k: sorted(v) for k, v in series.items()}
+
+
+def _draw_sweep(fig: Figure, rows) -> None:
+    ax = fig.subplots()
+    series = _sweep_series(rows)
+    colours = matplotlib.colormaps["tab10"]
+    for i, (name, pts) in enumerate(series.items()):
+        c = colours(i % 10)
+        thr = next((r.get("threshold_noise_scale") for r in rows if str(r.get("connectivity")) == name
+                    and r.get("threshold_noise_scale") is not None), None)
+        label = name if thr is None else f"{name} (target reached up to {thr:.3g}x)"
+        ax.plot([p[0] for p in pts], [p[1] for p in pts], marker="o", color=c, label=label)
+        if thr is not None:
+            ax.axvline(thr, color=c, linestyle="--", linewidth=1)
+            ax.annotate(f"threshold {thr:.3g}x", (thr, 0.03 + 0.06 * (i % 4)), color=c, fontsize=7,
+                        ha="right", va="bottom", xytext=(-3, 0), textcoords="offset points")
+    target = next((r.get("fidelity_target") for r in rows if r.get("fidelity_target") is not None), None)
+    if target is not None:
+        ax.axhline(target, color="#222222", linestyle=":", linewidth=1.2, label=f"fidelity target {target:g}")
+    ax.set_xlabel("noise scale (multiple of the profile's error rates)")
+    ax.set_ylabel("state fidelity (dimensionless, 0 to 1)")
+    ax.set_ylim(0, 1.05)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8, loc="lower left")
+
+
+# --- connectivity drawings ---------------------------------------------------------------
+
+def connectivity_for_row(row: Mapping[str, Any], request: Mapping[str, Any] | None = None) -> Connectivity:
+    """Rebuild the connectivity a row was compiled on from its name (``grid-3x4``, ...).
+
+    A ``custom`` connectivity is rebuilt from the edge lists in the study's request.
+    """
+    name = str(row.get("connectivity") or "")
+    family = row.get("connectivity_family") or next(
+        (f for f in ("all-to-all", "heavy-hex", "line", "ring", "grid", "custom") if name.startswith(f + "-")), None)
+    n = int(row.get("variables") or 1)
+    if family == "custom":
+        for spec in (request or {}).get("connectivities") or []:
+            if isinstance(spec, Mapping) and spec.get("edges"):
+                try:
+                    c = make_connectivity("custom", n, edges=spec["edges"])
+                except ToposcoutError:
+                    continue
+                if c.name == name:
+                    return c
+        raise ToposcoutError(f"cannot rebuild the custom connectivity {name!r}: its edges are not in the request",
+                             field="connectivity")
+    if not family or not name.startswith(family + "-"):
+        raise ToposcoutError(f"cannot tell the family of connectivity {name!r}", field="connectivity")
+    return make_connectivity(family, n, size=name[len(family) + 1:])
+
+
+def _active_guess(row: Mapping[str, Any]) -> set[int]:
+    act = set((row.get("layout") or {}).values()) | set((row.get("final_layout") or {}).values())
+    for e in (row.get("swap_edges") or {}):
+        a, b = e.split("-")
+        act.update((int(a), int(b)))
+    return act
+
+
+def drawing_description(row: Mapping[str, Any], conn: Connectivity, active: Iterable[int] | None = None) -> str:
+    """Text equivalent of a connectivity drawing (its alt text and SVG ``<desc>``)."""
+    layout = row.get("layout") or {}
+    act = set(active) if active is not None else _active_guess(row)
+    placed = ", ".join(f"{v} on q{p}" for v, p in layout.items())
+    swaps = row.get("swap_edges") or {}
+    sw = (", ".join(f"q{e.replace('-', '-q')} ({n})" for e, n in swaps.items())) if swaps else "none"
+    idle = conn.num_qubits - len(act)
+    return (f"Connectivity {conn.name} ({conn.num_qubits} qubits, {len(conn.edges)} couplings). "
+            f"Variables placed: {placed}. Couplings that carried SWAPs: {sw}. "
+            f"{idle} idle qubit{'s' if idle != 1 else ''} greyed. {caption([row], kind='gates')}")
+
+
+def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: Iterable[int] | None = None,
+                       fmt: str = "svg") -> bytes:
+    """Draw ``conn`` with the row's variables on their initial physical qubits.
+
+    active: default None: the qubits the circuit touches are guessed from the layouts and
+        the SWAP edges; pass the compiled circuit's active qubits when known. Qubits not
+        active are drawn grey (idle). Couplings in ``row["swap_edges"]`` are highlighted
+        with their SWAP count.
+    """
+    if fmt not in FORMATS:
+        raise ToposcoutError(f"unknown chart format {fmt!r}; choose svg or png", field="format")
+    layout = {str(v): int(p) for v, p in (row.get("layout") or {}).items()}
+    by_qubit = {p: v for v, p in layout.items()}
+    act = set(active) if active is not None else _active_guess(row)
+    swaps = {tuple(sorted(int(x) for x in e.split("-"))): int(n) for e, n in (row.get("swap_edges") or {}).items()}
+    xy = conn.coords()
+    n = conn.num_qubits
+    big = n > 30
+    side = 4.5 if n <= 8 else (6.0 if n <= 30 else 8.5)
+    fig = Figure(figsize=(side + 1.5, side * 0.8 + 1.2), layout="constrained")
+    ax = fig.subplots()
+    dense = len(conn.edges) > 3 * n
+    for a, b in conn.edges:
+        (x1, y1), (x2, y2) = xy[a], xy[b]
+        if (a, b) in swaps:
+            ax.plot([x1, x2], [y1, y2], color=_ORANGE, linewidth=3.5, zorder=2, solid_capstyle="round")
+            ax.text((x1 + x2) / 2, (y1 + y2) / 2, f"{swaps[(a, b)]} SWAP", fontsize=7, color="#7a3f00",
+                    ha="center", va="center", zorder=5,
+                    bbox=dict(boxstyle="round,pad=0.15", fc="white", ec=_ORANGE, lw=0.8))
+        else:
+            ax.plot([x1, x2], [y1, y2], color="#cfcfcf" if dense else "#9a9a9a",
+                    linewidth=0.6 if dense else 1.2, zorder=1)
+    size = 120 if big else 420
+    for q in range(n):
+        x, y = xy[q]
+        if q in by_qubit:
+            face, edge = _BLUE, "#17375e"
+        elif q in act:
+            face, edge = "#9cc3e6", _BLUE
+        else:
+            face, edge = "#e6e6e6", _GREY
+        ax.scatter([x], [y], s=size, c=face, edgecolors=edge, linewidths=1.2, zorder=3)
+        ax.text(x, y, str(q), fontsize=5 if big else 7, ha="center", va="center", zorder=4,
+                color="white" if q in by_qubit else "#555555")
+        if q in by_qubit:
+            ax.annotate(by_qubit[q], (x, y), xytext=(0, 9 if big else 13), textcoords="offset points",
+                        fontsize=7 if big else 8, ha="center", va="bottom", color="#17375e", zorder=6,
+                        fontweight="bold")
+    # legend proxies
+    ax.scatter([], [], s=60, c=_BLUE, edgecolors="#17375e", label="variable placed (initial layout)")
+    if act - set(by_qubit):
+        ax.scatter([], [], s=60, c="#9cc3e6", edgecolors=_BLUE, label="used for routing only")
+    ax.scatter([], [], s=60, c="#e6e6e6", edgecolors=_GREY, label="idle qubit")
+    if swaps:
+        ax.plot([], [], color=_ORANGE, linewidth=3.5, label="coupling that carried SWAPs")
+    ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncols=2, frameon=False)
+    ax.set_aspect("equal", adjustable="datalim")
+    ax.margins(0.12)
+    ax.set_xticks([])
+    ax.set_yticks([])
+    for s in ax.spines.values():
+        s.set_visible(False)
+    ax.set_xlabel("drawing position (qubit spacing, no physical distance)", fontsize=8)
+    ax.set_ylabel("drawing position (qubit spacing)", fontsize=8)
+    title = f"{conn.name}: variables on physical qubits"
+    ax.set_title(title, fontsize=10)
+    _caption(fig, caption([row], kind="gates"))
+    return _save(fig, fmt, title, drawing_description(row, conn, act))
+
+
+# --- output ------------------------------------------------------------------------------
+
+_SVG_OPEN = re.compile(rb"<svg\b[^>]*>")
+
+
+def _save(fig: Figure, fmt: str, title: str, desc: str) -> bytes:
+    buf = io.BytesIO()
+    if fmt == "png":
+        fig.savefig(buf, format="png", dpi=110, metadata={"Title": title, "Description": desc})
+        return buf.getvalue()
+    with matplotlib.rc_context({"svg.fonttype": "none", "svg.hashsalt": "toposcout"}):
+        fig.savefig(buf, format="svg", metadata={"Date": None, "Title": title, "Description": desc})
+    svg = buf.getvalue()
+    m = _SVG_OPEN.search(svg)
+    if m is None:  # pragma: no cover - matplotlib always writes an <svg> element
+        return svg
+    open_tag = m.group(0)[:-1] + b' role="img" aria-labelledby="chart-title chart-desc">'
+    extra = (f'<title id="chart-title">{escape(title)}</title>'
+             f'<desc id="chart-desc">{escape(desc)}</desc>').encode()
+    return svg[:m.start()] + open_tag + extra + svg[m.end():]
