@@ -70,7 +70,7 @@ def synthesize_block(
     placement: Sequence[int],
     *,
     seeds: Sequence[int] = (0,),
-    lams: Sequence[float] = (0.5,),
+    lams: Sequence[float] = (0.25, 1.0),
 ) -> Block:
     """Synthesise ``Π exp(-i θ Z_S)`` on ``region`` starting from ``placement``.
 

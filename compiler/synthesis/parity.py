@@ -76,6 +76,7 @@ def synthesize_parities(
     lam: float = 0.5,
     seed: int = 0,
     polish: bool = True,
+    eager: bool = True,
 ) -> ParityNetwork:
     """A CNOT+RZ network on the graph ``adj`` producing every parity with its angle.
 
@@ -87,6 +88,9 @@ def synthesize_parities(
     lam: default 0.5; weight of the distance-to-a-permutation term in the greedy cost.
     seed: default 0; breaks ties between equally good CNOTs.
     polish: default True; greedy descent towards a permutation before the exact peeling.
+    eager: default True; a CNOT that puts a wanted parity on a wire is always preferred
+        (the best such by the greedy score), so that consecutive parities share CNOTs as in a
+        Gray-code walk.
     """
     n = len(adj)
     rng = random.Random(seed)
@@ -143,6 +147,21 @@ def synthesize_parities(
     while left:
         if forced >= 0 and not alive[forced]:
             forced = -1
+        if forced < 0 and eager:
+            prod = set()
+            for k in range(P):
+                if alive[k] and cur[k] == 1:
+                    m = z[k]
+                    a = m.bit_length() - 1
+                    b = (m ^ (1 << a)).bit_length() - 1
+                    prod.add((a, b))
+                    prod.add((b, a))
+            if prod:
+                scored = sorted((delta(c, t), c, t) for c, t in prod)
+                top = [x for x in scored if x[0] <= scored[0][0] + 1e-12]
+                _, c, t = top[rng.randrange(len(top))] if len(top) > 1 else top[0]
+                apply(c, t)
+                continue
         if forced < 0:
             best_d = 0.0
             best: list[tuple[int, int]] = []

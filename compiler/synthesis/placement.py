@@ -2,7 +2,8 @@
 
 Candidates, best first:
 
-1. an exact embedding: a subgraph monomorphism of the interaction graph (variables joined
+1. an exact embedding: for a chain model a long path of the coupling graph found by a
+   Warnsdorff walk; otherwise a subgraph monomorphism of the interaction graph (variables joined
    when they share a term) into the coupling graph, found with VF2 (Cordella, Foggia, Sansone
    & Vento 2004; rustworkx's implementation, with a call limit so it cannot run away);
 2. seeded greedy placements polished by local search, minimising the total Steiner cost of
@@ -21,7 +22,7 @@ import rustworkx as rx
 
 from compiler.synthesis.steiner import SteinerCost, all_pairs_distances
 
-__all__ = ["interaction_graph", "exact_embedding", "placement_cost", "search_placement",
+__all__ = ["interaction_graph", "exact_embedding", "path_embedding", "placement_cost", "search_placement",
            "candidate_placements"]
 
 
@@ -69,6 +70,7 @@ class _Scorer:
         self.nodes = sorted(coupling.nodes)
         self.index = {q: i for i, q in enumerate(self.nodes)}
         adj = [[self.index[v] for v in coupling[q]] for q in self.nodes]
+        self.adj = adj
         self.dist = all_pairs_distances(adj)
         self.cost = SteinerCost(self.dist)
         self.supports = [tuple(sorted(set(s))) for s in supports if len(set(s)) >= 2]
@@ -138,7 +140,10 @@ def search_placement(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: i
                     pos[v] = q
                     c = sum(sc.term(k, pos) for k in sc.by_var[v])
                     c2 = sum(dist[q][p] for p in nb)
-                    key = (c, c2, rng.random() if seed else 0.0, q)
+                    # Warnsdorff's rule: prefer qubits with few free neighbours, which keeps
+                    # the placed set compact and avoids growing into dead ends
+                    c3 = sum(1 for u in sc.adj[q] if u in free)
+                    key = (c, c2, c3, rng.random() if seed else 0.0, q)
                     if best is None or key < best[0]:
                         best = (key, q)
                 pos[v] = best[1]
@@ -185,6 +190,43 @@ def search_placement(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: i
     return [sc.nodes[p] for p in pos]
 
 
+def path_embedding(inter: nx.Graph, coupling: nx.Graph, *, tries: int = 200) -> list[int] | None:
+    """For an interaction graph that is a simple path: a simple path of the same length in the
+    coupling graph, found by Warnsdorff-rule walks (always step to the unvisited neighbour
+    with the fewest unvisited neighbours) from the lowest-degree qubits; None otherwise."""
+    n = inter.number_of_nodes()
+    if n < 2 or inter.number_of_edges() != n - 1 or max(d for _, d in inter.degree) > 2 \
+            or not nx.is_connected(inter):
+        return None
+    ends = [v for v, d in inter.degree if d == 1]
+    order = [ends[0]]
+    prev = None
+    while len(order) < n:
+        nxt = next(u for u in inter[order[-1]] if u != prev)
+        prev = order[-1]
+        order.append(nxt)
+    rng = random.Random(0)
+    starts = sorted(coupling.nodes, key=lambda q: (coupling.degree(q), q))
+    for attempt in range(tries):
+        s0 = starts[attempt % len(starts)]
+        walk = [s0]
+        seen = {s0}
+        while len(walk) < n:
+            options = [u for u in coupling[walk[-1]] if u not in seen]
+            if not options:
+                break
+            u = min(options, key=lambda x: (sum(1 for y in coupling[x] if y not in seen),
+                                            rng.random() if attempt else x))
+            walk.append(u)
+            seen.add(u)
+        if len(walk) == n:
+            out = [0] * n
+            for v, q in zip(order, walk):
+                out[v] = q
+            return out
+    return None
+
+
 def candidate_placements(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int, *, seed: int = 0,
                          count: int = 3) -> list[tuple[str, list[int]]]:
     """Up to ``count`` distinct placements, the cheapest (by Steiner cost) first.
@@ -199,7 +241,7 @@ def candidate_placements(supports: Sequence[Sequence[int]], coupling: nx.Graph, 
         p = list(sorted(coupling.nodes)[:n])
         return [("exact", p)]
     inter = interaction_graph(sc.supports, n)
-    emb = exact_embedding(inter, coupling)
+    emb = path_embedding(inter, coupling) or exact_embedding(inter, coupling)
     if emb is not None:
         emb = search_placement(supports, coupling, n, seed=seed, scorer=sc, start=emb)
         seen.add(tuple(emb))

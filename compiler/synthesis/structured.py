@@ -28,20 +28,20 @@ __all__ = ["compile_structured", "structured_layers", "search_budget"]
 
 
 def search_budget(num_parities: int, num_edges: int) -> tuple[int, tuple[float, ...], int]:
-    """(placements, greedy weights, seeds) tried, from the problem size alone (deterministic).
+    """(placements, greedy weights, seeds per weight) tried, from the problem size alone.
 
-    Small blocks get a wider search; the work of one greedy run grows roughly with
-    parities x edges.
+    Deterministic (no clocks). One greedy run costs roughly parities x edges x steps, so
+    the number of runs falls as that product grows: about 36 runs for a 9-variable model,
+    one run for models with hundreds of parities.
     """
     work = max(1, num_parities) * max(1, num_edges)
-    if work <= 3_000:
-        return 3, (0.25, 0.5, 1.0), 6
-    if work <= 12_000:
-        return 3, (0.25, 0.5, 1.0), 3
-    if work <= 40_000:
-        return 2, (0.5, 1.0), 2
-    if work <= 150_000:
-        return 1, (0.5,), 2
+    runs = max(1, min(36, 20_000 // work))
+    if runs >= 12:
+        return 3, (0.25, 1.0), runs // 6
+    if runs >= 4:
+        return 2, (0.25, 1.0), runs // 4
+    if runs >= 2:
+        return 1, (0.5, 1.0), 1
     return 1, (0.5,), 1
 
 
