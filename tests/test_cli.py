@@ -190,3 +190,12 @@ def test_over_budget_row_fails_with_advice(tmp_path):
     rows = json.loads(out)["rows"]
     assert code == 1  # every row failed
     assert all("compile-only" in r["error"] and "GiB" in r["error"] for r in rows)
+
+
+def test_custom_connectivity_from_the_example_edge_list():
+    code, out, err = run("compare", "examples/orchard-frost.json", "-c", "custom:examples/ladder-chip.edges",
+                         "--compile-only", "--json")
+    assert code == 0, err
+    (row,) = json.loads(out)["rows"]
+    assert row["connectivity"] == "custom-10" and row["physical_qubits"] == 10
+    assert set(row["layout"].values()) <= set(range(10))
