@@ -20,6 +20,7 @@ from qiskit.circuit.library import CXGate
 from qiskit.transpiler import PassManager
 from qiskit.transpiler.passes import BasisTranslator, InverseCancellation, Optimize1qGatesDecomposition
 
+from compiler.compiled import Compiled, check_coupling, measured_layout
 from compiler.errors import CompileError, TargetError
 from compiler.synthesis.block import Block, make_region, synthesize_block
 from compiler.synthesis.placement import candidate_placements
@@ -89,8 +90,6 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
 
     seed: default 0; seeds the placement search and the greedy tie-breaking.
     """
-    from compiler.compiled import Compiled, check_coupling, measured_layout
-
     start = time.perf_counter()
     n = ansatz.num_qubits
     N = connectivity.num_qubits

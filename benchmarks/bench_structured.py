@@ -1,0 +1,105 @@
+"""Structured vs generic two-qubit counts on the issue's four models (cx gate set).
+
+Run: .venv/bin/python benchmarks/bench_structured.py [--generic-seeds 5] [--json out.json]
+Prints one row per (model, connectivity): LB, structured 2q count / depth / seconds, generic
+(qiskit preset pipeline, optimization level 3, best of the seeds) 2q count / depth, ratios.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import time
+
+from compiler.ansatz import build_ansatz
+from compiler.compile import compile_generic
+from compiler.model import parse_model
+from compiler.synthesis import compile_structured
+from compiler.targets import get_gate_set, make_connectivity
+
+# best qiskit figure per cell measured for the issue (line, grid, heavy-hex, all-to-all)
+ISSUE_BEST = {
+    "plaquettes-3x3": {"line": 184, "grid": 112, "heavy-hex": 152, "all-to-all": 66},
+    "plaquettes-3x4": {"line": 288, "grid": 185, "heavy-hex": 246, "all-to-all": 92},
+    "triangles-3x3": {"line": 84, "grid": 57, "heavy-hex": 75, "all-to-all": 36},
+    "ring10-triples": {"line": 135, "grid": 89, "heavy-hex": 95, "all-to-all": 54},
+}
+
+
+def _grid_plaquettes(rows, cols):
+    idx = lambda r, c: r * cols + c  # noqa: E731
+    return [[idx(r, c), idx(r, c + 1), idx(r + 1, c), idx(r + 1, c + 1)]
+            for r in range(rows - 1) for c in range(cols - 1)], rows * cols
+
+
+def _triangles(rows, cols):
+    idx = lambda r, c: r * cols + c  # noqa: E731
+    out = []
+    for r in range(rows - 1):
+        for c in range(cols - 1):
+            out.append([idx(r, c), idx(r, c + 1), idx(r + 1, c + 1)])
+            out.append([idx(r, c), idx(r + 1, c), idx(r + 1, c + 1)])
+    return out, rows * cols
+
+
+MODELS = {
+    "plaquettes-3x3": _grid_plaquettes(3, 3),
+    "plaquettes-3x4": _grid_plaquettes(3, 4),
+    "triangles-3x3": _triangles(3, 3),
+    "ring10-triples": ([[i, (i + 1) % 10, (i + 2) % 10] for i in range(10)], 10),
+}
+FAMILIES = ("line", "ring", "grid", "heavy-hex", "all-to-all")
+
+
+def model(cliques, n, name):
+    return parse_model({"name": name, "variables": [f"v{i}" for i in range(n)],
+                        "cliques": [[f"v{i}" for i in c] for c in cliques]})
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--generic-seeds", type=int, default=5)
+    ap.add_argument("--json")
+    args = ap.parse_args(argv)
+    gs = get_gate_set("cx")
+    rows = []
+    for name, (cliques, n) in MODELS.items():
+        a = build_ansatz(model(cliques, n, name))
+        lb = a.stats()["lower_bound_two_qubit"]
+        for fam in FAMILIES:
+            con = make_connectivity(fam, n)
+            t = time.perf_counter()
+            st = compile_structured(a, con, gs)
+            st_s = time.perf_counter() - t
+            row = {"model": name, "connectivity": con.name, "family": fam, "lb": lb,
+                   "structured": st.two_qubit_gates(), "structured_depth": st.depth(),
+                   "structured_seconds": round(st_s, 3), "issue_best": ISSUE_BEST[name].get(fam)}
+            if args.generic_seeds > 0:
+                gen = compile_generic(a, con, gs, seeds=args.generic_seeds)
+                row.update(generic=gen.two_qubit_gates(), generic_depth=gen.depth())
+            rows.append(row)
+            best = row["issue_best"]
+            print(f"{name:16s} {fam:10s} LB {lb:3d}  structured {row['structured']:4d} "
+                  f"(x{row['structured'] / lb:.2f} LB"
+                  + (f", {row['structured'] / best:.2f} of issue best {best}" if best else "")
+                  + f") depth {row['structured_depth']:4d} {st_s:5.2f}s"
+                  + (f" | generic {row['generic']:4d} depth {row['generic_depth']:4d}" if "generic" in row else ""),
+                  flush=True)
+    cons = [r["structured"] / r["issue_best"] for r in rows if r["family"] != "all-to-all" and r["issue_best"]]
+    print(f"median structured / issue best over constrained table cells: {statistics.median(cons):.3f}")
+    a2a = [r["structured"] / r["lb"] for r in rows if r["family"] == "all-to-all"]
+    print(f"all-to-all structured / LB: max {max(a2a):.2f}")
+    if all("generic" in r for r in rows):
+        dr = [r["structured_depth"] / r["generic_depth"] for r in rows]
+        gr = [r["structured"] / r["generic"] for r in rows if r["family"] != "all-to-all"]
+        print(f"median depth structured / generic: {statistics.median(dr):.3f}; "
+              f"median 2q structured / generic (constrained): {statistics.median(gr):.3f}")
+    if args.json:
+        with open(args.json, "w") as fh:
+            json.dump(rows, fh, indent=1)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
