@@ -1,0 +1,426 @@
+"""Executors: where the tasks of a study run.
+
+The API never runs a task itself: the simulator holds the GIL for a whole run, so a task in
+the API process (or one of its threads) would freeze every other request. An executor takes
+``(task_index, task)`` pairs, runs each through :func:`compiler.study.run_task` somewhere
+else, and writes every finished row to the store itself (``store.record_row``), so a server
+killed at any moment loses at most the rows that were running; the API resubmits the pending
+rows of unfinished studies at start-up.
+
+* :class:`Executor`: the interface (``start``, ``submit``, ``cancel``, ``shutdown``, ``pending``).
+* :class:`LocalExecutor`: a few worker processes of our own (``spawn``), one task at a time
+  each. A task past the time limit gets its process killed (and replaced) and its row fails
+  with the reason; a cancelled study's running tasks are stopped the same way. Two studies
+  asking for the same task key while it runs share one computation.
+* :class:`ProcessLane`: one worker process for synchronous calls (``POST /v1/compile``).
+* :func:`make_executor`: the Dask executor when ``settings.dask_address`` is set, else local.
+"""
+
+from __future__ import annotations
+
+import abc
+import collections
+import logging
+import multiprocessing
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+__all__ = ["Executor", "LocalExecutor", "ProcessLane", "make_executor", "failure_row", "TaskTimeout"]
+
+log = logging.getLogger("toposcout.executor")
+
+
+class Executor(abc.ABC):
+    """Runs the tasks of studies and records their rows in the store."""
+
+    @abc.abstractmethod
+    def start(self) -> None:
+        """Start workers (or connect to them); called once by the API at start-up."""
+
+    @abc.abstractmethod
+    def submit(self, study_id: str, tasks: list[tuple[int, dict]]) -> None:
+        """Queue ``(task_index, task)`` pairs of a study (rows still pending in the store)."""
+
+    @abc.abstractmethod
+    def cancel(self, study_id: str) -> None:
+        """Drop the study's queued tasks and stop its running ones where possible."""
+
+    @abc.abstractmethod
+    def shutdown(self) -> None:
+        """Stop the workers; queued tasks stay pending in the store for the next start."""
+
+    @abc.abstractmethod
+    def pending(self, study_id: str | None = None) -> int:
+        """Tasks queued or running (of one study, or all)."""
+
+
+def failure_row(task: Mapping[str, Any], message: str, field_name: str) -> dict:
+    """A row for a task the executor failed (time limit, dead worker): what is known up front."""
+    spec = task.get("connectivity") or {}
+    family = spec.get("family") if isinstance(spec, Mapping) else str(spec).partition(":")[0]
+    model = task.get("model") or {}
+    return {"error": message, "error_field": field_name, "connectivity": family,
+            "noise_scale": task.get("noise_scale", 1.0), "gate_set": task.get("gate_set", "cx"),
+            "strategy_requested": task.get("strategy", "auto"), "model": model.get("name"),
+            "variables": len(model.get("variables") or ()), "row_seconds": 0.0}
+
+
+def _worker_main(conn) -> None:  # pragma: no cover - runs in the child process
+    """Child process: receive tasks, answer rows, until ``None`` or the pipe closes."""
+    from compiler.study import run_task
+
+    conn.send(("ready", None))
+    while True:
+        try:
+            task = conn.recv()
+        except (EOFError, OSError):
+            return
+        if task is None:
+            return
+        try:
+            row = run_task(task)
+        except Exception as exc:  # a bug: the row says so, the worker lives on
+            row = failure_row(task, f"internal error while running the task ({type(exc).__name__}: {exc})",
+                              "executor")
+        try:
+            conn.send(("row", row))
+        except (BrokenPipeError, OSError):
+            return
+
+
+class TaskTimeout(Exception):
+    pass
+
+
+class WorkerDied(Exception):
+    pass
+
+
+class _Worker:
+    """One spawned child process running :func:`_worker_main`, killable at any time."""
+
+    def __init__(self):
+        self.proc: multiprocessing.Process | None = None
+        self.conn = None
+        self.restarts = 0
+
+    def ensure(self) -> None:
+        if self.proc is not None and self.proc.is_alive():
+            return
+        self.close()
+        ctx = multiprocessing.get_context("spawn")
+        parent, child = ctx.Pipe()
+        self.proc = ctx.Process(target=_worker_main, args=(child,), daemon=True, name="toposcout-worker")
+        self.proc.start()
+        child.close()
+        self.conn = parent
+        if not self.conn.poll(120):
+            raise WorkerDied("the worker process did not start within 120 s")
+        self.conn.recv()
+
+    def run(self, task: dict, time_limit: float, should_stop=lambda: False) -> dict | None:
+        """The row of ``task``; raises TaskTimeout / WorkerDied; None when ``should_stop()``."""
+        self.ensure()
+        self.conn.send(task)
+        deadline = time.monotonic() + time_limit
+        while True:
+            try:
+                ready = self.conn.poll(0.05)
+            except (EOFError, OSError):
+                ready = True
+            if ready:
+                try:
+                    kind, row = self.conn.recv()
+                    return row
+                except (EOFError, OSError):
+                    code = self.proc.exitcode if self.proc else None
+                    self.kill()
+                    raise WorkerDied(f"the worker process exited (code {code}) while running the task")
+            if self.proc is not None and not self.proc.is_alive():
+                code = self.proc.exitcode
+                self.kill()
+                raise WorkerDied(f"the worker process exited (code {code}) while running the task; "
+                                 "it may have run out of memory")
+            if should_stop():
+                self.kill()
+                return None
+            if time.monotonic() > deadline:
+                self.kill()
+                raise TaskTimeout()
+
+    def kill(self) -> None:
+        if self.proc is not None:
+            if self.proc.is_alive():
+                self.proc.kill()
+            self.proc.join(5)
+            self.restarts += 1
+        self.close()
+
+    def close(self) -> None:
+        if self.conn is not None:
+            try:
+                self.conn.close()
+            except OSError:
+                pass
+        self.conn = None
+        self.proc = None
+
+    def stop(self) -> None:
+        """Stop the process now (an unfinished task stays pending in the store)."""
+        if self.proc is not None and self.proc.is_alive():
+            self.proc.kill()
+            self.proc.join(5)
+        self.close()
+
+
+def timeout_message(limit: float) -> str:
+    return (f"the task ran past the time limit of {limit:g} s and was stopped; use a smaller model, fewer seeds "
+            f"or compile-only, or ask for a larger TOPOSCOUT_TASK_TIME_LIMIT_SECONDS")
+
+
+@dataclass
+class _Item:
+    study_id: str
+    task_index: int
+    task: dict
+    key: str
+    followers: list["_Item"] = field(default_factory=list)
+
+
+class LocalExecutor(Executor):
+    """Worker processes on this machine (``spawn``), one task each at a time.
+
+    workers: default ``settings.workers``; time_limit: default ``settings.task_time_limit_seconds``.
+    """
+
+    def __init__(self, settings: Any, store: Any, *, workers: int | None = None, time_limit: float | None = None):
+        self.store = store
+        self.workers = int(workers or getattr(settings, "workers", 2))
+        self.time_limit = float(time_limit or getattr(settings, "task_time_limit_seconds", 900.0))
+        self._cv = threading.Condition()
+        self._queue: collections.deque[_Item] = collections.deque()
+        self._queued: set[tuple[str, int]] = set()
+        self._running: dict[str, _Item] = {}        # task key -> leader item being computed
+        self._cancelled: set[str] = set()
+        self._stop = threading.Event()
+        self._threads: list[threading.Thread] = []
+        self._slots: list[_Worker] = []
+        self.stats: collections.Counter = collections.Counter()
+
+    # --- interface ------------------------------------------------------------------
+    def start(self) -> None:
+        if self._threads:
+            return
+        for n in range(self.workers):
+            w = _Worker()
+            self._slots.append(w)
+            t = threading.Thread(target=self._slot, args=(w,), name=f"toposcout-slot-{n}", daemon=True)
+            t.start()
+            self._threads.append(t)
+
+    def submit(self, study_id: str, tasks: list[tuple[int, dict]]) -> None:
+        from compiler.study import task_key
+
+        keys = self.store.task_keys(study_id) if tasks else {}
+        with self._cv:
+            self._cancelled.discard(study_id)
+            for i, task in tasks:
+                if (study_id, i) in self._queued:
+                    continue
+                self._queued.add((study_id, i))
+                self._queue.append(_Item(study_id, int(i), dict(task), keys.get(int(i)) or task_key(task)))
+            self._cv.notify_all()
+
+    def cancel(self, study_id: str) -> None:
+        with self._cv:
+            self._cancelled.add(study_id)
+            keep = collections.deque()
+            for item in self._queue:
+                if item.study_id == study_id:
+                    self._queued.discard((item.study_id, item.task_index))
+                else:
+                    keep.append(item)
+            self._queue = keep
+            for leader in self._running.values():
+                leader.followers = [f for f in leader.followers if f.study_id != study_id]
+            self._cv.notify_all()
+
+    def shutdown(self) -> None:
+        self._stop.set()
+        with self._cv:
+            self._cv.notify_all()
+        for w in self._slots:  # unblocks a slot waiting on its worker
+            w.stop()
+        for t in self._threads:
+            t.join(10)
+        self._threads.clear()
+        self._slots.clear()
+
+    def pending(self, study_id: str | None = None) -> int:
+        with self._cv:
+            return sum(1 for s, _ in self._queued if study_id is None or s == study_id)
+
+    def running(self) -> int:
+        with self._cv:
+            return len(self._running)
+
+    def wait_idle(self, timeout: float = 60.0) -> bool:
+        end = time.monotonic() + timeout
+        while time.monotonic() < end:
+            if self.pending() == 0:
+                return True
+            time.sleep(0.05)
+        return False
+
+    # --- the slots ------------------------------------------------------------------
+    def _take(self) -> _Item | None:
+        with self._cv:
+            while not self._stop.is_set():
+                while self._queue:
+                    item = self._queue.popleft()
+                    if item.study_id in self._cancelled:
+                        self._queued.discard((item.study_id, item.task_index))
+                        continue
+                    leader = self._running.get(item.key)
+                    if leader is not None:  # the same work is running: share its row
+                        leader.followers.append(item)
+                        continue
+                    self._running[item.key] = item
+                    return item
+                self._cv.wait(0.5)
+        return None
+
+    def _slot(self, worker: _Worker) -> None:
+        try:
+            worker.ensure()  # warm the process before the first task arrives
+        except Exception as exc:  # pragma: no cover - spawn failing is an environment problem
+            if not self._stop.is_set():
+                log.error("worker process failed to start: %s", exc)
+        while not self._stop.is_set():
+            item = self._take()
+            if item is None:
+                return
+            try:
+                self._run_item(worker, item)
+            except Exception as exc:  # the store failed: leave the rows pending for a restart
+                log.error("recording study %s row %s failed: %s", item.study_id, item.task_index, exc)
+                self._finish(item, None)
+
+    def _run_item(self, worker: _Worker, item: _Item) -> None:
+        cached = self.store.cached_row(item.key)
+        if cached is not None:
+            self.store.record_row(item.study_id, item.task_index, cached, cached.get("row_seconds"), cached=True)
+            self.stats["cached"] += 1
+            self._finish(item, cached, shared=True)
+            return
+        self.store.mark_running(item.study_id)
+        started = time.perf_counter()
+        try:
+            row = worker.run(item.task, self.time_limit, should_stop=lambda: self._all_cancelled(item))
+        except TaskTimeout:
+            self.stats["timeouts"] += 1
+            row = failure_row(item.task, timeout_message(self.time_limit), "task_time_limit")
+        except (WorkerDied, OSError, EOFError, AttributeError) as exc:
+            if self._stop.is_set():  # shutting down: the row stays pending for the next start
+                self._finish(item, None)
+                return
+            self.stats["worker_deaths"] += 1
+            row = failure_row(item.task, str(exc) if isinstance(exc, WorkerDied)
+                              else f"the worker process was lost while running the task ({exc})", "worker")
+        if self._stop.is_set():
+            self._finish(item, None)
+            return
+        seconds = time.perf_counter() - started
+        if row is None:  # cancelled while running
+            self.stats["stopped"] += 1
+            self._finish(item, None)
+            return
+        row["row_seconds"] = row.get("row_seconds") or round(seconds, 4)
+        if item.study_id not in self._cancelled:
+            self.store.record_row(item.study_id, item.task_index, row, seconds)
+        self.stats["computed"] += 1
+        self._finish(item, row)
+
+    def _all_cancelled(self, item: _Item) -> bool:
+        with self._cv:
+            return item.study_id in self._cancelled and all(f.study_id in self._cancelled for f in item.followers)
+
+    def _finish(self, item: _Item, row: dict | None, shared: bool = False) -> None:
+        with self._cv:
+            self._running.pop(item.key, None)
+            self._queued.discard((item.study_id, item.task_index))
+            followers, item.followers = item.followers, []
+        if not followers:
+            return
+        from service.store import UNCACHEABLE_FIELDS
+
+        if row is None or row.get("error_field") in UNCACHEABLE_FIELDS:
+            with self._cv:  # run them again themselves
+                for f in followers:
+                    self._queue.appendleft(f)
+                    self._queued.add((f.study_id, f.task_index))
+                self._cv.notify_all()
+            return
+        for f in followers:
+            self.store.record_row(f.study_id, f.task_index, row, row.get("row_seconds"), cached=True)
+            with self._cv:
+                self._queued.discard((f.study_id, f.task_index))
+            self.stats["shared"] += 1
+
+
+class ProcessLane:
+    """One worker process for synchronous requests (``POST /v1/compile``), killed on timeout.
+
+    Calls are serialised; a call waits at most ``wait`` seconds for the lane.
+    """
+
+    def __init__(self, *, time_limit: float = 60.0):
+        self.time_limit = time_limit
+        self._worker = _Worker()
+        self._lock = threading.Lock()
+
+    def start(self) -> None:
+        threading.Thread(target=self._warm, daemon=True, name="toposcout-lane-warm").start()
+
+    def _warm(self) -> None:
+        with self._lock:
+            try:
+                self._worker.ensure()
+            except Exception as exc:  # pragma: no cover
+                log.error("compile worker failed to start: %s", exc)
+
+    def run(self, tasks: list[dict], *, wait: float = 30.0) -> list[dict]:
+        """Rows of ``tasks`` in order; raises TaskTimeout when the whole call is too slow or
+        the lane stays busy past ``wait`` seconds."""
+        if not self._lock.acquire(timeout=wait):
+            raise TaskTimeout()
+        try:
+            deadline = time.monotonic() + self.time_limit
+            rows = []
+            for t in tasks:
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    self._worker.kill()
+                    raise TaskTimeout()
+                try:
+                    rows.append(self._worker.run(t, left))
+                except WorkerDied as exc:
+                    rows.append(failure_row(t, str(exc), "worker"))
+            return rows
+        finally:
+            self._lock.release()
+
+    def shutdown(self) -> None:
+        with self._lock:
+            self._worker.stop()
+
+
+def make_executor(settings: Any, store: Any) -> Executor:
+    """The Dask executor when ``settings.dask_address`` is set, else a :class:`LocalExecutor`."""
+    if getattr(settings, "dask_address", None):
+        from service.dask_executor import DaskExecutor
+
+        return DaskExecutor(settings, store)
+    return LocalExecutor(settings, store)

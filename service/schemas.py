@@ -1,0 +1,164 @@
+"""Request and response shapes of the REST API (pydantic v2).
+
+Requests are strict (``false`` is not a number, unknown fields are refused) so a bad request
+becomes a 422 naming the field before any work starts. Responses document what the API
+returns; rows carry every field of a ``run_task`` row (see the README) plus ``task_index``,
+``status`` and ``cached``.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+__all__ = ["ConnectivitySpec", "StudyRequest", "ErrorBody", "Progress", "StudySummary", "StudyCreated",
+           "Study", "StudyList", "Row", "CompileResponse", "Health", "ConnectivityList", "ProfileList",
+           "StudyStatus", "RowStatus", "RowsDocument"]
+
+StudyStatus = Literal["queued", "running", "done", "failed", "cancelled"]
+RowStatus = Literal["pending", "done", "failed", "cancelled"]
+
+_STRICT = ConfigDict(strict=True, extra="forbid", allow_inf_nan=False)
+
+#: a built-in connectivity family, optionally with a size: "line", "grid:3x4", "heavy-hex:5"
+CONNECTIVITY_PATTERN = r"^[a-z][a-z-]{0,31}(:[0-9]{1,4}(x[0-9]{1,4})?)?$"
+
+
+class ConnectivitySpec(BaseModel):
+    """A connectivity as an object: a built-in family with an optional size, or ``custom`` with edges."""
+
+    model_config = _STRICT
+
+    family: str = Field(min_length=1, max_length=32, description="a built-in family or 'custom'")
+    size: str | int | None = Field(default=None, description="e.g. 12 (line), '3x4' (grid), 5 (heavy-hex)")
+    edges: list[tuple[int, int]] | None = Field(default=None, max_length=5000,
+                                                 description="custom only: undirected edges [a, b] of qubit indices")
+
+
+class StudyRequest(BaseModel):
+    """What to study: a model, the targets, the options (the JSON body of POST /v1/studies)."""
+
+    model_config = _STRICT
+
+    model: dict[str, Any] | str = Field(
+        description="the model: a JSON model object, or the text of a model file (UAI, JSON or node-link)")
+    model_format: Literal["json", "uai", "nodelink"] | None = Field(
+        default=None, description="default null: guessed from the content")
+    connectivities: list[str | ConnectivitySpec] | None = Field(
+        default=None, min_length=1, max_length=64,
+        description="default null: every built-in family, sized to the model")
+    gate_set: str = Field(default="cx", max_length=32)
+    strategy: Literal["generic", "structured", "auto"] = "auto"
+    profile: str | dict[str, Any] | None = Field(
+        default=None, description="a built-in profile name, or a profile object; null: the default profile")
+    noise_scales: list[float] = Field(default_factory=lambda: [1.0], min_length=1, max_length=64,
+                                      description="one row per connectivity and scale; every error rate x scale")
+    compile_only: bool = Field(default=False, description="skip the noise simulation")
+    seeds: int = Field(default=5, ge=1, le=16, description="transpiler seeds tried by the generic strategy")
+    family: Literal["clique", "pairwise"] = "clique"
+    layers: int = Field(default=1, ge=1, le=8)
+    seed: int = Field(default=0, ge=0, le=2**31 - 1, description="seed of the random angles")
+    max_order: int | None = Field(default=None, ge=1, le=16, description="keep only terms of at most this order")
+    fidelity_target: float | None = Field(default=None, gt=0, lt=1,
+                                          description="also find the largest 2q error reaching this state fidelity")
+
+
+class ErrorBody(BaseModel):
+    """Every error: the message names the problem; ``field`` names where (or null)."""
+
+    detail: str
+    field: str | None = None
+
+
+class Progress(BaseModel):
+    done: int
+    total: int
+
+
+class StudySummary(BaseModel):
+    id: str
+    status: StudyStatus
+    owner: str
+    model_name: str
+    created_at: str
+    updated_at: str
+    progress: Progress
+
+
+class StudyCreated(BaseModel):
+    id: str
+    url: str
+    status: StudyStatus
+    progress: Progress
+
+
+class Row(BaseModel):
+    """One task's row: ``task_index``, ``status``, ``cached`` and the fields of ``run_task``'s row."""
+
+    model_config = ConfigDict(extra="allow")
+
+    task_index: int
+    status: RowStatus
+    cached: bool
+    connectivity: str | None = None
+    error: str | None = None
+    error_field: str | None = None
+
+
+class Study(StudySummary):
+    request: dict[str, Any]
+    best_connectivity: str | None
+    rows: list[Row]
+
+
+class StudyList(BaseModel):
+    items: list[StudySummary]
+    total: int
+    limit: int
+    offset: int
+
+
+class RowsDocument(BaseModel):
+    id: str
+    model_name: str
+    status: StudyStatus
+    rows: list[Row]
+
+
+class CompileResponse(BaseModel):
+    rows: list[Row]
+
+
+class Health(BaseModel):
+    status: Literal["ok"]
+    version: str
+    database: str
+    executor: str
+
+
+class ConnectivityInfo(BaseModel):
+    name: str
+    description: str
+    sizing: str
+    size: str
+
+
+class GateSetInfo(BaseModel):
+    name: str
+    description: str
+
+
+class ConnectivityList(BaseModel):
+    connectivities: list[ConnectivityInfo]
+    gate_sets: list[GateSetInfo]
+
+
+class ProfileInfo(BaseModel):
+    name: str
+    description: str
+
+
+class ProfileList(BaseModel):
+    default: str
+    profiles: list[ProfileInfo]

@@ -1,0 +1,91 @@
+"""Server settings: one pydantic-settings class, read from ``TOPOSCOUT_*`` environment variables.
+
+Every field can be set as ``TOPOSCOUT_<FIELD>`` (upper case), e.g. ``TOPOSCOUT_DATABASE_URL``,
+``TOPOSCOUT_TOKENS="alice:tok1,bob:tok2"``, ``TOPOSCOUT_TASK_TIME_LIMIT_SECONDS=120``. Tests build
+a ``Settings(...)`` directly and hand it to :func:`service.api.create_app`.
+
+The default store is the SQLite file ``toposcout.db`` (WAL mode) in :attr:`Settings.data_dir`
+(``$TOPOSCOUT_DATA_DIR``, else ``$XDG_DATA_HOME/toposcout``, else ``~/.local/share/toposcout``).
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from pydantic import Field, SecretStr
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+__all__ = ["Settings", "default_data_dir"]
+
+
+def default_data_dir() -> Path:
+    """``$XDG_DATA_HOME/toposcout`` or ``~/.local/share/toposcout``."""
+    base = os.environ.get("XDG_DATA_HOME") or str(Path.home() / ".local" / "share")
+    return Path(base) / "toposcout"
+
+
+def _default_workers() -> int:
+    return max(1, min(2, os.cpu_count() or 1))
+
+
+class Settings(BaseSettings):
+    """What a toposcout server is allowed to do and where it keeps its data."""
+
+    model_config = SettingsConfigDict(env_prefix="TOPOSCOUT_", extra="ignore")
+
+    # --- where things live
+    data_dir: Path = Field(default_factory=default_data_dir, description="folder of the default SQLite store")
+    database_url: str | None = Field(
+        default=None, description="SQLAlchemy URL; default sqlite:///<data_dir>/toposcout.db; "
+        "PostgreSQL: postgresql+psycopg://user:pw@host:5432/db")
+
+    # --- network and access
+    host: str = "127.0.0.1"
+    port: int = 8000
+    allow_remote: bool = Field(default=False, description="serve non-loopback clients without tokens")
+    tokens: SecretStr | None = Field(default=None, description='"owner:token,owner2:token2"')
+    tokens_file: Path | None = Field(default=None, description="a file with one owner:token per line")
+
+    # --- execution
+    workers: int = Field(default_factory=_default_workers, ge=1, le=64,
+                         description="local worker processes (default: cores, at most 2)")
+    task_time_limit_seconds: float = Field(default=900.0, gt=0, description="wall time one task may take")
+    compile_time_limit_seconds: float = Field(default=60.0, gt=0,
+                                              description="wall time of one POST /v1/compile request")
+    dask_address: str | None = Field(default=None, description="tcp://host:8786 of a Dask scheduler")
+    recover_on_start: bool = Field(default=True, description="resubmit unfinished studies at start-up")
+
+    # --- guards
+    max_body_bytes: int = Field(default=4 * 2**20, ge=1024, description="largest request body (413 above)")
+    max_variables: int = Field(default=64, ge=1, le=128, description="largest model (variables)")
+    max_order: int = Field(default=12, ge=1, le=16,
+                           description="largest term order (clique size after max_order)")
+    max_active_qubits: int = Field(default=12, ge=1, le=20,
+                                   description="largest density-matrix simulation (active qubits)")
+    max_physical_qubits: int = Field(default=400, ge=2, description="largest connectivity instance")
+    max_connectivities: int = Field(default=12, ge=1, description="targets per study")
+    max_noise_scales: int = Field(default=16, ge=1, description="noise scales per study")
+    max_compile_targets: int = Field(default=6, ge=1, description="targets per POST /v1/compile")
+    max_active_studies_per_owner: int = Field(default=8, ge=1,
+                                              description="queued+running studies per token (429 above)")
+    memory_budget_bytes: int | None = Field(default=None, ge=1,
+                                            description="bytes one simulation may use (default: half the RAM)")
+
+    def resolved_database_url(self) -> str:
+        """The database URL, creating the data folder for the default SQLite file."""
+        if self.database_url:
+            return self.database_url
+        self.data_dir.mkdir(parents=True, exist_ok=True)
+        return f"sqlite:///{self.data_dir / 'toposcout.db'}"
+
+    def token_table(self) -> dict[str, str]:
+        """token -> owner from ``tokens`` and ``tokens_file`` (empty: no authentication)."""
+        from service.auth import parse_tokens
+
+        lines: list[str] = []
+        if self.tokens is not None:
+            lines += self.tokens.get_secret_value().split(",")
+        if self.tokens_file is not None:
+            lines += self.tokens_file.read_text(encoding="utf-8").splitlines()
+        return parse_tokens(lines)

@@ -1,0 +1,258 @@
+"""From a request to tasks: parse the model, apply the server's caps, build and validate tasks.
+
+Everything a study will need is checked here, before anything is stored or queued; each
+problem is a :class:`compiler.errors.ToposcoutError` naming the request field, which the API
+answers with 422. The caps (``Settings.max_*``) bound what one request can make the server do:
+variables, term order, active qubits of a simulation (the density-matrix memory estimate is
+in the message), connectivity size, targets, noise scales.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+from compiler.errors import CapacityError, ModelError, ProfileError, TargetError
+from compiler.model import Limits, Model, parse_model
+from compiler.study import make_tasks, task_key
+from compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, heavy_hex_qubits
+
+from service.schemas import CONNECTIVITY_PATTERN, ConnectivitySpec, StudyRequest
+
+__all__ = ["Prepared", "prepare", "physical_qubits_of", "safe_filename"]
+
+_CONN = re.compile(CONNECTIVITY_PATTERN)
+
+
+@dataclass
+class Prepared:
+    model: Model
+    request: dict          # the normalised request (what the study stores)
+    tasks: list[dict]
+    keys: list[str]
+
+
+def _gib(n: int) -> str:
+    return f"{n / 2**30:.2f} GiB"
+
+
+def physical_qubits_of(family: str, size: Any, edges: list | None, num_variables: int) -> int:
+    """Qubits of a connectivity instance, computed without building it (0: sized to the model)."""
+    if family == "custom":
+        return 1 + max((max(a, b) for a, b in edges or []), default=0)
+    if size is None:
+        return 0
+    text = str(size).strip().lower()
+    try:
+        if family == "grid" and "x" in text:
+            r, c = text.split("x", 1)
+            return int(r) * int(c)
+        v = int(text)
+    except ValueError:
+        return 0  # make_connectivity names the malformed size
+    if family == "grid":
+        return v * v
+    if family == "heavy-hex":
+        return heavy_hex_qubits(v)
+    return v
+
+
+def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables: int) -> dict:
+    where = f"connectivities[{i}]"
+    if isinstance(spec, str):
+        if spec.startswith("custom"):
+            raise TargetError(f"{where}: the server reads no files; give a custom connectivity as "
+                              '{"family": "custom", "edges": [[0, 1], [1, 2], ...]}', field=where)
+        if not _CONN.match(spec):
+            raise TargetError(f"{where}: {spec[:60]!r} is not FAMILY or FAMILY:SIZE (e.g. line, grid:3x4, "
+                              f"heavy-hex:5); families: {', '.join(f for f in CONNECTIVITY_FAMILIES if f != 'custom')}",
+                              field=where)
+        family, _, size = spec.partition(":")
+        d = {"family": family, "size": size or None, "edges": None}
+    else:
+        d = {"family": spec.family, "size": None if spec.size is None else str(spec.size),
+             "edges": [list(e) for e in spec.edges] if spec.edges is not None else None}
+        if d["size"] is not None and not re.match(r"^[0-9]{1,4}(x[0-9]{1,4})?$", d["size"]):
+            raise TargetError(f"{where}.size: {d['size'][:40]!r} is not a size (e.g. 12, '3x4')", field=f"{where}.size")
+    family = d["family"]
+    if family not in CONNECTIVITY_FAMILIES:
+        raise TargetError(f"{where}: unknown connectivity family {family[:40]!r}; choose one of "
+                          f"{', '.join(CONNECTIVITY_FAMILIES)}", field=where)
+    if family == "custom":
+        if not d["edges"]:
+            raise TargetError(f"{where}.edges: a custom connectivity needs a non-empty edge list", field=f"{where}.edges")
+        if any(a < 0 or b < 0 for a, b in d["edges"]):
+            raise TargetError(f"{where}.edges: qubit indices must be >= 0", field=f"{where}.edges")
+        d["size"] = None
+    elif d["edges"] is not None:
+        raise TargetError(f"{where}.edges: only a custom connectivity takes edges", field=f"{where}.edges")
+    q = physical_qubits_of(family, d["size"], d["edges"], num_variables)
+    if q > settings.max_physical_qubits:
+        raise CapacityError(f"{where}: {q} physical qubits is over this server's cap max_physical_qubits="
+                            f"{settings.max_physical_qubits}; pick a smaller instance", field=where)
+    return d
+
+
+def _profile(profile: str | dict | None) -> str | dict | None:
+    if profile is None:
+        return None
+    from compiler.profiles import PROFILE_NAMES, load_profile
+
+    if isinstance(profile, str):
+        if profile not in PROFILE_NAMES:
+            raise ProfileError(f"profile: unknown profile {profile[:60]!r}; built-in profiles: "
+                               f"{', '.join(PROFILE_NAMES)} (or send a profile object)", field="profile")
+        return profile
+    return load_profile(dict(profile)).to_dict()
+
+
+def model_order(model: Model) -> int:
+    """The largest term order of the model: its largest clique, cut at ``max_order``."""
+    largest = max((len(c) for c in model.cliques), default=1)
+    return min(largest, model.max_order) if model.max_order else largest
+
+
+def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile_only: bool | None = None,
+            max_targets: int | None = None, keep_circuit: bool = True) -> Prepared:
+    """Validate ``req`` against the server's caps and build its tasks (raises ToposcoutError)."""
+    limits = Limits(max_variables=settings.max_variables)
+    if isinstance(req.model, str) and not req.model.strip():
+        raise ModelError("model: the model text is empty", field="model")
+    try:
+        model = parse_model(req.model, req.model_format, limits=limits, filename=filename)
+    except (ModelError, CapacityError) as exc:
+        f = exc.field
+        field = f"model.{f}" if f and f != "body" and not f.startswith("line") else "model"
+        raise type(exc)(f"model: {exc}", field=field) from None
+    if req.max_order is not None:
+        d = model.to_dict()
+        d["max_order"] = req.max_order
+        model = Model.from_dict(d, limits=limits)
+    order = model_order(model)
+    if order > settings.max_order:
+        raise CapacityError(f"max_order: the model has terms of order {order} (its largest clique) but this "
+                            f"server's cap is max_order={settings.max_order}; send max_order <= {settings.max_order}",
+                            field="max_order")
+    compile_only = req.compile_only if compile_only is None else compile_only
+    memory_budget = None
+    if not compile_only:
+        from compiler.simulate import default_memory_budget_bytes, estimate_memory_bytes
+
+        cap = settings.max_active_qubits
+        n = model.num_variables
+        if n > cap:
+            est = estimate_memory_bytes(n)
+            raise CapacityError(
+                f"model.variables: the noise study simulates at least {n} active qubits (one per variable) but this "
+                f"server's cap is max_active_qubits={cap}: a density matrix of {n} qubits needs about {_gib(est)} "
+                f"(16*4^{n} bytes plus overhead; {cap} qubits need {_gib(estimate_memory_bytes(cap))}). "
+                "Send compile_only=true, fewer variables, or use a server with a larger cap", field="model.variables")
+        budget = settings.memory_budget_bytes or default_memory_budget_bytes()
+        memory_budget = min(budget, estimate_memory_bytes(cap))
+    max_targets = max_targets or settings.max_connectivities
+    conns = req.connectivities
+    if conns is not None and len(conns) > max_targets:
+        raise CapacityError(f"connectivities: {len(conns)} targets is over this endpoint's cap of {max_targets}",
+                            field="connectivities")
+    specs = None if conns is None else [_connectivity(i, c, settings, model.num_variables) for i, c in enumerate(conns)]
+    if specs is None:
+        from compiler.targets import BUILTIN_FAMILIES
+
+        specs = [{"family": f, "size": None, "edges": None} for f in BUILTIN_FAMILIES][:max_targets]
+    if req.gate_set not in GATE_SETS:
+        raise TargetError(f"gate_set: unknown gate set {req.gate_set[:40]!r}; choose one of {', '.join(GATE_SETS)}",
+                          field="gate_set")
+    scales = [1.0] if compile_only else list(req.noise_scales)
+    if len(scales) > settings.max_noise_scales:
+        raise CapacityError(f"noise_scales: {len(scales)} scales is over this server's cap of "
+                            f"{settings.max_noise_scales}", field="noise_scales")
+    for i, s in enumerate(scales):
+        if not math.isfinite(s) or s < 0 or s > 1000:
+            raise ModelError(f"noise_scales[{i}]: {s!r} must be a finite number from 0 to 1000",
+                             field=f"noise_scales[{i}]")
+    profile = None if compile_only else _profile(req.profile)
+    options: dict[str, Any] = dict(gate_set=req.gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
+                                   layers=req.layers, seed=req.seed, compile_only=compile_only, profile=profile,
+                                   keep_circuit=keep_circuit)
+    if memory_budget is not None:
+        options["memory_budget_bytes"] = int(memory_budget)
+    if req.fidelity_target is not None and not compile_only:
+        options["fidelity_target"] = req.fidelity_target
+    tasks = make_tasks(model, specs, noise_scales=scales, **options)
+    keys = [task_key(t) for t in tasks]
+    normalised = {"model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
+                  "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
+                  "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
+                  "max_order": model.max_order, "fidelity_target": options.get("fidelity_target")}
+    return Prepared(model=model, request=normalised, tasks=tasks, keys=keys)
+
+
+_BAD_NAME = re.compile(r"[\x00-\x1f\x7f/\\]")
+
+
+def safe_filename(name: str | None) -> str | None:
+    """An uploaded file's name if it is a plain file name; raises ModelError otherwise.
+
+    >>> safe_filename("chain.uai")
+    'chain.uai'
+    >>> safe_filename("../../etc/passwd")
+    Traceback (most recent call last):
+    ...
+    compiler.errors.ModelError: file: the file name '../../etc/passwd' must be a plain name without folders, '..' or control characters
+    """
+    if name is None or name == "":
+        return None
+    if len(name) > 200 or _BAD_NAME.search(name) or ".." in name or name.strip() in (".", ""):
+        raise ModelError(f"file: the file name {name[:80]!r} must be a plain name without folders, '..' or control "
+                         "characters", field="file")
+    return name
+
+
+def form_to_request(fields: Mapping[str, list[str]]) -> dict:
+    """Form fields (strings, repeated keys) → the JSON request dict (types converted, names checked)."""
+    allowed = set(StudyRequest.model_fields) - {"model"}
+    out: dict[str, Any] = {}
+    for key, values in fields.items():
+        if key not in allowed:
+            raise ModelError(f"{key[:40]}: unknown form field; known fields: file, {', '.join(sorted(allowed))}",
+                             field=key[:40])
+        if key == "connectivities":
+            out[key] = [c.strip() for v in values for c in v.split(",") if c.strip()]
+            continue
+        if key == "noise_scales":
+            out[key] = [_form_float(key, c) for v in values for c in v.split(",") if c.strip()]
+            continue
+        if len(values) != 1:
+            raise ModelError(f"{key}: give this form field once", field=key)
+        v = values[0].strip()
+        if key in ("seeds", "layers", "seed", "max_order"):
+            if v == "" and key == "max_order":
+                continue
+            try:
+                out[key] = int(v)
+            except ValueError:
+                raise ModelError(f"{key}: {v[:40]!r} is not an integer", field=key) from None
+        elif key == "fidelity_target":
+            if v:
+                out[key] = _form_float(key, v)
+        elif key == "compile_only":
+            if v.lower() not in ("true", "false", "1", "0", "yes", "no", "on", "off"):
+                raise ModelError(f"{key}: {v[:40]!r} is not true or false", field=key)
+            out[key] = v.lower() in ("true", "1", "yes", "on")
+        elif key in ("model_format", "profile") and v == "":
+            continue
+        else:
+            out[key] = v
+    return out
+
+
+def _form_float(key: str, v: str) -> float:
+    try:
+        x = float(v)
+    except ValueError:
+        raise ModelError(f"{key}: {v[:40]!r} is not a number", field=key) from None
+    if not math.isfinite(x):
+        raise ModelError(f"{key}: {v[:40]!r} is not a finite number", field=key)
+    return x
