@@ -32,6 +32,7 @@ from __future__ import annotations
 import io
 import re
 import textwrap
+import threading
 from html import escape
 from typing import Any, Iterable, Mapping, Sequence
 
@@ -413,6 +414,7 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
 # --- output ------------------------------------------------------------------------------
 
 _SVG_OPEN = re.compile(rb"<svg\b[^>]*>")
+_SAVE_LOCK = threading.Lock()  # rc_context changes process-wide settings: one save at a time
 
 
 def _save(fig: Figure, fmt: str, title: str, desc: str) -> bytes:
@@ -420,7 +422,7 @@ def _save(fig: Figure, fmt: str, title: str, desc: str) -> bytes:
     if fmt == "png":
         fig.savefig(buf, format="png", dpi=110, metadata={"Title": title, "Description": desc})
         return buf.getvalue()
-    with matplotlib.rc_context({"svg.fonttype": "none", "svg.hashsalt": "toposcout"}):
+    with _SAVE_LOCK, matplotlib.rc_context({"svg.fonttype": "none", "svg.hashsalt": "toposcout"}):
         fig.savefig(buf, format="svg", metadata={"Date": None, "Title": title, "Description": desc})
     svg = buf.getvalue()
     m = _SVG_OPEN.search(svg)

@@ -1,0 +1,394 @@
+"""A small client of the toposcout REST API, for notebooks, scripts and ``compare --server``.
+
+Two lines from a notebook::
+
+    from service.client import Client
+    df = Client("http://127.0.0.1:8000").compare("examples/orchard-frost.json", ["line", "grid"])
+
+Exceptions::
+
+    compiler.errors.ToposcoutError
+     └── ToposcoutClientError     every failure of the client: an error answer of the server,
+                                  a refused connection, a time-out, a model it cannot read
+
+It carries the server's message (``.message``), the HTTP status (``.status``; None when no
+answer came) and the JSON field the server named (``.field``).
+
+The client takes an injected ``httpx.Client`` (``http=``), so tests can drive it against the
+app in process (Starlette's TestClient is an httpx.Client) or against a real server.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
+
+import httpx
+
+from compiler.errors import ToposcoutError
+
+if TYPE_CHECKING:  # pragma: no cover
+    import pandas as pd
+    from qiskit import QuantumCircuit
+
+__all__ = ["Client", "StudyHandle", "ToposcoutClientError", "model_payload", "request_from_tasks", "API_ONLY_COLUMNS"]
+
+#: columns the API adds to each ``run_task`` row.
+API_ONLY_COLUMNS = ("task_index", "status", "cached")
+_FINAL = ("done", "failed", "cancelled")
+
+
+class ToposcoutClientError(ToposcoutError):
+    """A request to the server failed; ``.message`` is the server's message (or why no answer came).
+
+    A :class:`compiler.errors.ToposcoutError`, so callers that handle toposcout's errors
+    (the CLI does) handle this one too.
+    """
+
+    def __init__(self, message: str, *, status: int | None = None, field: str | None = None,
+                 url: str | None = None):
+        super().__init__(message, field=field)
+        self._message = message
+        self.status = status
+        self.url = url
+
+    @property
+    def message(self) -> str:
+        return self._message
+
+    def __str__(self) -> str:
+        return f"HTTP {self.status}: {self._message}" if self.status is not None else self._message
+
+
+def model_payload(model: Any) -> tuple[Any, str | None]:
+    """Turn a model into ``(payload, model_format)`` for the API.
+
+    model: a path (str or Path) of a JSON, UAI or node-link file; a dict in our JSON model
+        format or node-link form; a networkx graph (the cliques are its maximal cliques; sent
+        as node-link JSON); a ``compiler.model.Model``; or the text of a UAI or JSON model.
+    """
+    try:
+        import networkx as nx
+    except ImportError:  # pragma: no cover - networkx is a dependency
+        nx = None
+    if nx is not None and isinstance(model, nx.Graph):
+        if model.number_of_nodes() == 0:
+            raise ToposcoutClientError("the graph has no nodes; a model needs at least one variable", field="model")
+        data = nx.node_link_data(model, edges="links")
+        return json.loads(json.dumps(data, default=str)), "nodelink"
+    to_dict = getattr(model, "to_dict", None)
+    if callable(to_dict) and hasattr(model, "variables") and hasattr(model, "cliques"):
+        return to_dict(), "json"
+    if isinstance(model, Mapping):
+        return dict(model), ("nodelink" if "nodes" in model and ("links" in model or "edges" in model) else "json")
+    if isinstance(model, Path) or (isinstance(model, str) and "\n" not in model and len(model) < 4096
+                                   and not model.lstrip().startswith(("{", "MARKOV"))):
+        p = Path(model)
+        try:
+            text = p.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as exc:
+            raise ToposcoutClientError(f"cannot read the model file {str(p)!r}: "
+                                       f"{getattr(exc, 'strerror', None) or exc}", field="model") from None
+        if p.suffix.lower() == ".uai":
+            return text, "uai"
+        return _text_payload(text)
+    if isinstance(model, str):
+        return _text_payload(model)
+    raise ToposcoutClientError(
+        f"cannot send a model of type {type(model).__name__}; give a file path, a dict, a networkx graph "
+        f"or the text of a UAI or JSON model", field="model")
+
+
+def _text_payload(text: str) -> tuple[Any, str | None]:
+    s = text.lstrip()
+    if s.startswith("MARKOV"):
+        return text, "uai"
+    try:
+        obj = json.loads(text)
+    except ValueError:
+        return text, None  # let the server say what is wrong with it
+    if isinstance(obj, Mapping):
+        return model_payload(obj)
+    return text, None
+
+
+class Client:
+    """A toposcout server at ``url``.
+
+    token: default None: no Authorization header; else sent as a bearer token.
+    http: default None: a new ``httpx.Client`` (closed by :meth:`close`); else this client
+        is used as is (its base URL is ignored; paths are joined to ``url``).
+    timeout: default 30 s: time-out of each request (not of a whole study).
+    """
+
+    def __init__(self, url: str, token: str | None = None, *, http: httpx.Client | None = None,
+                 timeout: float = 30.0):
+        self.url = url.rstrip("/")
+        self.token = token
+        self._own = http is None
+        self._http = http if http is not None else httpx.Client(timeout=timeout)
+
+    # --- plumbing -----------------------------------------------------------------------
+    def close(self) -> None:
+        if self._own:
+            self._http.close()
+
+    def __enter__(self) -> "Client":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def _headers(self, extra: Mapping[str, str] | None = None) -> dict[str, str]:
+        h = {"Accept": "application/json"}
+        if self.token:
+            h["Authorization"] = f"Bearer {self.token}"
+        h.update(extra or {})
+        return h
+
+    def request(self, method: str, path: str, *, json_body: Any = None, headers: Mapping[str, str] | None = None,
+                params: Mapping[str, Any] | None = None) -> httpx.Response:
+        """Send one request; an answer of 400 or more raises :class:`ToposcoutClientError`."""
+        url = self.url + path
+        try:
+            resp = self._http.request(method, url, json=json_body, headers=self._headers(headers), params=params)
+        except httpx.TimeoutException:
+            raise ToposcoutClientError(f"the server at {self.url} did not answer in time", url=url) from None
+        except httpx.HTTPError as exc:
+            raise ToposcoutClientError(f"cannot reach the server at {self.url}: {exc}", url=url) from None
+        if resp.status_code >= 400:
+            raise _error_from(resp, url)
+        return resp
+
+    def _json(self, method: str, path: str, **kw) -> Any:
+        resp = self.request(method, path, **kw)
+        try:
+            return resp.json()
+        except ValueError:
+            raise ToposcoutClientError(f"the server at {self.url} answered {path} with something that is not JSON",
+                                       status=resp.status_code, url=self.url + path) from None
+
+    # --- the API ------------------------------------------------------------------------
+    def health(self) -> dict:
+        return self._json("GET", "/healthz")
+
+    def connectivities(self) -> Any:
+        return self._json("GET", "/v1/connectivities")
+
+    def profiles(self) -> Any:
+        return self._json("GET", "/v1/profiles")
+
+    def studies(self, *, status: str | None = None, owner: str | None = None, limit: int = 20,
+                offset: int = 0) -> dict:
+        """One page of the study list: ``{"items", "total", "limit", "offset"}``, newest first."""
+        params = {k: v for k, v in dict(status=status, owner=owner, limit=limit, offset=offset).items()
+                  if v is not None}
+        return self._json("GET", "/v1/studies", params=params)
+
+    def study(self, study_id: str) -> "StudyHandle":
+        """A handle on an existing study."""
+        return StudyHandle(self, study_id)
+
+    def submit(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None, *,
+               profile: str | None = None, idempotency_key: str | None = None, **options: Any) -> "StudyHandle":
+        """Submit a study; returns at once with a :class:`StudyHandle`.
+
+        connectivities: default None: every built-in family, sized to the model.
+        profile: default None: the server's default profile.
+        options: further request fields (``noise_scales``, ``compile_only``, ``gate_set``,
+            ``strategy``, ``seeds``, ``family``, ``layers``, ``seed``, ``max_order``,
+            ``fidelity_target``); the server validates them and says what is wrong.
+        """
+        payload, fmt = model_payload(model)
+        body: dict[str, Any] = {"model": payload, "model_format": options.pop("model_format", fmt)}
+        if connectivities is not None:
+            body["connectivities"] = [c if isinstance(c, str) else dict(c) for c in connectivities]
+        if profile is not None:
+            body["profile"] = profile
+        body.update(options)
+        headers = {"Idempotency-Key": idempotency_key} if idempotency_key else None
+        data = self._json("POST", "/v1/studies", json_body=body, headers=headers)
+        return StudyHandle(self, data["id"], data)
+
+    def compare(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None, *,
+                profile: str | None = None, progress: bool = True, timeout: float | None = None,
+                **options: Any) -> "pd.DataFrame":
+        """Submit, wait (with a progress bar unless ``progress=False``) and return the rows as a DataFrame."""
+        h = self.submit(model, connectivities, profile=profile, **options)
+        return h.wait(progress=progress, timeout=timeout).rows()
+
+    def compile(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None,
+                **options: Any) -> list[dict]:
+        """Compile-only, synchronous (a few targets): the rows as dicts."""
+        payload, fmt = model_payload(model)
+        body: dict[str, Any] = {"model": payload, "model_format": fmt, **options}
+        if connectivities is not None:
+            body["connectivities"] = list(connectivities)
+        return self._json("POST", "/v1/compile", json_body=body)["rows"]
+
+    def run_tasks(self, model: Any, tasks: Sequence[Mapping[str, Any]], *, progress: bool = False,
+                  timeout: float | None = None) -> list[dict]:
+        """Run the study that ``compiler.study.make_tasks`` built as ``tasks`` on the server.
+
+        This is what ``toposcout compare --server URL`` calls. The tasks are turned back into
+        one request (their connectivities, noise scales and shared options); the rows come
+        back in task order as plain dicts without the API-only columns.
+        """
+        if not tasks:
+            return []
+        body = request_from_tasks(tasks)
+        h = self.submit(model, body.pop("connectivities"), **body)
+        h.wait(progress=progress, timeout=timeout)
+        rows = sorted(h.row_dicts(), key=lambda r: r.get("task_index", 0))
+        return [{k: v for k, v in r.items() if k not in API_ONLY_COLUMNS} for r in rows]
+
+
+def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
+    """The API request fields that make the same tasks as ``tasks`` (from ``make_tasks``)."""
+    first = tasks[0]
+    conns: list[Any] = []
+    scales: list[float] = []
+    for t in tasks:
+        spec = dict(t["connectivity"])
+        if spec.get("edges"):
+            c: Any = {"family": spec["family"], "edges": spec["edges"]}
+        else:
+            c = spec["family"] + (f":{spec['size']}" if spec.get("size") else "")
+        if c not in conns:
+            conns.append(c)
+        s = float(t.get("noise_scale", 1.0))
+        if s not in scales:
+            scales.append(s)
+    profile = first.get("profile")
+    if isinstance(profile, Mapping):
+        raise ToposcoutClientError(
+            "a profile read from a local file cannot be sent to a server; name one of the server's profiles "
+            "(GET /v1/profiles lists them) or run without --server", field="profile")
+    body: dict[str, Any] = {"connectivities": conns, "noise_scales": scales}
+    for key in ("gate_set", "strategy", "seeds", "family", "layers", "seed", "compile_only", "fidelity_target"):
+        if key in first:
+            body[key] = first[key]
+    if profile is not None:
+        body["profile"] = profile
+    return body
+
+
+def _error_from(resp: httpx.Response, url: str) -> ToposcoutClientError:
+    field = None
+    try:
+        data = resp.json()
+    except ValueError:
+        data = None
+    if isinstance(data, Mapping) and "detail" in data:
+        detail = data["detail"]
+        field = data.get("field")
+        if isinstance(detail, list):  # a framework validation list: keep the first message and its place
+            first = detail[0] if detail else {}
+            loc = [str(x) for x in (first.get("loc") or []) if x not in ("body", "query", "path")]
+            field = field or (".".join(loc) or None)
+            msg = first.get("msg") or json.dumps(detail)
+        else:
+            msg = str(detail)
+    else:
+        text = resp.text.strip()
+        msg = text[:500] if text else (resp.reason_phrase or "error")
+    return ToposcoutClientError(msg, status=resp.status_code, field=field, url=url)
+
+
+class StudyHandle:
+    """A study on the server: poll it, wait for it, fetch its rows and circuits."""
+
+    def __init__(self, client: Client, study_id: str, data: Mapping[str, Any] | None = None):
+        self.client = client
+        self.id = study_id
+        self._data: dict[str, Any] = dict(data or {})
+
+    def __repr__(self) -> str:
+        return f"StudyHandle(id={self.id!r}, status={self._data.get('status')!r})"
+
+    def refresh(self) -> dict:
+        """Fetch the study (summary, progress and rows) and return it."""
+        self._data = self.client._json("GET", f"/v1/studies/{self.id}")
+        return self._data
+
+    @property
+    def status(self) -> str | None:
+        return self._data.get("status")
+
+    @property
+    def progress(self) -> tuple[int, int]:
+        p = self._data.get("progress") or {}
+        return int(p.get("done", 0)), int(p.get("total", 0))
+
+    def wait(self, *, progress: bool = True, timeout: float | None = None, poll: float = 0.5) -> "StudyHandle":
+        """Poll until the study is done, failed or cancelled; returns self.
+
+        progress: default True: a tqdm progress bar (works in notebooks and terminals).
+        timeout: default None: wait as long as it takes; else raise ToposcoutClientError
+            after this many seconds (the study keeps running on the server).
+        poll: default 0.5 s between polls.
+        """
+        bar = None
+        if progress:
+            from tqdm.auto import tqdm
+
+            bar = tqdm(total=self.progress[1] or None, unit="row", desc=f"study {self.id[:8]}", leave=False)
+        started = time.monotonic()
+        try:
+            while True:
+                data = self.refresh()
+                done, total = self.progress
+                if bar is not None:
+                    if total and bar.total != total:
+                        bar.total = total
+                        bar.refresh()
+                    if done > bar.n:
+                        bar.update(done - bar.n)
+                if data.get("status") in _FINAL:
+                    return self
+                if timeout is not None and time.monotonic() - started > timeout:
+                    raise ToposcoutClientError(
+                        f"study {self.id} is still {data.get('status')} after {timeout:g} s "
+                        f"({done}/{total} rows); wait again or look at it on the dashboard")
+                time.sleep(poll)
+        finally:
+            if bar is not None:
+                bar.close()
+
+    def row_dicts(self) -> list[dict]:
+        """The rows as the API gives them (with ``task_index``, ``status``, ``cached``)."""
+        if "rows" not in self._data:
+            self.refresh()
+        return [dict(r) for r in self._data.get("rows") or []]
+
+    def rows(self) -> "pd.DataFrame":
+        """The rows as a pandas DataFrame, one row per task, in task order."""
+        import pandas as pd
+
+        if self.status not in _FINAL or "rows" not in self._data:
+            self.refresh()
+        rows = sorted(self.row_dicts(), key=lambda r: r.get("task_index", 0))
+        return pd.DataFrame.from_records(rows)
+
+    def cancel(self) -> dict:
+        self._data = {**self._data, **self.client._json("DELETE", f"/v1/studies/{self.id}")}
+        return self._data
+
+    def qpy(self, task_index: int) -> bytes:
+        """The compiled circuit of a row as QPY bytes."""
+        return self.client.request("GET", f"/v1/studies/{self.id}/circuits/{int(task_index)}.qpy").content
+
+    def qasm(self, task_index: int) -> str:
+        """The compiled circuit of a row as OpenQASM 3 text."""
+        return self.client.request("GET", f"/v1/studies/{self.id}/circuits/{int(task_index)}.qasm").text
+
+    def circuit(self, task_index: int) -> "QuantumCircuit":
+        """The compiled circuit of a row, loaded with qiskit."""
+        import io
+
+        from qiskit import qpy
+
+        return qpy.load(io.BytesIO(self.qpy(task_index)))[0]
+
