@@ -62,6 +62,12 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--token", help="bearer token for --server (default: $TOPOSCOUT_TOKEN)")
 
     sub.add_parser("targets", help="list connectivities, gate sets and device profiles")
+
+    sv = sub.add_parser("serve", help="run the REST API server (settings from TOPOSCOUT_* variables)")
+    sv.add_argument("--host", default=None, help="address to listen on (default 127.0.0.1)")
+    sv.add_argument("--port", type=int, default=None, help="port (default 8000)")
+    sv.add_argument("--allow-remote", action="store_true", default=None,
+                    help="listen on a non-loopback address without tokens configured")
     return p
 
 
@@ -241,6 +247,10 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
             return _compare(args, out, err)
         if args.command == "targets":
             return _targets(out)
+        if args.command == "serve":
+            from service.api import serve
+
+            return serve(host=args.host, port=args.port, allow_remote=args.allow_remote, err=err)
     except ToposcoutError as exc:
         where = f" [{exc.field}]" if exc.field else ""
         err.write(f"toposcout: error{where}: {exc}\n")
