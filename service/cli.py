@@ -63,11 +63,24 @@ def _parser() -> argparse.ArgumentParser:
 
     sub.add_parser("targets", help="list connectivities, gate sets and device profiles")
 
+    from service.bench import add_arguments as _bench_arguments
+
+    _bench_arguments(sub.add_parser("bench", help="structured vs generic compilation on a fixed suite of models"))
+
     sv = sub.add_parser("serve", help="run the REST API server (settings from TOPOSCOUT_* variables)")
     sv.add_argument("--host", default=None, help="address to listen on (default 127.0.0.1)")
     sv.add_argument("--port", type=int, default=None, help="port (default 8000)")
     sv.add_argument("--allow-remote", action="store_true", default=None,
                     help="listen on a non-loopback address without tokens configured")
+
+    w = sub.add_parser("worker", help="start Dask worker processes for a toposcout cluster")
+    w.add_argument("scheduler", help="the Dask scheduler, e.g. tcp://host:8786")
+    w.add_argument("--nworkers", type=int, default=1, help="worker processes, one task at a time each (default 1)")
+    w.add_argument("--memory-limit", default="4GiB", help="memory limit per process, e.g. 4GiB (default 4GiB)")
+    w.add_argument("--threads", type=int, default=None,
+                   help="simulator (OpenMP) threads per process (default: cores / nworkers)")
+    w.add_argument("--host", default=None, help="address to listen on (default: the scheduler's route)")
+    w.add_argument("--name", default=None, help="worker name shown by the scheduler")
     return p
 
 
@@ -247,10 +260,19 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
             return _compare(args, out, err)
         if args.command == "targets":
             return _targets(out)
+        if args.command == "bench":
+            from service.bench import run_cli
+
+            return run_cli(args, out, err)
         if args.command == "serve":
             from service.api import serve
 
             return serve(host=args.host, port=args.port, allow_remote=args.allow_remote, err=err)
+        if args.command == "worker":
+            from service.dask_executor import run_worker
+
+            return run_worker(args.scheduler, nworkers=args.nworkers, memory_limit=args.memory_limit,
+                              threads=args.threads, host=args.host, name=args.name)
     except ToposcoutError as exc:
         where = f" [{exc.field}]" if exc.field else ""
         err.write(f"toposcout: error{where}: {exc}\n")

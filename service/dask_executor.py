@@ -1,0 +1,459 @@
+"""Run studies on a Dask distributed cluster.
+
+:class:`DaskExecutor` sends every task (a plain dict) to the cluster as one call of
+:func:`compiler.study.run_task` — the same function the local executor runs — and writes
+each row to the store as soon as it is back.
+
+* **Keys** are deterministic: ``toposcout-{study_id}-{task_index}-{attempt}``. A server that
+  restarts and resubmits the missing tasks of a study picks up a task the scheduler still
+  holds under that key instead of starting it twice.
+* **Bounded batches**: at most ``max_in_flight`` tasks (default: twice the cluster's worker
+  threads, at least 4) are on the scheduler at once; the rest wait in this process.
+* **Lost workers**: the scheduler reschedules a task whose worker died; when it gives up
+  (``KilledWorker``) or the task is lost with the scheduler connection, the task is resubmitted
+  under the next attempt key, up to ``max_attempts``. Exceptions (bugs) get ``retries``.
+* **Exactly once**: a row is recorded once per ``(study_id, task_index)`` by this process
+  (the store's ``record_row`` is an upsert on the same pair, so a resubmission after a restart
+  cannot duplicate a row either).
+* **Memory**: before submission a simulating task is checked against the workers' memory
+  limit (budget: :data:`compiler.simulate.MEMORY_FRACTION` of the smallest worker limit, the
+  same share of memory the local path allows of this machine's RAM). The model's variables
+  are a lower bound of the active qubits; a task that cannot fit is refused here with the
+  same message as the local executor, and the others carry the budget to the worker, where
+  :func:`compiler.simulate.check_memory` refuses a routed circuit whose ancillas push it over
+  (Aer's ``max_memory_mb`` is set from the same budget).
+* Nothing here blocks an event loop: submissions and row writes happen on one background
+  thread; ``submit`` and ``cancel`` only queue work.
+
+:func:`run_worker` (``toposcout worker``) starts worker processes with toposcout importable,
+one thread each, a memory limit, and ``OMP_NUM_THREADS`` set to the cores each may use.
+"""
+
+from __future__ import annotations
+
+import collections
+import logging
+import os
+import queue
+import signal
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+from compiler.errors import CapacityError, ToposcoutError
+from service.executor import Executor, failure_row
+
+__all__ = ["DaskExecutor", "task_key_for", "worker_memory_budget", "precheck_memory", "run_worker",
+           "parse_memory"]
+
+log = logging.getLogger("toposcout.dask")
+
+#: modules imported by every worker at start-up, so the first task does not pay for them.
+WORKER_PRELOAD = ("compiler.study", "compiler.metrics")
+
+
+def task_key_for(study_id: str, task_index: int, attempt: int) -> str:
+    """The Dask key of one attempt at one task (deterministic: a restart finds it again)."""
+    return f"toposcout-{study_id}-{task_index}-{attempt}"
+
+
+def worker_memory_budget(memory_limits: list[int], *, fraction: float | None = None) -> int | None:
+    """Bytes one simulation may use on the smallest worker (None: no worker has a limit)."""
+    from compiler.simulate import MEMORY_FRACTION
+
+    limits = [int(m) for m in memory_limits if m]
+    if not limits:
+        return None
+    return int(min(limits) * (MEMORY_FRACTION if fraction is None else fraction))
+
+
+def precheck_memory(task: Mapping[str, Any], budget: int | None) -> tuple[dict | None, dict | None]:
+    """``(task_to_send, None)`` or ``(None, refused_row)``.
+
+    The task sent carries ``memory_budget_bytes = min(its own, budget)``; a task whose model
+    alone (every variable is an active qubit) is over that budget is refused with the
+    message :func:`compiler.simulate.check_memory` gives on the local path.
+    """
+    if task.get("compile_only") or budget is None:
+        return dict(task), None
+    from compiler.simulate import check_memory
+
+    own = task.get("memory_budget_bytes")
+    eff = budget if own is None else min(int(own), budget)
+    n = len((task.get("model") or {}).get("variables") or ())
+    try:
+        check_memory(n, eff, saved_qubits=n)
+    except CapacityError as exc:
+        return None, failure_row(task, str(exc), exc.field)
+    out = dict(task)
+    out["memory_budget_bytes"] = eff
+    return out, None
+
+
+@dataclass
+class _Item:
+    study_id: str
+    task_index: int
+    task: dict
+    key: str | None = None              # the study row's cache key (store.task_keys)
+    attempt: int = 0
+    future: Any = None
+    submitted_at: float = 0.0
+    causes: list = field(default_factory=list)
+
+
+class DaskExecutor(Executor):
+    """Executor on a Dask cluster at ``address`` (``tcp://host:8786``), rows into ``store``.
+
+    settings: read for ``dask_address`` when ``address`` is not given.
+    client: an existing ``distributed.Client`` (tests); it is not closed by shutdown.
+    max_in_flight: tasks on the scheduler at once (default: 2 x worker threads, at least 4).
+    retries: Dask retries of a task that raised (default 1).
+    max_attempts: submissions of one task before its row records the failure (default 4).
+    connect_timeout: seconds to reach the scheduler in ``start`` (default 30).
+    """
+
+    def __init__(self, settings: Any = None, store: Any = None, *, address: str | None = None,
+                 client: Any = None, max_in_flight: int | None = None, retries: int = 1,
+                 max_attempts: int = 4, connect_timeout: float = 30.0, poll_seconds: float = 0.5):
+        self.address = address or getattr(settings, "dask_address", None)
+        if not self.address and client is None:
+            raise ToposcoutError("the Dask executor needs a scheduler address (TOPOSCOUT_DASK_ADDRESS=tcp://host:8786)",
+                                 field="dask_address")
+        self.store = store
+        self.memory_budget = getattr(settings, "memory_budget_bytes", None)  # optional cap below the workers'
+        self._own_client = client is None
+        self.client = client
+        self.max_in_flight = max_in_flight
+        self.retries = retries
+        self.max_attempts = max_attempts
+        self.connect_timeout = connect_timeout
+        self.poll_seconds = poll_seconds
+        self._lock = threading.Condition()
+        self._backlog: collections.deque[_Item] = collections.deque()
+        self._running: dict[str, _Item] = {}          # key -> item on the cluster
+        self._done: queue.SimpleQueue = queue.SimpleQueue()
+        self._recorded: set[tuple[str, int]] = set()
+        self._queued: set[tuple[str, int]] = set()    # (study, index) in backlog or on the cluster
+        self._cancelled: set[str] = set()
+        self._started: set[str] = set()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self.stats = collections.Counter()
+        self._info: tuple[float, int, int | None] | None = None
+        self._warned_no_workers = False
+
+    # --- Executor interface ---------------------------------------------------------
+    def start(self) -> None:
+        if self.client is None:
+            from distributed import Client
+
+            try:
+                self.client = Client(self.address, timeout=self.connect_timeout, set_as_default=False)
+            except (OSError, TimeoutError) as exc:
+                raise ToposcoutError(f"cannot reach the Dask scheduler at {self.address}: {exc}",
+                                     field="dask_address") from None
+        self._stop.clear()
+        self._thread = threading.Thread(target=self._pump, name="toposcout-dask", daemon=True)
+        self._thread.start()
+
+    def submit(self, study_id: str, tasks: list[tuple[int, dict]]) -> None:
+        keys = self.store.task_keys(study_id) if tasks and hasattr(self.store, "task_keys") else {}
+        with self._lock:
+            self._cancelled.discard(study_id)
+            for index, task in tasks:
+                k = (study_id, int(index))
+                if k in self._queued or k in self._recorded:
+                    continue
+                self._queued.add(k)
+                self._backlog.append(_Item(study_id, int(index), dict(task), keys.get(int(index))))
+            self._lock.notify_all()
+
+    def cancel(self, study_id: str) -> None:
+        with self._lock:
+            self._cancelled.add(study_id)
+            kept = collections.deque(i for i in self._backlog if i.study_id != study_id)
+            for item in self._backlog:
+                if item.study_id == study_id:
+                    self._queued.discard((item.study_id, item.task_index))
+            self._backlog = kept
+            futures = [i.future for i in self._running.values() if i.study_id == study_id]
+            self._lock.notify_all()
+        if futures and self.client is not None:
+            try:
+                self.client.cancel(futures)  # a running task finishes on its worker; its row is dropped
+            except Exception as exc:  # the scheduler may be gone; nothing left to stop then
+                log.warning("cancelling study %s on the cluster: %s", study_id, exc)
+
+    def shutdown(self) -> None:
+        self._stop.set()
+        with self._lock:
+            self._lock.notify_all()
+        if self._thread is not None:
+            self._thread.join(timeout=30)
+            self._thread = None
+        if self._own_client and self.client is not None:
+            try:
+                self.client.close(timeout=10)
+            except Exception as exc:
+                log.warning("closing the Dask client: %s", exc)
+            self.client = None
+
+    # --- introspection (tests, /metrics) -------------------------------------------
+    def pending(self, study_id: str | None = None) -> int:
+        """Tasks of ``study_id`` (default: all) not yet recorded: queued here or on the cluster."""
+        with self._lock:
+            return sum(1 for s, _ in self._queued if study_id is None or s == study_id)
+
+    def wait_idle(self, timeout: float = 60.0) -> bool:
+        """Block until nothing is queued or running (tests and benchmarks; not for request handlers)."""
+        end = time.monotonic() + timeout
+        while time.monotonic() < end:
+            if self.pending() == 0:
+                return True
+            time.sleep(0.02)
+        return self.pending() == 0
+
+    def cluster_info(self, max_age: float = 2.0) -> tuple[int, int | None]:
+        """``(worker threads, memory budget per simulation)`` of the cluster, cached ``max_age`` s."""
+        now = time.monotonic()
+        if self._info is None or now - self._info[0] > max_age:
+            workers = self.client.scheduler_info(n_workers=-1).get("workers", {}).values()
+            threads = sum(int(w.get("nthreads") or 1) for w in workers)
+            budget = worker_memory_budget([w.get("memory_limit") or 0 for w in workers])
+            if self.memory_budget:
+                budget = min(budget, int(self.memory_budget)) if budget else int(self.memory_budget)
+            self._info = (now, threads, budget)
+        return self._info[1], self._info[2]
+
+    # --- the background thread -------------------------------------------------------
+    def _pump(self) -> None:
+        while not self._stop.is_set():
+            try:
+                self._drain_done()
+                self._fill()
+            except Exception:  # keep the thread alive; the next round retries
+                log.exception("Dask executor round failed")
+                time.sleep(self.poll_seconds)
+            with self._lock:
+                if self._done.empty() and not self._stop.is_set():
+                    self._lock.wait(self.poll_seconds)
+
+    def _on_done(self, future) -> None:  # runs on Dask's callback thread: only queue
+        self._done.put(future.key)
+        with self._lock:
+            self._lock.notify_all()
+
+    def _fill(self) -> None:
+        if not self._backlog:
+            return
+        threads, budget = self.cluster_info()
+        if threads == 0:  # no worker yet: the memory check needs one; hold the tasks here
+            if not self._warned_no_workers:
+                log.warning("no Dask workers connected to %s yet; %d tasks wait", self.address, len(self._backlog))
+                self._warned_no_workers = True
+            self._info = None
+            return
+        self._warned_no_workers = False
+        cap = self.max_in_flight or max(4, 2 * threads)
+        while True:
+            with self._lock:
+                if len(self._running) >= cap or not self._backlog:
+                    return
+                item = self._backlog.popleft()
+                if item.study_id in self._cancelled:
+                    self._queued.discard((item.study_id, item.task_index))
+                    continue
+            if self._from_cache(item):
+                continue
+            task, refused = precheck_memory(item.task, budget)
+            if refused is not None:
+                self.stats["refused"] += 1
+                self._record(item, refused)
+                continue
+            self._send(item, task)
+
+    def _from_cache(self, item: _Item) -> bool:
+        """Record the row another study computed meanwhile (same task key) instead of running it."""
+        if item.key is None or not hasattr(self.store, "cached_row"):
+            return False
+        row = self.store.cached_row(item.key)
+        if row is None:
+            return False
+        self.stats["cached"] += 1
+        self._record(item, row, cached=True)
+        return True
+
+    def _send(self, item: _Item, task: dict) -> None:
+        from compiler.study import run_task
+
+        key = task_key_for(item.study_id, item.task_index, item.attempt)
+        item.submitted_at = time.monotonic()
+        fut = self.client.submit(run_task, task, key=key, pure=False, retries=self.retries)
+        item.future = fut
+        with self._lock:
+            self._running[key] = item
+            first = item.study_id not in self._started
+            self._started.add(item.study_id)
+        self.stats["submitted"] += 1
+        if first and hasattr(self.store, "mark_running"):
+            try:
+                self.store.mark_running(item.study_id)
+            except Exception as exc:  # progress display only; the rows still get recorded
+                log.warning("marking study %s running: %s", item.study_id, exc)
+        fut.add_done_callback(self._on_done)
+
+    def _drain_done(self) -> None:
+        while True:
+            try:
+                key = self._done.get_nowait()
+            except queue.Empty:
+                return
+            with self._lock:
+                item = self._running.pop(key, None)
+            if item is None:
+                continue
+            self._finish(item)
+
+    def _finish(self, item: _Item) -> None:
+        fut = item.future
+        status = fut.status
+        if item.study_id in self._cancelled:
+            with self._lock:
+                self._queued.discard((item.study_id, item.task_index))
+            fut.release()
+            self.stats["stopped"] += 1
+            return
+        if status == "finished":
+            try:
+                row = fut.result(timeout=60)
+            except Exception as exc:  # result lost between done and fetch (worker died): run again
+                self._again(item, exc)
+                return
+            fut.release()
+            self.stats["computed"] += 1
+            self._record(item, row)
+            return
+        exc = None
+        if status == "error":
+            try:
+                exc = fut.exception(timeout=10)
+            except Exception as e:
+                exc = e
+        fut.release()
+        self._again(item, exc if exc is not None else RuntimeError(f"task {status} on the cluster"))
+
+    def _again(self, item: _Item, exc: BaseException) -> None:
+        item.causes.append(f"{type(exc).__name__}: {exc}")
+        if type(exc).__name__ == "KilledWorker":
+            self.stats["worker_deaths"] += 1
+        item.attempt += 1
+        self.stats["resubmitted"] += 1
+        if item.attempt >= self.max_attempts:
+            msg = (f"the task failed on the Dask cluster {item.attempt} times; last: {item.causes[-1]}")
+            row = failure_row(item.task, msg, "worker")  # the store does not cache executor failures
+            self._record(item, row)
+            return
+        log.warning("resubmitting task %s of study %s (attempt %d): %s", item.task_index, item.study_id,
+                    item.attempt, item.causes[-1])
+        with self._lock:
+            self._backlog.appendleft(item)
+
+    def _record(self, item: _Item, row: dict, *, cached: bool = False) -> None:
+        k = (item.study_id, item.task_index)
+        with self._lock:
+            if k in self._recorded:
+                self._queued.discard(k)
+                return
+        seconds = float(row.get("row_seconds") or 0.0)
+        for attempt in range(3):
+            try:
+                if cached:
+                    self.store.record_row(item.study_id, item.task_index, row, seconds, cached=True)
+                else:
+                    self.store.record_row(item.study_id, item.task_index, row, seconds)
+                break
+            except Exception as exc:  # the database hiccuped: retry, else leave it for a restart
+                if attempt == 2:
+                    log.error("recording row %s of study %s failed: %s", item.task_index, item.study_id, exc)
+                    with self._lock:
+                        self._queued.discard(k)
+                    return
+                time.sleep(0.5 * (attempt + 1))
+        with self._lock:
+            self._recorded.add(k)
+            self._queued.discard(k)
+        self.stats["recorded"] += 1
+
+
+# --- workers -------------------------------------------------------------------------
+_UNITS = {"": 1, "b": 1, "k": 10**3, "kb": 10**3, "m": 10**6, "mb": 10**6, "g": 10**9, "gb": 10**9,
+          "t": 10**12, "tb": 10**12, "kib": 2**10, "mib": 2**20, "gib": 2**30, "tib": 2**40}
+
+
+def parse_memory(text: str) -> int:
+    """``"4GiB"``, ``"2.5GB"``, ``"512MiB"`` or bytes -> bytes; a clear error otherwise."""
+    s = str(text).strip().lower().replace(" ", "")
+    num = s.rstrip("abcdefghijklmnopqrstuvwxyz")
+    unit = s[len(num):]
+    try:
+        value = float(num)
+    except ValueError:
+        value = -1.0
+    if unit not in _UNITS or value <= 0:
+        raise ToposcoutError(f"memory limit must be a size like 4GiB, 2GB or 512MiB, got {text!r}",
+                             field="memory_limit")
+    return int(value * _UNITS[unit])
+
+
+def run_worker(scheduler: str, *, nworkers: int = 1, memory_limit: str = "4GiB", threads: int | None = None,
+               host: str | None = None, name: str | None = None, death_timeout: float | None = 60.0) -> int:
+    """Start ``nworkers`` worker processes (one task at a time each) until interrupted.
+
+    threads: OpenMP threads of the simulator in each process (default: cores / nworkers).
+    """
+    import asyncio
+
+    from distributed import Nanny
+
+    if not scheduler or "://" not in scheduler:
+        raise ToposcoutError(f"scheduler address must look like tcp://host:8786, got {scheduler!r}",
+                             field="scheduler")
+    if nworkers < 1:
+        raise ToposcoutError("--nworkers must be at least 1", field="nworkers")
+    limit = parse_memory(memory_limit)
+    omp = threads if threads else max(1, (os.cpu_count() or 1) // nworkers)
+    env = {"OMP_NUM_THREADS": str(omp), "MKL_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
+
+    async def main() -> None:
+        stop = asyncio.Event()
+        loop = asyncio.get_running_loop()
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            try:
+                loop.add_signal_handler(sig, stop.set)
+            except (NotImplementedError, RuntimeError):  # not the main thread / platform
+                pass
+        nannies = [Nanny(scheduler, nthreads=1, memory_limit=limit, env=env, host=host,
+                         name=f"{name}-{i}" if name and nworkers > 1 else name,
+                         preload=list(WORKER_PRELOAD), death_timeout=death_timeout)
+                   for i in range(nworkers)]
+        try:
+            await asyncio.gather(*nannies)
+            waiters = [asyncio.ensure_future(n.finished()) for n in nannies]
+            stopper = asyncio.ensure_future(stop.wait())
+            await asyncio.wait([stopper, *waiters], return_when=asyncio.FIRST_COMPLETED)
+            stopper.cancel()
+        finally:
+            await asyncio.gather(*(n.close(reason="toposcout worker stopped") for n in nannies),
+                                 return_exceptions=True)
+
+    try:
+        asyncio.run(main())
+    except KeyboardInterrupt:
+        return 0
+    except (OSError, TimeoutError, RuntimeError) as exc:
+        cause = exc.__cause__ or exc
+        raise ToposcoutError(f"cannot start a worker for the scheduler at {scheduler}: {cause or type(cause).__name__}"
+                             f" (is the scheduler running and reachable?)", field="scheduler") from None
+    return 0

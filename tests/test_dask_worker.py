@@ -1,0 +1,82 @@
+"""`toposcout worker`: real worker processes joining a scheduler on loopback."""
+
+from __future__ import annotations
+
+import io
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import pytest
+
+distributed = pytest.importorskip("distributed")
+
+from compiler.study import make_tasks  # noqa: E402
+from service.cli import main  # noqa: E402
+from service.dask_executor import DaskExecutor  # noqa: E402
+from tests.test_dask_executor import MemoryStore, chain, wait_for  # noqa: E402
+
+
+def test_worker_command_joins_with_its_memory_limit_and_threads(tmp_path):
+    cluster = distributed.LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address=None)
+    proc = None
+    try:
+        log = open(tmp_path / "worker.log", "w")
+        proc = subprocess.Popen([sys.executable, "-m", "service.cli", "worker", cluster.scheduler_address,
+                                 "--nworkers", "2", "--memory-limit", "1GiB", "--threads", "1",
+                                 "--host", "127.0.0.1", "--name", "probe"],
+                                stdout=log, stderr=subprocess.STDOUT, cwd=os.getcwd())
+        client = distributed.Client(cluster.scheduler_address, set_as_default=False)
+        assert wait_for(lambda: len(client.scheduler_info()["workers"]) == 2, timeout=90), \
+            (tmp_path / "worker.log").read_text()[-2000:]
+        workers = client.scheduler_info()["workers"].values()
+        assert sorted(w["name"] for w in workers) == ["probe-0", "probe-1"]
+        assert all(w["memory_limit"] == 2**30 and w["nthreads"] == 1 for w in workers)
+        env = client.run(lambda: (os.environ.get("OMP_NUM_THREADS"), "compiler.metrics" in sys.modules))
+        assert set(env.values()) == {("1", True)}, env
+        client.close()
+        store = MemoryStore()
+        ex = DaskExecutor(store=store, address=cluster.scheduler_address)
+        ex.start()
+        try:
+            # a simulating task carries half the 1 GiB limit as its budget
+            t = make_tasks(chain(3), ["line", "ring"], seeds=1, strategy="generic", error_budget=False)
+            ex.submit("w", list(enumerate(t)))
+            assert ex.wait_idle(90)
+        finally:
+            ex.shutdown()
+        rows = store.study_rows("w")
+        assert sorted(rows) == [0, 1] and all(r["error"] is None for r in rows.values())
+        assert all(r["memory_estimate_bytes"] < 2**29 for r in rows.values())
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(timeout=60) == 0
+    finally:
+        if proc is not None and proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        cluster.close()
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["worker"], "the following arguments are required: scheduler"),
+    (["worker", "localhost:8786"], "scheduler address must look like tcp://host:8786"),
+    (["worker", "tcp://127.0.0.1:8786", "--memory-limit", "plenty"], "memory limit must be a size like 4GiB"),
+    (["worker", "tcp://127.0.0.1:8786", "--nworkers", "0"], "--nworkers must be at least 1"),
+])
+def test_worker_bad_input_is_a_clear_message(argv, message):
+    out, err = io.StringIO(), io.StringIO()
+    assert main(argv, out=out, err=err) == 2
+    assert message in err.getvalue()
+    assert "Traceback" not in err.getvalue()
+
+
+def test_worker_unreachable_scheduler_is_a_clear_error():
+    from compiler.errors import ToposcoutError
+    from service.dask_executor import run_worker
+
+    t0 = time.monotonic()
+    with pytest.raises(ToposcoutError, match="cannot start a worker for the scheduler at tcp://127.0.0.1:9"):
+        run_worker("tcp://127.0.0.1:9", memory_limit="256MiB", death_timeout=2)
+    assert time.monotonic() - t0 < 40
