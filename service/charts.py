@@ -73,6 +73,7 @@ _BUDGET = (("budget_two_qubit", "two-qubit gates", "#c0504d"),
            ("budget_idle", "idling (T1/T2)", "#4f81bd"),
            ("budget_readout", "readout", "#8064a2"))
 _BLUE, _ORANGE, _GREY = "#2f6db3", "#d9822b", "#b5b5b5"
+_MARKERS = ("o", "s", "^", "D", "v", "P", "X")  # distinct shapes keep overlapping curves apart
 
 
 def usable_rows(rows: Iterable[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
@@ -256,7 +257,8 @@ def _draw_budget(fig: Figure, rows) -> None:
     ax.set_xticks(xs, names, rotation=30, ha="right", fontsize=8)
     ax.set_xlabel("connectivity (instance)")
     ax.set_ylabel("Hellinger fidelity lost (absolute, 0 to 1)")
-    ax.margins(y=0.2)
+    top = max(bottom + [1 - float(r.get("hellinger_fidelity") or 1.0) for r in per] + [1e-9])
+    ax.set_ylim(0, top * 1.5)  # room for the legend above the tallest bar
     ax.legend(fontsize=8, loc="upper left", ncols=2)
 
 
@@ -278,7 +280,8 @@ def _draw_sweep(fig: Figure, rows) -> None:
         thr = next((r.get("threshold_noise_scale") for r in rows if str(r.get("connectivity")) == name
                     and r.get("threshold_noise_scale") is not None), None)
         label = name if thr is None else f"{name} (target reached up to {thr:.3g}x)"
-        ax.plot([p[0] for p in pts], [p[1] for p in pts], marker="o", color=c, label=label)
+        ax.plot([p[0] for p in pts], [p[1] for p in pts], marker=_MARKERS[i % len(_MARKERS)], color=c, label=label,
+                linestyle=("-", "--", "-.", ":")[i % 4], markersize=7 - (i % 3), markerfacecolor="none" if i % 2 else c)
         if thr is not None:
             ax.axvline(thr, color=c, linestyle="--", linewidth=1)
             ax.annotate(f"threshold {thr:.3g}x", (thr, 0.03 + 0.06 * (i % 4)), color=c, fontsize=7,
@@ -393,7 +396,8 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
     ax.scatter([], [], s=60, c=_BLUE, edgecolors="#17375e", label="variable placed (initial layout)")
     if act - set(by_qubit):
         ax.scatter([], [], s=60, c="#9cc3e6", edgecolors=_BLUE, label="used for routing only")
-    ax.scatter([], [], s=60, c="#e6e6e6", edgecolors=_GREY, label="idle qubit")
+    if set(range(n)) - act - set(by_qubit):
+        ax.scatter([], [], s=60, c="#e6e6e6", edgecolors=_GREY, label="idle qubit")
     if swaps:
         ax.plot([], [], color=_ORANGE, linewidth=3.5, label="coupling that carried SWAPs")
     ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncols=2, frameon=False)
