@@ -104,7 +104,9 @@ def _loc(loc: tuple) -> str:
 
 
 def _validation_detail(errors: list[dict], *, strip_source: bool) -> tuple[str, str]:
-    e = errors[0]
+    # in a union (``"line"`` or an object) the branch of the wrong type reports "should be a
+    # valid string"; the other branch's error says what is really wrong
+    e = ([x for x in errors if not str(x.get("type", "")).endswith("_type")] or errors)[0]
     loc = tuple(e.get("loc", ()))
     if strip_source and loc and loc[0] in ("body", "query", "path", "header", "cookie"):
         loc = loc[1:]
@@ -413,7 +415,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         return JSONResponse({"id": study["id"], "model_name": study["model_name"], "status": study["status"],
                              "rows": study["rows"]})
 
-    @app.get("/v1/studies/{study_id}/rows.csv", response_class=PlainTextResponse, tags=["studies"],
+    @app.get("/v1/studies/{study_id}/rows.csv", tags=["studies"],
              responses=ERRORS_STUDY | {200: {"content": {"text/csv": {"schema": {"type": "string"}}}}},
              summary="The rows of a study as CSV")
     def rows_csv(study_id: StudyId, owner: Owner):
@@ -434,7 +436,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                           "task_index")
         return data
 
-    @app.get("/v1/studies/{study_id}/circuits/{task_index}.qpy", response_class=Response, tags=["circuits"],
+    @app.get("/v1/studies/{study_id}/circuits/{task_index}.qpy", tags=["circuits"],
              responses=ERRORS_STUDY | {200: {"content": {"application/octet-stream": {
                  "schema": {"type": "string", "format": "binary"}}}}},
              summary="A row's compiled circuit as QPY")
@@ -445,8 +447,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         return Response(data, media_type="application/octet-stream",
                         headers={"Content-Disposition": f'attachment; filename="{study_id}-{task_index}.qpy"'})
 
-    @app.get("/v1/studies/{study_id}/circuits/{task_index}.qasm", response_class=PlainTextResponse,
-             tags=["circuits"], responses=ERRORS_STUDY | {200: {"content": {"text/plain": {
+    @app.get("/v1/studies/{study_id}/circuits/{task_index}.qasm", tags=["circuits"], responses=ERRORS_STUDY | {200: {"content": {"text/plain": {
                  "schema": {"type": "string"}}}}},
              summary="A row's compiled circuit as OpenQASM 3")
     def circuit_qasm(study_id: StudyId, task_index: TaskIndex, owner: Owner):
@@ -527,7 +528,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         return JSONResponse({"status": "ok", "version": __version__, "database": store.dialect,
                              "executor": type(app.state.executor).__name__})
 
-    @app.get("/metrics", response_class=PlainTextResponse, tags=["operations"],
+    @app.get("/metrics", tags=["operations"],
              responses=ERRORS_READ | {200: {"content": {"text/plain": {"schema": {"type": "string"}}}}},
              summary="Prometheus text format: studies by status, task durations, queue length")
     def metrics(owner: Owner):

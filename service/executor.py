@@ -116,9 +116,14 @@ class _Worker:
         self.proc.start()
         child.close()
         self.conn = parent
-        if not self.conn.poll(120):
-            raise WorkerDied("the worker process did not start within 120 s")
-        self.conn.recv()
+        try:
+            if not self.conn.poll(120):
+                raise WorkerDied("the worker process did not start within 120 s")
+            self.conn.recv()
+        except (EOFError, OSError):
+            code = self.proc.exitcode if self.proc else None
+            self.kill()
+            raise WorkerDied(f"the worker process exited (code {code}) while starting") from None
 
     def run(self, task: dict, time_limit: float, should_stop=lambda: False) -> dict | None:
         """The row of ``task``; raises TaskTimeout / WorkerDied; None when ``should_stop()``."""

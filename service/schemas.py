@@ -8,7 +8,7 @@ returns; rows carry every field of a ``run_task`` row (see the README) plus ``ta
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
@@ -32,8 +32,8 @@ class ConnectivitySpec(BaseModel):
 
     family: str = Field(min_length=1, max_length=32, description="a built-in family or 'custom'")
     size: str | int | None = Field(default=None, description="e.g. 12 (line), '3x4' (grid), 5 (heavy-hex)")
-    edges: list[tuple[int, int]] | None = Field(default=None, max_length=5000,
-                                                 description="custom only: undirected edges [a, b] of qubit indices")
+    edges: list[Annotated[list[int], Field(min_length=2, max_length=2)]] | None = Field(
+        default=None, max_length=5000, description="custom only: undirected edges [a, b] of qubit indices")
 
 
 class StudyRequest(BaseModel):

@@ -1,0 +1,117 @@
+"""The local executor: worker processes, rows equal to run_task, cache sharing, time limit, cancel."""
+
+from __future__ import annotations
+
+import os
+import time
+
+import pytest
+
+from compiler.study import make_tasks, run_task, task_key
+from service.executor import LocalExecutor
+from service.settings import Settings
+from service.store import Store
+from tests.service_support import K6, SMALL_MODEL, comparable
+
+
+@pytest.fixture(scope="module")
+def env(tmp_path_factory):
+    store = Store(f"sqlite:///{tmp_path_factory.mktemp('ex') / 'ex.db'}")
+    ex = LocalExecutor(Settings(workers=1, task_time_limit_seconds=120), store)
+    ex.start()
+    yield store, ex
+    ex.shutdown()
+    store.close()
+
+
+def _study(store: Store, tasks: list[dict], tag: str) -> str:
+    s, _, pending = store.create_study(owner="t", request={"tag": tag}, model_name=tag, tasks=tasks,
+                                       keys=[task_key(t) for t in tasks])
+    return s["id"], pending
+
+
+def _wait(store: Store, sid: str, timeout: float = 90.0) -> dict:
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        got = store.get_study(sid)
+        if got["status"] in ("done", "failed", "cancelled"):
+            return got
+        time.sleep(0.05)
+    raise AssertionError(f"study not finished: {store.get_study(sid, rows=False)}")
+
+
+def test_rows_equal_run_task_and_identical_work_is_shared(env):
+    store, ex = env
+    tasks = make_tasks(SMALL_MODEL, ["line", "ring"], compile_only=True, seeds=2, keep_circuit=True)
+    a, pa = _study(store, tasks, "a")
+    b, pb = _study(store, tasks, "b")  # same tasks, submitted while a runs
+    ex.submit(a, pa)
+    ex.submit(b, pb)
+    ra, rb = _wait(store, a)["rows"], _wait(store, b)["rows"]
+    expected = [comparable(run_task(t)) for t in tasks]
+    assert [comparable(r) for r in ra] == expected
+    assert [comparable(r) for r in rb] == expected
+    assert not any(r["cached"] for r in ra) and all(r["cached"] for r in rb)  # computed once
+    assert all(store.circuit(a, i) for i in range(len(tasks)))
+
+
+def test_time_limit_fails_the_row_with_the_reason_and_the_worker_is_replaced(env):
+    store, ex = env
+    slow = make_tasks(K6, ["line"], compile_only=False, seeds=1, fidelity_target=0.5)[0]  # several seconds
+    quick = make_tasks(SMALL_MODEL, ["grid"], compile_only=True, seeds=1)[0]
+    ex.time_limit = 1.0
+    try:
+        sid, pending = _study(store, [slow, quick], "limit")
+        t0 = time.monotonic()
+        ex.submit(sid, pending)
+        got = _wait(store, sid)
+    finally:
+        ex.time_limit = 120.0
+    slow_row, quick_row = got["rows"]
+    assert slow_row["status"] == "failed" and slow_row["error_field"] == "task_time_limit"
+    assert "time limit of 1 s" in slow_row["error"]
+    assert quick_row["status"] == "done" and quick_row["error"] is None  # the other row still completes
+    assert got["status"] == "done"
+    assert store.cached_row(task_key(slow)) is None  # a time-out is not cached: a retry may succeed
+    assert time.monotonic() - t0 < 60
+
+
+def test_cancel_stops_the_running_task_and_drops_queued_ones(env):
+    store, ex = env
+    slow = make_tasks(K6, ["ring", "grid"], compile_only=False, seeds=1, fidelity_target=0.5, seed=7)
+    sid, pending = _study(store, slow, "cancel")
+    before = ex.stats["stopped"]
+    ex.submit(sid, pending)
+    end = time.monotonic() + 30
+    while store.get_study(sid, rows=False)["status"] != "running":
+        assert time.monotonic() < end
+        time.sleep(0.05)
+    store.cancel(sid)
+    ex.cancel(sid)
+    end = time.monotonic() + 10
+    while ex.pending(sid):
+        assert time.monotonic() < end, "cancel did not stop the running task"
+        time.sleep(0.05)
+    assert ex.stats["stopped"] == before + 1
+    got = store.get_study(sid)
+    assert got["status"] == "cancelled" and {r["status"] for r in got["rows"]} == {"cancelled"}
+
+
+def test_a_dead_worker_fails_only_its_row(env):
+    store, ex = env
+    slow = make_tasks(K6, ["all-to-all"], compile_only=False, seeds=1, fidelity_target=0.5, seed=3)[0]
+    quick = make_tasks(SMALL_MODEL, ["line"], compile_only=True, seeds=1, seed=5)[0]
+    sid, pending = _study(store, [slow, quick], "dead")
+    ex.submit(sid, pending)
+    end = time.monotonic() + 30
+    while store.get_study(sid, rows=False)["status"] != "running":
+        assert time.monotonic() < end
+        time.sleep(0.05)
+    time.sleep(0.3)
+    worker = ex._slots[0].proc
+    assert worker is not None and worker.pid != os.getpid()  # tasks run in another process
+    os.kill(worker.pid, 9)
+    got = _wait(store, sid)
+    assert got["rows"][0]["status"] == "failed" and got["rows"][0]["error_field"] == "worker"
+    assert "exited" in got["rows"][0]["error"]
+    assert got["rows"][1]["status"] == "done"
