@@ -1,0 +1,130 @@
+"""Dashboard pages in process (Starlette's TestClient): sign-in, paging, escaping, clean errors."""
+
+from __future__ import annotations
+
+import html
+import re
+import time
+
+import pytest
+from fastapi.testclient import TestClient
+
+from service.api import create_app
+from service.settings import Settings
+
+TOKEN = "dave-dashboard-token"
+AUTH = {"Authorization": f"Bearer {TOKEN}"}
+MODEL = {"name": "<b>tri</b>", "variables": ["a", "b", "c"], "cliques": [["a", "b", "c"]]}
+
+
+@pytest.fixture(scope="module")
+def app_client(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("dashboard")
+    settings = Settings(database_url=f"sqlite:///{folder / 'd.db'}", data_dir=folder, workers=1,
+                        tokens=f"dave:{TOKEN}", max_active_studies_per_owner=64)
+    with TestClient(create_app(settings)) as c:
+        yield c
+
+
+def _submit(c: TestClient, **extra) -> str:
+    body = {"model": MODEL, "connectivities": ["all-to-all"], "compile_only": True, "seeds": 1, **extra}
+    r = c.post("/v1/studies", json=body, headers=AUTH)
+    assert r.status_code == 202, r.text
+    return r.json()["id"]
+
+
+def _wait_done(c: TestClient, study_id: str) -> dict:
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        s = c.get(f"/v1/studies/{study_id}", headers=AUTH).json()
+        if s["status"] in ("done", "failed", "cancelled"):
+            return s
+        time.sleep(0.2)
+    raise AssertionError(f"study {study_id} did not finish")
+
+
+@pytest.fixture(scope="module")
+def studies(app_client) -> list[str]:
+    ids = [_submit(app_client, seed=i) for i in range(3)]
+    ids += [_submit(app_client) for _ in range(19)]  # equal tasks: rows come from the cache
+    for i in ids:
+        _wait_done(app_client, i)
+    return ids
+
+
+def test_pages_without_a_token_ask_for_one(app_client):
+    app_client.cookies.clear()
+    r = app_client.get("/")
+    assert r.status_code == 401
+    assert '<label for="token">' in r.text and "Traceback" not in r.text
+
+
+def test_token_in_the_address_becomes_a_cookie(app_client):
+    app_client.cookies.clear()
+    r = app_client.get(f"/submit?token={TOKEN}", follow_redirects=False)
+    assert r.status_code == 303 and r.headers["location"] == "/submit"
+    cookie = r.headers["set-cookie"]
+    assert "toposcout_token=" in cookie and "HttpOnly" in cookie and "SameSite=strict" in cookie
+    r = app_client.get("/submit")
+    assert r.status_code == 200 and "New study" in r.text
+    app_client.cookies.clear()
+
+
+def test_list_is_paged_newest_first(app_client, studies):
+    app_client.cookies.set("toposcout_token", TOKEN)
+    first = app_client.get("/")
+    assert first.status_code == 200
+    ids = re.findall(r'<tr data-id="([0-9a-f]+)"', first.text)
+    assert len(ids) == 20 and ids[0] == studies[-1]
+    assert 'rel="next"' in first.text and "page 1 of 2" in first.text
+    second = app_client.get("/?page=2")
+    assert re.findall(r'<tr data-id="([0-9a-f]+)"', second.text) == studies[:2][::-1]
+    assert 'rel="prev"' in second.text
+    assert app_client.get("/?page=banana").status_code == 200  # a bad page number shows page 1
+    done = app_client.get("/?status=done")
+    assert "22 studies" in done.text
+    assert "best connectivity" in first.text.lower() and "all-to-all-3" in first.text
+
+
+def test_model_names_are_escaped(app_client, studies):
+    app_client.cookies.set("toposcout_token", TOKEN)
+    page = app_client.get(f"/studies/{studies[0]}").text
+    assert "<b>tri</b>" not in page and "&lt;b&gt;tri&lt;/b&gt;" in page
+
+
+def test_compile_only_study_has_the_gate_chart_and_drawings(app_client, studies):
+    app_client.cookies.set("toposcout_token", TOKEN)
+    r = app_client.get(f"/studies/{studies[0]}")
+    assert r.status_code == 200
+    assert 'id="chart-gates"' in r.text and 'id="chart-fidelity"' not in r.text
+    assert 'id="drawing-0"' in r.text
+    assert "default-src 'self'" in r.headers["content-security-policy"]
+    assert not re.search(r'(src|href)="(https?:)?//', r.text)  # nothing from other hosts
+    svg = app_client.get(f"/studies/{studies[0]}/charts/gates.svg")
+    assert svg.status_code == 200 and svg.headers["content-type"].startswith("image/svg+xml")
+    png = app_client.get(f"/studies/{studies[0]}/drawings/0.png?download=1")
+    assert png.content.startswith(b"\x89PNG") and "attachment" in png.headers["content-disposition"]
+
+
+@pytest.mark.parametrize("path, status, words", [
+    ("/studies/{id}/charts/pie.svg", 404, "unknown chart 'pie'"),
+    ("/studies/{id}/charts/fidelity.svg", 404, "needs a noise simulation"),
+    ("/studies/{id}/charts/gates.gif", 404, "unknown chart format 'gif'"),
+    ("/studies/{id}/drawings/first.svg", 404, "task index"),
+    ("/studies/{id}/drawings/7.svg", 404, "no finished row 7"),
+    ("/studies/0123456789abcdef0123456789abcdef", 404, ""),
+    ("/static/secrets.txt", 404, "no such file"),
+])
+def test_bad_addresses_get_a_clear_page(app_client, studies, path, status, words):
+    app_client.cookies.set("toposcout_token", TOKEN)
+    r = app_client.get(path.format(id=studies[0]))
+    assert r.status_code == status
+    assert words in html.unescape(r.text)
+    assert "Traceback" not in r.text
+
+
+def test_live_fragment_has_the_table(app_client, studies):
+    app_client.cookies.set("toposcout_token", TOKEN)
+    r = app_client.get(f"/studies/{studies[0]}/live")
+    assert r.status_code == 200
+    assert 'id="rows"' in r.text and 'id="study-status"' in r.text and "<html" not in r.text
