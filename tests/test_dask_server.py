@@ -1,0 +1,97 @@
+"""The real server on a Dask cluster: killed while the cluster computes, restarted, nothing lost."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import httpx
+import pytest
+
+distributed = pytest.importorskip("distributed")
+
+from service.dask_executor import WORKER_PRELOAD  # noqa: E402
+from tests.live_server import ROOT, LiveServer, free_port  # noqa: E402
+
+
+def start_dask_server(folder: Path, scheduler: str, timeout: float = 90.0) -> LiveServer:
+    folder.mkdir(parents=True, exist_ok=True)
+    port = free_port()
+    db = f"sqlite:///{folder / 'toposcout.db'}"
+    env = {k: v for k, v in os.environ.items() if not k.startswith("TOPOSCOUT_")}
+    env.update(TOPOSCOUT_DATABASE_URL=db, TOPOSCOUT_DATA_DIR=str(folder), TOPOSCOUT_DASK_ADDRESS=scheduler,
+               PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    log = folder / f"server-{port}.log"
+    with open(log, "wb") as fh:
+        proc = subprocess.Popen([sys.executable, "-m", "uvicorn", "--factory", "service.api:create_app",
+                                 "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"],
+                                cwd=ROOT, env=env, stdout=fh, stderr=subprocess.STDOUT)
+    url = f"http://127.0.0.1:{port}"
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            raise RuntimeError(f"the server exited with {proc.returncode}:\n{log.read_text(errors='replace')}")
+        try:
+            r = httpx.get(url + "/healthz", timeout=2)
+            if r.status_code == 200:
+                assert r.json().get("executor") == "DaskExecutor", r.text
+                return LiveServer(url, db, proc, log)
+        except httpx.HTTPError:
+            pass
+        time.sleep(0.25)
+    proc.kill()
+    raise RuntimeError(f"the server did not answer within {timeout} s:\n{log.read_text(errors='replace')}")
+
+
+def chain(n: int) -> dict:
+    v = [f"x{i}" for i in range(n)]
+    return {"name": f"chain{n}", "variables": v, "cliques": [[v[i], v[i + 1]] for i in range(n - 1)]}
+
+
+def test_server_killed_mid_study_and_restarted_completes(tmp_path):
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, memory_limit="2GiB",
+                                       host="127.0.0.1", dashboard_address=None, preload=list(WORKER_PRELOAD))
+    servers: list[LiveServer] = []
+    try:
+        first = start_dask_server(tmp_path, cluster.scheduler_address)
+        servers.append(first)
+        body = {"model": chain(8), "connectivities": ["line", "ring", "grid", "all-to-all"],
+                "noise_scales": [0.5, 2.0], "seeds": 1, "strategy": "generic"}
+        r = httpx.post(first.url + "/v1/studies", json=body, timeout=30)
+        assert r.status_code == 202, r.text
+        sid, total = r.json()["id"], r.json()["progress"]["total"]
+        assert total == 8
+
+        def progress(server):
+            return httpx.get(f"{server.url}/v1/studies/{sid}", timeout=10).json()
+
+        deadline = time.monotonic() + 90
+        while progress(first)["progress"]["done"] < 2 and time.monotonic() < deadline:
+            time.sleep(0.1)
+        client = distributed.Client(cluster.scheduler_address, set_as_default=False)
+        try:
+            on_cluster = [k for ks in client.processing().values() for k in ks if str(k).startswith("toposcout-")]
+        finally:
+            client.close()
+        first.process.kill()  # no shutdown at all: the server dies while the cluster computes
+        first.process.wait(10)
+        assert on_cluster, "the kill must land while tasks run on the cluster"
+        second = start_dask_server(tmp_path, cluster.scheduler_address)
+        servers.append(second)
+        deadline = time.monotonic() + 150
+        st = progress(second)
+        while st["status"] not in ("done", "failed") and time.monotonic() < deadline:
+            time.sleep(0.2)
+            st = progress(second)
+        assert st["status"] == "done", (st["status"], st["progress"], second.log.read_text()[-3000:])
+        indices = [row["task_index"] for row in st["rows"]]
+        assert sorted(indices) == list(range(total))
+        assert all(row["status"] == "done" and row["simulated_qubits"] == 8 for row in st["rows"])
+        assert st["progress"] == {"done": total, "total": total}
+    finally:
+        for s in servers:
+            s.stop()
+        cluster.close()
