@@ -15,20 +15,7 @@ from compiler.ansatz import build_ansatz
 from compiler.compile import compile_ansatz
 from compiler.model import parse_model
 from compiler.targets import BUILTIN_FAMILIES, get_gate_set, make_connectivity
-
-
-def plaquette_model(rows: int, cols: int) -> dict:
-    name = lambda r, c: f"p{r}_{c}"
-    variables = [name(r, c) for r in range(rows) for c in range(cols)]
-    cliques = [[name(r, c), name(r, c + 1), name(r + 1, c), name(r + 1, c + 1)]
-               for r in range(rows - 1) for c in range(cols - 1)]
-    return {"name": f"plaquettes-{rows}x{cols}", "variables": variables, "cliques": cliques}
-
-
-def chain_model(n: int) -> dict:
-    variables = [f"d{i}" for i in range(n)]
-    return {"name": f"chain-{n}", "variables": variables,
-            "cliques": [[variables[i], variables[i + 1]] for i in range(n - 1)]}
+from service.bench import chain_model, plaquette_model
 
 
 def bench(model_dict: dict, families, strategy: str, seeds: int) -> float:

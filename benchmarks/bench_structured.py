@@ -1,6 +1,7 @@
 """Structured vs generic two-qubit counts on the issue's four models (cx gate set).
 
 Run: .venv/bin/python benchmarks/bench_structured.py [--generic-seeds 5] [--json out.json]
+The full suite with every check is `toposcout bench` (service/bench.py).
 Prints one row per (model, connectivity): LB, structured 2q count / depth / seconds, generic
 (qiskit preset pipeline, optimization level 3, best of the seeds) 2q count / depth, ratios.
 """
@@ -17,44 +18,11 @@ from compiler.compile import compile_generic
 from compiler.model import parse_model
 from compiler.synthesis import compile_structured
 from compiler.targets import get_gate_set, make_connectivity
+from service.bench import FAMILIES, ISSUE_BEST, plaquette_model, ring_triples_model, triangle_model
 
-# best qiskit figure per cell measured for the issue (line, grid, heavy-hex, all-to-all)
-ISSUE_BEST = {
-    "plaquettes-3x3": {"line": 184, "grid": 112, "heavy-hex": 152, "all-to-all": 66},
-    "plaquettes-3x4": {"line": 288, "grid": 185, "heavy-hex": 246, "all-to-all": 92},
-    "triangles-3x3": {"line": 84, "grid": 57, "heavy-hex": 75, "all-to-all": 36},
-    "ring10-triples": {"line": 135, "grid": 89, "heavy-hex": 95, "all-to-all": 54},
-}
-
-
-def _grid_plaquettes(rows, cols):
-    idx = lambda r, c: r * cols + c  # noqa: E731
-    return [[idx(r, c), idx(r, c + 1), idx(r + 1, c), idx(r + 1, c + 1)]
-            for r in range(rows - 1) for c in range(cols - 1)], rows * cols
-
-
-def _triangles(rows, cols):
-    idx = lambda r, c: r * cols + c  # noqa: E731
-    out = []
-    for r in range(rows - 1):
-        for c in range(cols - 1):
-            out.append([idx(r, c), idx(r, c + 1), idx(r + 1, c + 1)])
-            out.append([idx(r, c), idx(r + 1, c), idx(r + 1, c + 1)])
-    return out, rows * cols
-
-
-MODELS = {
-    "plaquettes-3x3": _grid_plaquettes(3, 3),
-    "plaquettes-3x4": _grid_plaquettes(3, 4),
-    "triangles-3x3": _triangles(3, 3),
-    "ring10-triples": ([[i, (i + 1) % 10, (i + 2) % 10] for i in range(10)], 10),
-}
-FAMILIES = ("line", "ring", "grid", "heavy-hex", "all-to-all")
-
-
-def model(cliques, n, name):
-    return parse_model({"name": name, "variables": [f"v{i}" for i in range(n)],
-                        "cliques": [[f"v{i}" for i in c] for c in cliques]})
+# the issue's four models (generators shared with `toposcout bench`, which runs the full suite)
+MODELS = {m["name"]: m for m in (plaquette_model(3, 3), plaquette_model(3, 4), triangle_model(3, 3),
+                                  ring_triples_model(10))}
 
 
 def main(argv=None) -> int:
@@ -64,8 +32,9 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     gs = get_gate_set("cx")
     rows = []
-    for name, (cliques, n) in MODELS.items():
-        a = build_ansatz(model(cliques, n, name))
+    for name, mdict in MODELS.items():
+        n = len(mdict["variables"])
+        a = build_ansatz(parse_model(mdict))
         lb = a.stats()["lower_bound_two_qubit"]
         for fam in FAMILIES:
             con = make_connectivity(fam, n)

@@ -63,6 +63,10 @@ def _parser() -> argparse.ArgumentParser:
 
     sub.add_parser("targets", help="list connectivities, gate sets and device profiles")
 
+    from service.bench import add_arguments as _bench_arguments
+
+    _bench_arguments(sub.add_parser("bench", help="structured vs generic compilation on a fixed suite of models"))
+
     sv = sub.add_parser("serve", help="run the REST API server (settings from TOPOSCOUT_* variables)")
     sv.add_argument("--host", default=None, help="address to listen on (default 127.0.0.1)")
     sv.add_argument("--port", type=int, default=None, help="port (default 8000)")
@@ -256,6 +260,10 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
             return _compare(args, out, err)
         if args.command == "targets":
             return _targets(out)
+        if args.command == "bench":
+            from service.bench import run_cli
+
+            return run_cli(args, out, err)
         if args.command == "serve":
             from service.api import serve
 
