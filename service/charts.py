@@ -57,6 +57,7 @@ __all__ = [
     "connectivity_for_row",
     "drawing_description",
     "usable_rows",
+    "per_connectivity",
 ]
 
 CHART_KINDS: tuple[str, ...] = ("gates", "fidelity", "budget", "sweep")
@@ -105,7 +106,7 @@ def caption(rows: Sequence[Mapping[str, Any]], *, kind: str = "gates") -> str:
     return "Compiler figures of a compile-only study (no noise simulated); not a device measurement."
 
 
-def _per_connectivity(rows: Sequence[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
+def per_connectivity(rows: Sequence[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
     """One row per connectivity (the one nearest noise scale 1), in first-seen order."""
     best: dict[str, Mapping[str, Any]] = {}
     for r in rows:
@@ -136,7 +137,7 @@ def available_charts(rows: Iterable[Mapping[str, Any]]) -> list[str]:
 def chart_description(kind: str, rows: Iterable[Mapping[str, Any]]) -> str:
     """A one-paragraph text equivalent of a chart (its alt text and SVG ``<desc>``)."""
     ok = usable_rows(rows)
-    per = _per_connectivity(ok)
+    per = per_connectivity(ok)
     if kind == "gates":
         body = "; ".join(f"{r['connectivity']}: {r['two_qubit_gates']} two-qubit gates, depth {r.get('depth')}"
                          for r in per)
@@ -180,7 +181,7 @@ def render_chart(kind: str, rows: Iterable[Mapping[str, Any]], *, fmt: str = "sv
                 "sweep": "finished noisy rows at two or more noise scales"}[kind]
         raise ToposcoutError(f"the chart {kind!r} needs {need}; this study has none", field="chart")
     draw = {"gates": _draw_gates, "fidelity": _draw_fidelity, "budget": _draw_budget, "sweep": _draw_sweep}[kind]
-    per = _per_connectivity(ok)
+    per = per_connectivity(ok)
     width = max(6.4, 1.1 * len(per) + 2.5) if kind != "sweep" else 7.0
     fig = Figure(figsize=(min(width, 14.0), 4.6), layout="constrained")
     draw(fig, ok)
@@ -199,7 +200,7 @@ def _names(per: Sequence[Mapping[str, Any]]) -> list[str]:
 
 
 def _draw_gates(fig: Figure, rows) -> None:
-    per = _per_connectivity(rows)
+    per = per_connectivity(rows)
     names = _names(per)
     ax1, ax2 = fig.subplots(1, 2)
     x = range(len(per))
@@ -222,7 +223,7 @@ def _draw_gates(fig: Figure, rows) -> None:
 
 
 def _draw_fidelity(fig: Figure, rows) -> None:
-    per = [r for r in _per_connectivity(rows) if r.get("state_fidelity") is not None]
+    per = [r for r in per_connectivity(rows) if r.get("state_fidelity") is not None]
     names = _names(per)
     ax = fig.subplots()
     w = 0.38
@@ -241,7 +242,7 @@ def _draw_fidelity(fig: Figure, rows) -> None:
 
 
 def _draw_budget(fig: Figure, rows) -> None:
-    per = [r for r in _per_connectivity(rows) if any(r.get(k) is not None for k, _, _ in _BUDGET)]
+    per = [r for r in per_connectivity(rows) if any(r.get(k) is not None for k, _, _ in _BUDGET)]
     names = _names(per)
     ax = fig.subplots()
     xs = list(range(len(per)))
@@ -336,8 +337,10 @@ def drawing_description(row: Mapping[str, Any], conn: Connectivity, active: Iter
     layout = row.get("layout") or {}
     act = set(active) if active is not None else _active_guess(row)
     placed = ", ".join(f"{v} on q{p}" for v, p in layout.items())
-    swaps = row.get("swap_edges") or {}
-    sw = (", ".join(f"q{e.replace('-', '-q')} ({n})" for e, n in swaps.items())) if swaps else "none"
+    swaps, dropped = _swaps_on(row, set(active) if active is not None else None)
+    sw = (", ".join(f"q{a}-q{b} ({n})" for (a, b), n in swaps.items())) if swaps else "none"
+    if dropped:
+        sw += f" ({dropped} recorded SWAP coupling(s) outside the qubits the circuit uses are not shown)"
     idle = conn.num_qubits - len(act)
     return (f"Connectivity {conn.name} ({conn.num_qubits} qubits, {len(conn.edges)} couplings). "
             f"Variables placed: {placed}. Couplings that carried SWAPs: {sw}. "
@@ -358,7 +361,7 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
     layout = {str(v): int(p) for v, p in (row.get("layout") or {}).items()}
     by_qubit = {p: v for v, p in layout.items()}
     act = set(active) if active is not None else _active_guess(row)
-    swaps = {tuple(sorted(int(x) for x in e.split("-"))): int(n) for e, n in (row.get("swap_edges") or {}).items()}
+    swaps, mismatch = _swaps_on(row, act if active is not None else None)
     xy = conn.coords()
     n = conn.num_qubits
     big = n > 30
@@ -410,9 +413,25 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
     ax.set_xlabel("drawing position (qubit spacing, no physical distance)", fontsize=8)
     ax.set_ylabel("drawing position (qubit spacing)", fontsize=8)
     title = f"{conn.name}: variables on physical qubits"
-    ax.set_title(title, fontsize=10)
+    note = (f"\n({mismatch} recorded SWAP coupling(s) touch qubits the circuit never uses; not drawn)"
+            if mismatch else "")
+    ax.set_title(title + note, fontsize=10)
     _caption(fig, caption([row], kind="gates"))
-    return _save(fig, fmt, title, drawing_description(row, conn, act))
+    return _save(fig, fmt, title, drawing_description(row, conn, act if active is not None else None))
+
+
+def _swaps_on(row: Mapping[str, Any], active: set[int] | None) -> tuple[dict[tuple[int, int], int], int]:
+    """SWAP counts per coupling; with the circuit's active qubits known, couplings outside them are dropped
+    (and counted) rather than drawn where no SWAP can have been."""
+    out: dict[tuple[int, int], int] = {}
+    dropped = 0
+    for e, n in (row.get("swap_edges") or {}).items():
+        a, b = sorted(int(x) for x in e.split("-"))
+        if active is not None and not {a, b} <= active:
+            dropped += 1
+            continue
+        out[(a, b)] = int(n)
+    return out, dropped
 
 
 # --- output ------------------------------------------------------------------------------

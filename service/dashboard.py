@@ -251,17 +251,31 @@ async def _study(request: Request, study_id: str) -> tuple[dict | None, Response
     return resp.json(), None
 
 
-def _drawable(study: Mapping[str, Any]) -> list[dict]:
-    """One row per connectivity (nearest noise scale 1) that can be drawn."""
-    ok = charts.usable_rows(study.get("rows") or [])
-    per = charts._per_connectivity(ok)  # same choice as the per-connectivity charts
+def _drawn_rows(study: Mapping[str, Any]) -> list[Mapping[str, Any]]:
+    """One row per connectivity (nearest noise scale 1; the same choice as the per-connectivity charts)."""
+    return charts.per_connectivity(charts.usable_rows(study.get("rows") or []))
+
+
+async def _actives(request: Request, study: Mapping[str, Any]) -> dict[int, set[int] | None]:
+    """Active qubits of each drawn row's compiled circuit (None where the circuit is not available)."""
+    out: dict[int, set[int] | None] = {}
+    for r in _drawn_rows(study):
+        i = int(r["task_index"])
+        q = await _api(request, "GET", f"/v1/studies/{study['id']}/circuits/{i}.qpy")
+        out[i] = await run_in_threadpool(_active_qubits, q.content) if q.status_code == 200 else None
+    return out
+
+
+def _drawable(study: Mapping[str, Any], actives: Mapping[int, set[int] | None]) -> list[dict]:
+    """The drawings of a study page with their alt text."""
     out = []
-    for r in per:
+    for r in _drawn_rows(study):
         try:
             conn = charts.connectivity_for_row(r, study.get("request"))
         except ToposcoutError:
             continue
-        out.append({"row": r, "conn": conn, "alt": charts.drawing_description(r, conn)})
+        alt = charts.drawing_description(r, conn, actives.get(int(r["task_index"])))
+        out.append({"row": r, "conn": conn, "alt": alt})
     return out
 
 
@@ -273,7 +287,7 @@ _COLUMNS = [("task_index", "#"), ("connectivity", "connectivity"), ("noise_scale
             ("duration_us", "duration (µs)"), ("threshold_noise_scale", "threshold scale")]
 
 
-def _study_context(study: dict) -> dict:
+def _study_context(study: dict, actives: Mapping[int, set[int] | None]) -> dict:
     rows = study.get("rows") or []
     kinds = charts.available_charts(rows)
     cols = [(k, h) for k, h in _COLUMNS if k in ("task_index", "connectivity", "status")
@@ -281,7 +295,7 @@ def _study_context(study: dict) -> dict:
     req = study.get("request") or {}
     profile = next((r.get("profile") for r in rows if r.get("profile")), None) or req.get("profile")
     return dict(study=study, rows=rows, columns=cols, kinds=kinds, titles=charts.CHART_TITLES,
-                alts={k: charts.chart_description(k, rows) for k in kinds}, drawings=_drawable(study),
+                alts={k: charts.chart_description(k, rows) for k in kinds}, drawings=_drawable(study, actives),
                 final=study.get("status") in _FINAL, profile=profile,
                 compile_only=bool(req.get("compile_only")), caption=charts.caption(rows, kind="fidelity"))
 
@@ -294,7 +308,7 @@ async def study_page(request: Request, study_id: str):
     study, problem = await _study(request, study_id)
     if problem:
         return problem
-    ctx = await run_in_threadpool(_study_context, study)
+    ctx = await run_in_threadpool(_study_context, study, await _actives(request, study))
     return _page(request, "study.html", **ctx)
 
 
@@ -304,7 +318,7 @@ async def study_live(request: Request, study_id: str):
     study, problem = await _study(request, study_id)
     if problem:
         return problem
-    ctx = await run_in_threadpool(_study_context, study)
+    ctx = await run_in_threadpool(_study_context, study, await _actives(request, study))
     return _page(request, "_study_live.html", **ctx)
 
 
@@ -490,7 +504,7 @@ async def submit(request: Request):
     return again(message, field, resp.status_code if 400 <= resp.status_code < 500 else 422)
 
 
-def _json_attr(value: Any) -> str:  # pragma: no cover - used by templates through the filter below
+def _json_attr(value: Any) -> str:
     return json.dumps(value, separators=(",", ":"))
 
 

@@ -137,3 +137,15 @@ def test_custom_connectivity_is_rebuilt_from_the_request():
     assert len(conn.edges) == 5
     with pytest.raises(ToposcoutError):
         charts.connectivity_for_row(row, {"connectivities": ["line"]})
+
+
+def test_swap_couplings_outside_the_circuits_qubits_are_not_drawn():
+    row = {"connectivity": "line-6", "connectivity_family": "line", "variables": 2,
+           "layout": {"x": 0, "y": 1}, "swap_edges": {"0-1": 1, "4-5": 2}, "two_qubit_gates": 5}
+    conn = charts.connectivity_for_row(row)
+    svg = charts.connectivity_chart(row, conn, active={0, 1})
+    texts = _texts(svg)
+    assert "1 SWAP" in texts and "2 SWAP" not in texts
+    desc = ET.fromstring(svg).find(f"{SVG}desc").text
+    assert "q0-q1 (1)" in desc and "q4-q5" not in desc and "1 recorded SWAP coupling(s)" in desc
+    assert any("never uses" in t for t in texts)
