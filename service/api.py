@@ -237,6 +237,32 @@ class _DeclaredSizeLimit:
         await self.app(scope, receive, send)
 
 
+class _LRU:
+    """A small thread-safe LRU of bytes."""
+
+    def __init__(self, size: int):
+        import collections
+        import threading
+
+        self.size = size
+        self._d: "collections.OrderedDict[str, bytes]" = collections.OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, key: str) -> bytes | None:
+        with self._lock:
+            v = self._d.get(key)
+            if v is not None:
+                self._d.move_to_end(key)
+            return v
+
+    def put(self, key: str, value: bytes) -> None:
+        with self._lock:
+            self._d[key] = value
+            self._d.move_to_end(key)
+            while len(self._d) > self.size:
+                self._d.popitem(last=False)
+
+
 class _App(FastAPI):
     """FastAPI with :class:`_DeclaredSizeLimit` outermost (before FastAPI's own body limit,
     which answers a declared over-size body in plain text)."""
@@ -279,6 +305,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                               "simulation under a stated noise model, not a promise about a device.")
     app.state.settings = settings
     app.state.tokens = tokens
+    finished = _LRU(2048)  # serialised finished studies (they do not change any more)
+    app.state.finished_cache = finished
 
     # --- errors: one shape everywhere
     @app.exception_handler(ToposcoutError)
@@ -365,12 +393,18 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @app.get("/v1/studies/{study_id}", response_model=S.Study, responses=ERRORS_STUDY, tags=["studies"],
              summary="A study: status, progress, request and rows")
-    def get_study(study_id: StudyId, owner: Owner):
-        study = app.state.store.get_study(study_id)
+    async def get_study(study_id: StudyId, owner: Owner):
+        cached = finished.get(study_id)
+        if cached is not None:
+            return Response(cached, media_type="application/json")
+        study = await run_in_threadpool(app.state.store.get_study, study_id)
         if study is None:
             return _error(404, f"no study with id {study_id[:64]!r}", "study_id")
         study["best_connectivity"] = best_connectivity(study["rows"])
-        return JSONResponse(study)
+        body = json.dumps(study, separators=(",", ":")).encode()
+        if study["status"] in ("done", "failed", "cancelled"):
+            finished.put(study_id, body)  # a finished study no longer changes
+        return Response(body, media_type="application/json")
 
     @app.get("/v1/studies", response_model=S.StudyList, responses=ERRORS_READ, tags=["studies"],
              summary="Studies, newest first")

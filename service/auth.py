@@ -74,8 +74,9 @@ def is_loopback(host: str | None) -> bool:
 _UNAUTH = {"WWW-Authenticate": "Bearer"}
 
 
-def request_owner(request: Request) -> str:
-    """The owner of a request (a FastAPI dependency); raises 401/403 as described above."""
+async def request_owner(request: Request) -> str:
+    """The owner of a request (a FastAPI dependency; async because it does no I/O, so it
+    needs no thread); raises 401/403 as described above."""
     app = request.app
     table: dict[str, str] = app.state.tokens
     if not table:

@@ -27,7 +27,7 @@ from pathlib import Path
 from typing import Any, Iterable, Mapping
 
 from sqlalchemy import (JSON, Boolean, DateTime, Float, ForeignKey, Integer, LargeBinary, String,
-                        UniqueConstraint, case, create_engine, event, func, select, update)
+                        UniqueConstraint, case, create_engine, event, func, insert, select, update)
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
@@ -100,6 +100,10 @@ class RowRecord(Base):
     row: Mapped[dict | None] = mapped_column(JSON, nullable=True)
     seconds: Mapped[float | None] = mapped_column(Float, nullable=True)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+
+
+_STUDY_COLUMNS = ("id", "owner", "status", "model_name", "request", "request_hash", "idempotency_key", "total",
+                  "done", "created_at", "updated_at")
 
 
 class ResultRecord(Base):
@@ -226,28 +230,28 @@ class Store:
                     if active >= max_active:
                         raise TooManyActive(int(active))
                 pending = []
-                rec = StudyRecord(id=sid, owner=owner, status="queued", model_name=model_name[:200], request=req,
-                                  request_hash=rhash, idempotency_key=idempotency_key, total=len(tasks), done=0,
-                                  created_at=now, updated_at=now)
-                s.add(rec)
-                s.flush()
+                rows = []
                 done = 0
                 any_ok = False
                 for i, (task, key) in enumerate(zip(tasks, keys)):
                     hit = cached.get(key)
+                    row = {"study_id": sid, "task_index": i, "task_key": key, "task": _json_safe(task),
+                           "updated_at": now}
                     if hit is not None:
                         done += 1
                         any_ok = any_ok or hit["row"].get("error") is None
-                        s.add(RowRecord(study_id=sid, task_index=i, status=_row_status(hit["row"]), cached=True,
-                                        task_key=key, task=_json_safe(task), row=hit["row"], seconds=hit["seconds"],
-                                        updated_at=now))
+                        row.update(status=_row_status(hit["row"]), cached=True, row=hit["row"], seconds=hit["seconds"])
                     else:
                         pending.append((i, task))
-                        s.add(RowRecord(study_id=sid, task_index=i, status="pending", cached=False, task_key=key,
-                                        task=_json_safe(task), updated_at=now))
-                rec.done = done
-                if tasks and done == len(tasks):
-                    rec.status = "done" if any_ok else "failed"
+                        row.update(status="pending", cached=False, row=None, seconds=None)
+                    rows.append(row)
+                status = ("done" if any_ok else "failed") if tasks and done == len(tasks) else "queued"
+                rec = StudyRecord(id=sid, owner=owner, status=status, model_name=model_name[:200], request=req,
+                                  request_hash=rhash, idempotency_key=idempotency_key, total=len(tasks), done=done,
+                                  created_at=now, updated_at=now)
+                s.execute(insert(StudyRecord), [{c: getattr(rec, c) for c in _STUDY_COLUMNS}])
+                if rows:
+                    s.execute(insert(RowRecord), rows)
                 summary = self._summary(rec)
         except IntegrityError:
             if idempotency_key is None:

@@ -181,7 +181,7 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
     if req.fidelity_target is not None and not compile_only:
         options["fidelity_target"] = req.fidelity_target
     tasks = make_tasks(model, specs, noise_scales=scales, **options)
-    keys = [task_key(t) for t in tasks]
+    keys = [task_key({**t, "model": model}) for t in tasks]  # the parsed model: no second parse per task
     normalised = {"model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
                   "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
                   "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
