@@ -114,3 +114,32 @@ def block_circuit(block: Block, num_qubits: int) -> QuantumCircuit:
         else:
             qc.rz(g[2], g[1])
     return qc
+
+
+def sweep_block(
+    terms: Sequence[tuple[Sequence[int], float]],
+    region: Region,
+    placement: Sequence[int],
+    *,
+    slack: int = 0,
+    seeds: Sequence[int] = (0, 1, 2),
+    lams: Sequence[float] = (0.25, 1.0),
+) -> Block:
+    """Like :func:`synthesize_block`, by the clique sweep of :mod:`compiler.synthesis.sweep`."""
+    from compiler.synthesis.sweep import sweep_parities
+
+    wire_of = {q: i for i, q in enumerate(region.qubits)}
+    start = [wire_of[p] for p in placement]
+    phase = 0.0
+    acc: dict[frozenset, float] = {}
+    for support, theta in terms:
+        s = frozenset(v for v in set(support) if list(support).count(v) % 2)
+        if not s:
+            phase -= theta
+            continue
+        acc[s] = acc.get(s, 0.0) + 2.0 * theta
+    adj = [list(a) for a in region.adj]
+    gates, at = sweep_parities(acc, adj, start, cost=region.cost, slack=slack, seeds=seeds, lams=lams)
+    q = region.qubits
+    out = tuple(("cx", q[g[1]], q[g[2]]) if g[0] == "cx" else ("rz", q[g[1]], g[2]) for g in gates)
+    return Block(out, tuple(placement), tuple(q[w] for w in at), phase)

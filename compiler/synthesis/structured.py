@@ -22,10 +22,15 @@ from qiskit.transpiler.passes import BasisTranslator, InverseCancellation, Optim
 
 from compiler.compiled import Compiled, check_coupling, measured_layout
 from compiler.errors import CompileError, TargetError
-from compiler.synthesis.block import Block, make_region, synthesize_block
+from compiler.synthesis.block import Block, make_region, sweep_block, synthesize_block
 from compiler.synthesis.placement import candidate_placements
 
 __all__ = ["compile_structured", "structured_layers", "search_budget"]
+
+
+#: above this many (parities x coupling edges) the global greedy is not run (one run of it
+#: takes seconds there, and the clique sweep wins on such sizes).
+GREEDY_WORK = 30_000
 
 
 def search_budget(num_parities: int, num_edges: int) -> tuple[int, tuple[float, ...], int]:
@@ -52,28 +57,41 @@ def structured_layers(
     n: int,
     *,
     seed: int = 0,
-) -> tuple[list[Block], str]:
-    """Blocks for every layer on ``graph`` (the cheapest over the candidate placements).
+) -> tuple[list[Block], str, str]:
+    """Blocks for every layer on ``graph`` (the cheapest over placements and methods).
 
-    Returns the blocks (block l starts where block l-1 ended) and how the placement was found.
+    Methods: the global greedy parity network (:func:`synthesize_block`), skipped when the
+    problem is so large that even one run is slow (more than ``GREEDY_WORK`` parity-edge
+    products), and the clique sweep (:func:`sweep_block`) with Steiner slack 0 and 1.
+    Returns the blocks (block l starts where block l-1 ended), how the placement was found
+    and which method won.
     """
     supports = [tuple(s) for s, _ in layers[0]] if layers else []
     parities = {frozenset(s) for layer in layers for s, _ in layer if len(set(s)) >= 2}
     n_place, lams, n_seeds = search_budget(len(parities), graph.number_of_edges())
+    greedy = len(parities) * graph.number_of_edges() <= GREEDY_WORK
     cands = candidate_placements(supports, graph, n, seed=seed, count=n_place)
-    best: tuple[int, list[Block], str] | None = None
+    methods: list[tuple[str, object]] = []
+    if greedy:
+        methods.append(("greedy", lambda layer, region, where: synthesize_block(
+            layer, region, where, seeds=[seed * 100 + s for s in range(n_seeds)], lams=lams)))
+    for slack in (0, 1):
+        methods.append(("sweep", lambda layer, region, where, _k=slack: sweep_block(
+            layer, region, where, slack=_k, seeds=[seed * 100 + s for s in range(3)])))
+    best: tuple[int, list[Block], str, str] | None = None
     for how, placement in cands:
         region = make_region(graph, placement)
-        blocks: list[Block] = []
-        where = list(placement)
-        for layer in layers:
-            b = synthesize_block(layer, region, where, seeds=[seed * 100 + s for s in range(n_seeds)], lams=lams)
-            blocks.append(b)
-            where = list(b.final_placement)
-        total = sum(b.cnots for b in blocks)
-        if best is None or total < best[0]:
-            best = (total, blocks, how)
-    return best[1], best[2]
+        for name, method in methods:
+            blocks: list[Block] = []
+            where = list(placement)
+            for layer in layers:
+                b = method(layer, region, where)
+                blocks.append(b)
+                where = list(b.final_placement)
+            total = sum(b.cnots for b in blocks)
+            if best is None or total < best[0]:
+                best = (total, blocks, how, name)
+    return best[1], best[2], best[3]
 
 
 def _translation(gate_set) -> PassManager:
@@ -103,7 +121,7 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
             raise CompileError(f"no connected part of {connectivity.name} has {n} qubits", field="connectivity")
         graph = graph.subgraph(comp).copy()
     layers = [ansatz.layer_terms(layer) for layer in range(ansatz.layers)]
-    blocks, how = structured_layers(layers, graph, n, seed=seed)
+    blocks, how, method = structured_layers(layers, graph, n, seed=seed)
     placement = list(blocks[0].initial_placement) if blocks else list(sorted(graph.nodes)[:n])
     qc = QuantumCircuit(N, n, name=ansatz.model.name)
     for p in placement:
@@ -139,6 +157,6 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
         swaps=0,
         connectivity=connectivity,
         gate_set=gate_set,
-        extra={"placement": how, "synthesis_cnots": synth_cx,
+        extra={"placement": how, "synthesis": method, "synthesis_cnots": synth_cx,
                "region_qubits": len(make_region(graph, placement).qubits) if n else 0},
     )
