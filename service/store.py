@@ -18,10 +18,12 @@ return plain dicts; timestamps are UTC.
 from __future__ import annotations
 
 import base64
+import contextlib
 import datetime as dt
 import hashlib
 import json
 import math
+import threading
 import uuid
 from pathlib import Path
 from typing import Any, Iterable, Mapping
@@ -192,6 +194,9 @@ class Store:
         if run_migrations:
             migrate(self.engine)
         self._session = sessionmaker(self.engine, expire_on_commit=False)
+        # SQLite allows one writer; its busy handler sleeps up to 100 ms per retry, so writers of
+        # this process queue on a lock instead (every write of a server comes from its process)
+        self._write_lock = threading.Lock() if self.engine.dialect.name == "sqlite" else contextlib.nullcontext()
 
     @property
     def dialect(self) -> str:
@@ -222,7 +227,7 @@ class Store:
         now = utcnow()
         sid = study_id or new_study_id()
         try:
-            with self._session.begin() as s:
+            with self._write_lock, self._session.begin() as s:
                 cached = self._cached(s, set(keys))
                 if max_active is not None and any(k not in cached for k in keys):
                     active = s.scalar(select(func.count()).select_from(StudyRecord)
@@ -290,7 +295,7 @@ class Store:
             return
         row = _json_safe(row)
         try:
-            with self._session.begin() as s:
+            with self._write_lock, self._session.begin() as s:
                 if s.get(ResultRecord, key) is None:
                     s.add(ResultRecord(task_key=key, row=row, circuit=base64.b64decode(qpy_b64) if qpy_b64 else None,
                                        seconds=float(seconds if seconds is not None else row.get("row_seconds") or 0),
@@ -351,7 +356,7 @@ class Store:
 
     def mark_running(self, study_id: str) -> None:
         """queued → running (the executor started a task of the study)."""
-        with self._session.begin() as s:
+        with self._write_lock, self._session.begin() as s:
             s.execute(update(StudyRecord).where(StudyRecord.id == study_id, StudyRecord.status == "queued")
                       .values(status="running", updated_at=utcnow()))
 
@@ -367,7 +372,7 @@ class Store:
         row = _json_safe(row)
         secs = float(seconds if seconds is not None else row.get("row_seconds") or 0.0)
         now = utcnow()
-        with self._session.begin() as s:
+        with self._write_lock, self._session.begin() as s:
             rec = s.get(RowRecord, (study_id, task_index))
             if rec is None:
                 return False
@@ -399,7 +404,7 @@ class Store:
     def cancel(self, study_id: str) -> dict | None:
         """Mark an unfinished study and its pending rows cancelled; returns the summary."""
         now = utcnow()
-        with self._session.begin() as s:
+        with self._write_lock, self._session.begin() as s:
             rec = s.get(StudyRecord, study_id, with_for_update=True)
             if rec is None:
                 return None
