@@ -42,7 +42,7 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from compiler.errors import CapacityError, ToposcoutError
-from service.executor import Executor, failure_row
+from service.executor import Executor, failure_row, timeout_message
 
 __all__ = ["DaskExecutor", "task_key_for", "worker_memory_budget", "precheck_memory", "run_worker",
            "parse_memory"]
@@ -91,6 +91,11 @@ def precheck_memory(task: Mapping[str, Any], budget: int | None) -> tuple[dict |
     return out, None
 
 
+def executing_keys(dask_worker) -> list[str]:
+    """Keys a worker is executing right now (run on the workers by the time-limit watch)."""
+    return [str(k) for k, ts in dask_worker.state.tasks.items() if ts.state == "executing"]
+
+
 @dataclass
 class _Item:
     study_id: str
@@ -100,6 +105,8 @@ class _Item:
     attempt: int = 0
     future: Any = None
     submitted_at: float = 0.0
+    started_at: float | None = None     # first seen executing on a worker (time limit)
+    worker: str | None = None
     causes: list = field(default_factory=list)
 
 
@@ -112,11 +119,16 @@ class DaskExecutor(Executor):
     retries: Dask retries of a task that raised (default 1).
     max_attempts: submissions of one task before its row records the failure (default 4).
     connect_timeout: seconds to reach the scheduler in ``start`` (default 30).
+    time_limit: wall seconds a task may execute on a worker (default
+        ``settings.task_time_limit_seconds``; None: no limit). Past it the worker process is
+        restarted (a running simulation cannot be interrupted otherwise) and the row fails with
+        the local executor's message.
     """
 
     def __init__(self, settings: Any = None, store: Any = None, *, address: str | None = None,
                  client: Any = None, max_in_flight: int | None = None, retries: int = 1,
-                 max_attempts: int = 4, connect_timeout: float = 30.0, poll_seconds: float = 0.5):
+                 max_attempts: int = 4, connect_timeout: float = 30.0, poll_seconds: float = 0.5,
+                 time_limit: float | None = None):
         self.address = address or getattr(settings, "dask_address", None)
         if not self.address and client is None:
             raise ToposcoutError("the Dask executor needs a scheduler address (TOPOSCOUT_DASK_ADDRESS=tcp://host:8786)",
@@ -130,6 +142,9 @@ class DaskExecutor(Executor):
         self.max_attempts = max_attempts
         self.connect_timeout = connect_timeout
         self.poll_seconds = poll_seconds
+        limit = time_limit if time_limit is not None else getattr(settings, "task_time_limit_seconds", None)
+        self.time_limit = float(limit) if limit else None
+        self._watcher: threading.Thread | None = None
         self._lock = threading.Condition()
         self._backlog: collections.deque[_Item] = collections.deque()
         self._running: dict[str, _Item] = {}          # key -> item on the cluster
@@ -157,6 +172,9 @@ class DaskExecutor(Executor):
         self._stop.clear()
         self._thread = threading.Thread(target=self._pump, name="toposcout-dask", daemon=True)
         self._thread.start()
+        if self.time_limit:
+            self._watcher = threading.Thread(target=self._watch_loop, name="toposcout-dask-watch", daemon=True)
+            self._watcher.start()
 
     def submit(self, study_id: str, tasks: list[tuple[int, dict]]) -> None:
         keys = self.store.task_keys(study_id) if tasks and hasattr(self.store, "task_keys") else {}
@@ -193,6 +211,9 @@ class DaskExecutor(Executor):
         if self._thread is not None:
             self._thread.join(timeout=30)
             self._thread = None
+        if self._watcher is not None:
+            self._watcher.join(timeout=35)
+            self._watcher = None
         if self._own_client and self.client is not None:
             try:
                 self.client.close(timeout=10)
@@ -239,6 +260,56 @@ class DaskExecutor(Executor):
             with self._lock:
                 if self._done.empty() and not self._stop.is_set():
                     self._lock.wait(self.poll_seconds)
+
+    def _watch_loop(self) -> None:
+        """Own thread: asking workers what they execute may stall on a dying worker."""
+        interval = min(2.0, self.time_limit / 4)
+        while not self._stop.wait(interval):
+            try:
+                self._watch()
+            except Exception as exc:  # the cluster is changing under us; try again next round
+                log.debug("time-limit watch: %s", exc)
+
+    def _watch(self) -> None:
+        """Enforce the time limit: note when each task starts executing, stop overdue ones."""
+        with self._lock:
+            if not self._running:
+                return
+            ours = set(self._running)
+        hosts = [addr for addr, keys in self.client.processing().items() if ours.intersection(map(str, keys))]
+        if not hosts:
+            return
+        running = self.client.run(executing_keys, workers=hosts, on_error="ignore")
+        now = time.monotonic()
+        overdue: list[_Item] = []
+        with self._lock:
+            for addr, keys in (running or {}).items():
+                for k in keys if isinstance(keys, list) else ():
+                    item = self._running.get(k)
+                    if item is not None and item.started_at is None:
+                        item.started_at, item.worker = now, addr
+            for key, item in list(self._running.items()):
+                if item.started_at is not None and now - item.started_at > self.time_limit:
+                    overdue.append(self._running.pop(key))
+        for item in overdue:
+            self.stats["timeouts"] += 1
+            log.warning("task %s of study %s ran past %g s on %s: restarting that worker", item.task_index,
+                        item.study_id, self.time_limit, item.worker)
+            item.future.release()
+            if item.study_id in self._cancelled:
+                with self._lock:
+                    self._queued.discard((item.study_id, item.task_index))
+            else:
+                self._record(item, failure_row(item.task, timeout_message(self.time_limit), "task_time_limit"))
+            # the restart takes seconds (the nanny waits, then kills): not on this thread
+            threading.Thread(target=self._restart_worker, args=(item.worker,), daemon=True,
+                             name="toposcout-dask-restart").start()
+
+    def _restart_worker(self, addr: str) -> None:
+        try:
+            self.client.restart_workers([addr], raise_for_error=False)
+        except Exception as exc:  # the worker may already be gone, or the client closed
+            log.warning("restarting worker %s: %s", addr, exc)
 
     def _on_done(self, future) -> None:  # runs on Dask's callback thread: only queue
         self._done.put(future.key)
