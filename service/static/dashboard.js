@@ -74,7 +74,10 @@
   // --- a study page ------------------------------------------------------------------
   function pollStudy(live) {
     var id = live.getAttribute("data-study");
-    var lastDone = -1, lastStatus = null;
+    // start from what the server rendered, so a change before the first poll still refreshes the page
+    var bar0 = document.getElementById("study-progress"), status0 = document.getElementById("study-status");
+    var lastDone = bar0 ? Number(bar0.getAttribute("value")) : -1;
+    var lastStatus = status0 ? status0.textContent.trim() : null;
     function refreshLive() {
       return fetch("/studies/" + id + "/live", { credentials: "same-origin" })
         .then(function (r) { if (!r.ok) { throw new Error("HTTP " + r.status); } return r.text(); })
@@ -95,9 +98,8 @@
         if (count) { count.textContent = s.progress.done + "/" + s.progress.total; }
         if (status) { status.textContent = s.status; status.className = "status status-" + s.status; }
         var changed = s.progress.done !== lastDone || s.status !== lastStatus;
-        var first = lastDone < 0;
         lastDone = s.progress.done; lastStatus = s.status;
-        var next = (changed && !first) ? refreshLive() : Promise.resolve();
+        var next = changed ? refreshLive() : Promise.resolve();
         return next.then(function () {
           if (FINAL[s.status]) { live.setAttribute("data-final", "true"); return; }
           window.setTimeout(tick, 1000);
