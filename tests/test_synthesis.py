@@ -36,6 +36,7 @@ from compiler.synthesis import (
     synthesize_block,
 )
 from compiler.synthesis.block import sweep_block
+from compiler.synthesis.parity import fuse_zz
 from compiler.synthesis.sweep import maximal_supports
 from compiler.targets import make_connectivity, get_gate_set
 
@@ -84,19 +85,19 @@ def expected_block_state(psi_logical, diag, initial, final, num_qubits):
     return vin, vout
 
 
-def check_block(terms, graph, placement, seed=0, slack=None):
+def check_block(terms, graph, placement, seed=0, slack=None, native_zz=False):
     n = len(placement)
     N = graph.number_of_nodes()
     region = make_region(graph, placement)
     if slack is None:
-        block = synthesize_block(terms, region, placement, seeds=[seed])
+        block = synthesize_block(terms, region, placement, seeds=[seed], native_zz=native_zz)
     else:
-        block = sweep_block(terms, region, placement, slack=slack, seeds=[seed])
+        block = sweep_block(terms, region, placement, slack=slack, seeds=[seed], native_zz=native_zz)
     qc = block_circuit(block, N)
-    # every gate is cx on a coupling edge or rz (common practice: the coupling-map check)
+    # every gate is cx/rzz on a coupling edge or rz (common practice: the coupling-map check)
     for ins in qc.data:
-        assert ins.operation.name in ("cx", "rz")
-        if ins.operation.name == "cx":
+        assert ins.operation.name in (("cx", "rz", "rzz") if native_zz else ("cx", "rz"))
+        if ins.operation.name in ("cx", "rzz"):
             a, b = (qc.find_bit(q).index for q in ins.qubits)
             assert graph.has_edge(a, b)
     assert sorted(set(block.final_placement)) == sorted(block.final_placement)
@@ -167,6 +168,42 @@ def test_sweep_block_on_a_plaquette_grid_matches_expm():
     placement = [6, 0, 3, 5, 1, 7]
     for slack in (0, 1):
         check_block(clique_terms(cliques, rng), g, placement, slack=slack)
+
+
+def test_fuse_zz_keeps_the_operator():
+    # cx(c,t) rz(t) cx(c,t) = rzz on (c,t) (Nielsen & Chuang 4.7.3); rz on the control
+    # commutes with cx; checked against qiskit.quantum_info.Operator
+    gates = [("cx", 0, 1), ("rz", 0, 0.3), ("rz", 1, 0.7), ("rz", 1, -0.2), ("cx", 0, 1),
+             ("cx", 1, 2), ("rz", 2, 0.4), ("cx", 2, 1), ("cx", 1, 2), ("cx", 1, 2)]
+    fused = fuse_zz(gates)
+    assert [g[0] for g in fused].count("zz") == 1  # the second cx pair is split by cx(2,1)
+
+    def circ(gs):
+        qc = QuantumCircuit(3)
+        for g in gs:
+            if g[0] == "cx":
+                qc.cx(g[1], g[2])
+            elif g[0] == "zz":
+                qc.rzz(g[3], g[1], g[2])
+            else:
+                qc.rz(g[2], g[1])
+        return qc
+
+    assert Operator(circ(fused)).equiv(Operator(circ(gates)))
+
+
+def test_native_rzz_needs_fewer_two_qubit_gates_than_cx():
+    # on an rzz gate set a ZZ phase on neighbouring wires is one gate where the CNOT basis
+    # needs cx-rz-cx (Nielsen & Chuang 4.7.3), so the count must drop below the cx count
+    cliques, n = MODELS["plaquettes-2x3"]
+    ansatz = build_ansatz(_model(cliques, n), seed=3)
+    con = make_connectivity("line", n)
+    zz = compile_structured(ansatz, con, get_gate_set("rzz"))
+    cx = compile_structured(ansatz, con, get_gate_set("cx"))
+    assert zz.two_qubit_gates() < cx.two_qubit_gates()
+    assert {ins.operation.name for ins in zz.circuit.data if ins.operation.num_qubits == 2} == {"rzz"}
+    _two_qubit_on_edges(zz)
+    assert np.allclose(_compiled_probs(zz), _logical_probs(ansatz), atol=1e-9)
 
 
 def test_maximal_supports_drops_contained_sets():
@@ -284,7 +321,7 @@ def test_structured_operator_equals_logical_up_to_permutation(name, family):
     assert got.equiv(Operator(P @ Operator(ref).data))
 
 
-@pytest.mark.parametrize("gate", ["cz", "rzz"])
+@pytest.mark.parametrize("gate", ["cz", "rzz", "rxx"])
 def test_structured_other_gate_sets(gate):
     cliques, n = MODELS["triangles-5"]
     ansatz = build_ansatz(_model(cliques, n), seed=4)
@@ -353,6 +390,13 @@ def test_property_block_equivalence_and_coupling(inst):
 def test_property_sweep_equivalence_and_coupling(inst, slack):
     terms, g, placement, seed = inst
     check_block(terms, g, placement, seed=seed % 7, slack=slack)
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(small_instances(), st.sampled_from([None, 0, 1]))
+def test_property_native_zz_equivalence_and_coupling(inst, slack):
+    terms, g, placement, seed = inst
+    check_block(terms, g, placement, seed=seed % 7, slack=slack, native_zz=True)
 
 
 @settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])

@@ -8,7 +8,7 @@ from typing import Sequence
 import networkx as nx
 from qiskit import QuantumCircuit
 
-from compiler.synthesis.parity import ParityNetwork, synthesize_parities
+from compiler.synthesis.parity import ZZ_MODES, ParityNetwork, fuse_zz, synthesize_parities
 from compiler.synthesis.steiner import SteinerCost, all_pairs_distances
 
 __all__ = ["Block", "Region", "make_region", "synthesize_block", "block_circuit"]
@@ -49,7 +49,8 @@ def make_region(graph: nx.Graph, used: Sequence[int]) -> Region:
 class Block:
     """A synthesised block: gates on physical qubits and where each variable ends.
 
-    gates: ``("cx", control, target)`` or ``("rz", qubit, angle)``, physical indices.
+    gates: ``("cx", control, target)``, ``("rz", qubit, angle)`` or ``("zz", a, b, angle)``
+        (``exp(-i angle/2 Z_a Z_b)``, only when synthesised with ``native_zz``), physical indices.
     final_placement: variable i -> physical qubit after the block.
     global_phase: from terms on the empty set (exp(-i θ) each).
     """
@@ -63,6 +64,23 @@ class Block:
     def cnots(self) -> int:
         return sum(1 for g in self.gates if g[0] == "cx")
 
+    @property
+    def two_qubit(self) -> int:
+        """CNOTs plus native ZZ gates."""
+        return sum(1 for g in self.gates if g[0] != "rz")
+
+
+def _to_physical(gates, q) -> tuple[tuple, ...]:
+    out = []
+    for g in gates:
+        if g[0] == "cx":
+            out.append(("cx", q[g[1]], q[g[2]]))
+        elif g[0] == "zz":
+            out.append(("zz", q[g[1]], q[g[2]], g[3]))
+        else:
+            out.append(("rz", q[g[1]], g[2]))
+    return tuple(out)
+
 
 def synthesize_block(
     terms: Sequence[tuple[Sequence[int], float]],
@@ -71,12 +89,15 @@ def synthesize_block(
     *,
     seeds: Sequence[int] = (0,),
     lams: Sequence[float] = (0.25, 1.0),
+    native_zz: bool = False,
 ) -> Block:
     """Synthesise ``Π exp(-i θ Z_S)`` on ``region`` starting from ``placement``.
 
     terms: ``(S, θ)`` with ``S`` logical qubit indices; repeated sets add their angles.
     placement: logical qubit i -> physical qubit (all inside the region).
-    seeds, lams: every pair is tried; the network with the fewest CNOTs is kept.
+    seeds, lams: every pair is tried; the network with the fewest two-qubit gates is kept.
+    native_zz: default False; apply parities sitting on two neighbouring wires as one ZZ
+        gate (for gate sets whose entangling gate is a ZZ or XX interaction of any angle).
     """
     wire_of = {q: i for i, q in enumerate(region.qubits)}
     start = [wire_of[p] for p in placement]
@@ -95,22 +116,27 @@ def synthesize_block(
     best: ParityNetwork | None = None
     for lam in lams:
         for seed in seeds:
-            net = synthesize_parities(parities, adj, cost=region.cost, lam=lam, seed=seed)
-            if best is None or net.cnots < best.cnots:
-                best = net
+            for zz in ZZ_MODES if native_zz else (False,):
+                net = synthesize_parities(parities, adj, cost=region.cost, lam=lam, seed=seed, native_zz=zz)
+                if native_zz:
+                    net = ParityNetwork(tuple(fuse_zz(net.gates)), net.final)
+                if best is None or net.two_qubit < best.two_qubit:
+                    best = net
     q = region.qubits
-    gates = tuple(("cx", q[g[1]], q[g[2]]) if g[0] == "cx" else ("rz", q[g[1]], g[2]) for g in best.gates)
+    gates = _to_physical(best.gates, q)
     end_of = {s: w for w, s in enumerate(best.final)}
     final = tuple(q[end_of[s]] for s in start)
     return Block(gates, tuple(placement), final, phase)
 
 
 def block_circuit(block: Block, num_qubits: int) -> QuantumCircuit:
-    """The block as a circuit on ``num_qubits`` physical wires (cx and rz only)."""
+    """The block as a circuit on ``num_qubits`` physical wires (cx, rz and rzz only)."""
     qc = QuantumCircuit(num_qubits, global_phase=block.global_phase)
     for g in block.gates:
         if g[0] == "cx":
             qc.cx(g[1], g[2])
+        elif g[0] == "zz":
+            qc.rzz(g[3], g[1], g[2])
         else:
             qc.rz(g[2], g[1])
     return qc
@@ -124,6 +150,7 @@ def sweep_block(
     slack: int = 0,
     seeds: Sequence[int] = (0, 1, 2),
     lams: Sequence[float] = (0.25, 1.0),
+    native_zz: bool = False,
 ) -> Block:
     """Like :func:`synthesize_block`, by the clique sweep of :mod:`compiler.synthesis.sweep`."""
     from compiler.synthesis.sweep import sweep_parities
@@ -139,7 +166,8 @@ def sweep_block(
             continue
         acc[s] = acc.get(s, 0.0) + 2.0 * theta
     adj = [list(a) for a in region.adj]
-    gates, at = sweep_parities(acc, adj, start, cost=region.cost, slack=slack, seeds=seeds, lams=lams)
+    gates, at = sweep_parities(acc, adj, start, cost=region.cost, slack=slack, seeds=seeds, lams=lams,
+                               native_zz=native_zz)
     q = region.qubits
-    out = tuple(("cx", q[g[1]], q[g[2]]) if g[0] == "cx" else ("rz", q[g[1]], g[2]) for g in gates)
+    out = _to_physical(fuse_zz(gates) if native_zz else gates, q)  # SWAP/CNOT seams between cliques
     return Block(out, tuple(placement), tuple(q[w] for w in at), phase)

@@ -28,16 +28,22 @@ from __future__ import annotations
 
 import random
 from dataclasses import dataclass
+from typing import Sequence
 
 from compiler.synthesis.linear import peel_to_permutation
 from compiler.synthesis.steiner import SteinerCost
 
-__all__ = ["ParityNetwork", "synthesize_parities", "invert_rows"]
+__all__ = ["ParityNetwork", "synthesize_parities", "invert_rows", "fuse_zz", "ZZ_MODES"]
+
+#: on a native-ZZ gate set both networks are tried: the plain CNOT one (then fused by
+#: :func:`fuse_zz`) and the one that applies neighbouring-wire parities as ZZ gates at once.
+ZZ_MODES = (False, True)
 
 
 @dataclass(frozen=True)
 class ParityNetwork:
-    """Gates over wires ``0..n-1``: ``("cx", control, target)`` or ``("rz", wire, angle)``.
+    """Gates over wires ``0..n-1``: ``("cx", control, target)``, ``("rz", wire, angle)`` or
+    ``("zz", a, b, angle)`` (``exp(-i angle/2 Z_a Z_b)``, only with ``native_zz``).
 
     ``final[w]`` is the wire whose start value ends on wire ``w`` (a permutation).
     """
@@ -48,6 +54,10 @@ class ParityNetwork:
     @property
     def cnots(self) -> int:
         return sum(1 for g in self.gates if g[0] == "cx")
+
+    @property
+    def two_qubit(self) -> int:
+        return sum(1 for g in self.gates if g[0] != "rz")
 
 
 def invert_rows(rows: list[int]) -> list[int]:
@@ -77,6 +87,7 @@ def synthesize_parities(
     seed: int = 0,
     polish: bool = True,
     eager: bool = True,
+    native_zz: bool = False,
 ) -> ParityNetwork:
     """A CNOT+RZ network on the graph ``adj`` producing every parity with its angle.
 
@@ -91,6 +102,10 @@ def synthesize_parities(
     eager: default True; a CNOT that puts a wanted parity on a wire is always preferred
         (the best such by the greedy score), so that consecutive parities share CNOTs as in a
         Gray-code walk.
+    native_zz: default False; when the gate set has a ZZ interaction of any angle, a parity
+        that is the XOR of two neighbouring wires' current parities is applied at once as
+        one ``zz`` gate (``exp(-i φ/2 Z_a Z_b)`` multiplies by ``exp(∓i φ/2)`` by the XOR of
+        the two wires), which leaves the linear map unchanged.
     """
     n = len(adj)
     rng = random.Random(seed)
@@ -118,6 +133,20 @@ def synthesize_parities(
                 on_wire[w].add(k)
     left = P
 
+    def zz(k: int) -> None:
+        nonlocal left
+        a, b = _bit_list(z[k])
+        gates.append(("zz", a, b, angles[k]))
+        alive[k] = False
+        on_wire[a].discard(k)
+        on_wire[b].discard(k)
+        left -= 1
+
+    if native_zz:
+        for k in range(P):
+            if cur[k] == 1:
+                zz(k)
+
     def apply(c: int, t: int) -> None:
         nonlocal left
         gates.append(("cx", c, t))
@@ -135,6 +164,8 @@ def synthesize_parities(
                 alive[k] = False
                 on_wire[m.bit_length() - 1].discard(k)
                 left -= 1
+            elif native_zz and k < P and cur[k] == 1:
+                zz(k)
 
     def delta(c: int, t: int) -> float:
         bc = 1 << c
@@ -221,6 +252,40 @@ def synthesize_parities(
         gates.append(("cx", c, t))
     final = tuple(r.bit_length() - 1 for r in final_rows)
     return ParityNetwork(tuple(gates), final)
+
+
+def fuse_zz(gates: Sequence[tuple]) -> list[tuple]:
+    """Replace ``cx(c,t) · rz(t)… · cx(c,t)`` by one ``zz(c, t)``.
+
+    Between the two CNOTs wire ``t`` holds ``x_c ⊕ x_t``, so the RZs on ``t`` there (summed)
+    are the phase ``exp(-i φ/2 Z_c Z_t)``; RZs on ``c`` commute with both CNOTs and stay.
+    Only CNOT pairs with nothing but RZs on ``c`` and ``t`` between them are fused.
+    """
+    out = list(gates)
+    dead = [False] * len(out)
+    for i, g in enumerate(out):
+        if dead[i] or g[0] != "cx":
+            continue
+        c, t = g[1], g[2]
+        on_t = []
+        for j in range(i + 1, len(out)):
+            h = out[j]
+            if dead[j]:
+                continue
+            if h[0] == "rz":
+                if h[1] == t:
+                    on_t.append(j)
+                continue
+            touches = {h[1], h[2]} & {c, t}
+            if not touches:
+                continue
+            if h[0] == "cx" and (h[1], h[2]) == (c, t) and on_t:
+                out[i] = ("zz", c, t, sum(out[k][2] for k in on_t))
+                for k in on_t:
+                    dead[k] = True
+                dead[j] = True
+            break
+    return [g for g, d in zip(out, dead) if not d]
 
 
 def _bit_list(mask: int) -> list[int]:

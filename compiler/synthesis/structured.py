@@ -32,6 +32,10 @@ __all__ = ["compile_structured", "structured_layers", "search_budget"]
 #: takes seconds there, and the clique sweep wins on such sizes).
 GREEDY_WORK = 30_000
 
+#: two-qubit gates that are a ZZ (or, up to one-qubit basis changes, XX) interaction of any
+#: angle: on these gate sets a parity on two neighbouring wires is one native gate.
+NATIVE_ZZ = ("rzz", "rxx")
+
 
 def search_budget(num_parities: int, num_edges: int) -> tuple[int, tuple[float, ...], int]:
     """(placements, greedy weights, seeds per weight) tried, from the problem size alone.
@@ -57,6 +61,7 @@ def structured_layers(
     n: int,
     *,
     seed: int = 0,
+    native_zz: bool = False,
 ) -> tuple[list[Block], str, str]:
     """Blocks for every layer on ``graph`` (the cheapest over placements and methods).
 
@@ -64,7 +69,7 @@ def structured_layers(
     problem is so large that even one run is slow (more than ``GREEDY_WORK`` parity-edge
     products), and the clique sweep (:func:`sweep_block`) with Steiner slack 0 and 1.
     Returns the blocks (block l starts where block l-1 ended), how the placement was found
-    and which method won.
+    and which method won. ``native_zz``: see :func:`synthesize_block`.
     """
     supports = [tuple(s) for s, _ in layers[0]] if layers else []
     parities = {frozenset(s) for layer in layers for s, _ in layer if len(set(s)) >= 2}
@@ -74,10 +79,10 @@ def structured_layers(
     methods: list[tuple[str, object]] = []
     if greedy:
         methods.append(("greedy", lambda layer, region, where: synthesize_block(
-            layer, region, where, seeds=[seed * 100 + s for s in range(n_seeds)], lams=lams)))
+            layer, region, where, seeds=[seed * 100 + s for s in range(n_seeds)], lams=lams, native_zz=native_zz)))
     for slack in (0, 1):
         methods.append(("sweep", lambda layer, region, where, _k=slack: sweep_block(
-            layer, region, where, slack=_k, seeds=[seed * 100 + s for s in range(3)])))
+            layer, region, where, slack=_k, seeds=[seed * 100 + s for s in range(3)], native_zz=native_zz)))
     best: tuple[int, list[Block], str, str] | None = None
     for how, placement in cands:
         region = make_region(graph, placement)
@@ -88,7 +93,7 @@ def structured_layers(
                 b = method(layer, region, where)
                 blocks.append(b)
                 where = list(b.final_placement)
-            total = sum(b.cnots for b in blocks)
+            total = sum(b.two_qubit for b in blocks)
             if best is None or total < best[0]:
                 best = (total, blocks, how, name)
     return best[1], best[2], best[3]
@@ -121,7 +126,8 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
             raise CompileError(f"no connected part of {connectivity.name} has {n} qubits", field="connectivity")
         graph = graph.subgraph(comp).copy()
     layers = [ansatz.layer_terms(layer) for layer in range(ansatz.layers)]
-    blocks, how, method = structured_layers(layers, graph, n, seed=seed)
+    native_zz = gate_set.two_qubit in NATIVE_ZZ
+    blocks, how, method = structured_layers(layers, graph, n, seed=seed, native_zz=native_zz)
     placement = list(blocks[0].initial_placement) if blocks else list(sorted(graph.nodes)[:n])
     qc = QuantumCircuit(N, n, name=ansatz.model.name)
     for p in placement:
@@ -132,6 +138,8 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
         for g in block.gates:
             if g[0] == "cx":
                 qc.cx(g[1], g[2])
+            elif g[0] == "zz":
+                qc.rzz(g[3], g[1], g[2])
             else:
                 qc.rz(g[2], g[1])
         where = list(block.final_placement)
@@ -140,6 +148,7 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
     for v in range(n):
         qc.measure(where[v], v)
     synth_cx = sum(b.cnots for b in blocks)
+    synth_zz = sum(b.two_qubit - b.cnots for b in blocks)
     out = _translation(gate_set).run(qc)
     check_coupling(out, connectivity)
     final = measured_layout(out)
@@ -157,6 +166,6 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
         swaps=0,
         connectivity=connectivity,
         gate_set=gate_set,
-        extra={"placement": how, "synthesis": method, "synthesis_cnots": synth_cx,
+        extra={"placement": how, "synthesis": method, "synthesis_cnots": synth_cx, "synthesis_zz": synth_zz,
                "region_qubits": len(make_region(graph, placement).qubits) if n else 0},
     )

@@ -26,7 +26,7 @@ from __future__ import annotations
 from collections import deque
 from typing import Sequence
 
-from compiler.synthesis.parity import synthesize_parities
+from compiler.synthesis.parity import ZZ_MODES, ParityNetwork, fuse_zz, synthesize_parities
 from compiler.synthesis.steiner import SteinerCost, all_pairs_distances, steiner_tree
 
 __all__ = ["maximal_supports", "sweep_parities"]
@@ -68,6 +68,7 @@ def sweep_parities(
     slack: int = 0,
     seeds: Sequence[int] = (0, 1, 2),
     lams: Sequence[float] = (0.25, 1.0),
+    native_zz: bool = False,
 ) -> tuple[list[tuple], list[int]]:
     """Gates over wires and the variables' final wires.
 
@@ -75,7 +76,9 @@ def sweep_parities(
         the caller or passed here too, then applied at the start).
     adj: adjacency lists of the region's wires (connected).
     start: variable i -> wire at the start. Wires holding no variable hold ``|0>``.
-    Returns ``(gates, final)``: gates ``("cx", c, t)`` / ``("rz", w, angle)``; ``final[i]``
+    native_zz: passed to :func:`compiler.synthesis.parity.synthesize_parities`.
+    Returns ``(gates, final)``: gates ``("cx", c, t)`` / ``("rz", w, angle)`` /
+    ``("zz", a, b, angle)``; ``final[i]``
     the wire of variable i at the end.
     """
     n_w = len(adj)
@@ -163,12 +166,17 @@ def sweep_parities(
         net = None
         for lam in lams:
             for sd in seeds:
-                cand = synthesize_parities(ps, ladj, cost=lcost, lam=lam, seed=sd)
-                if net is None or cand.cnots < net.cnots:
-                    net = cand
+                for zz in ZZ_MODES if native_zz else (False,):
+                    cand = synthesize_parities(ps, ladj, cost=lcost, lam=lam, seed=sd, native_zz=zz)
+                    if native_zz:
+                        cand = ParityNetwork(tuple(fuse_zz(cand.gates)), cand.final)
+                    if net is None or cand.two_qubit < net.two_qubit:
+                        net = cand
         for g in net.gates:
             if g[0] == "cx":
                 gates.append(("cx", nodes[g[1]], nodes[g[2]]))
+            elif g[0] == "zz":
+                gates.append(("zz", nodes[g[1]], nodes[g[2]], g[3]))
             else:
                 gates.append(("rz", nodes[g[1]], g[2]))
         # net.final[w] = local wire whose start value ends on w
