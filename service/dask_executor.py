@@ -336,14 +336,19 @@ class DaskExecutor(Executor):
                 if item.study_id in self._cancelled:
                     self._queued.discard((item.study_id, item.task_index))
                     continue
-            if self._from_cache(item):
-                continue
-            task, refused = precheck_memory(item.task, budget)
-            if refused is not None:
-                self.stats["refused"] += 1
-                self._record(item, refused)
-                continue
-            self._send(item, task)
+            try:
+                if self._from_cache(item):
+                    continue
+                task, refused = precheck_memory(item.task, budget)
+                if refused is not None:
+                    self.stats["refused"] += 1
+                    self._record(item, refused)
+                    continue
+                self._send(item, task)
+            except Exception:  # store or scheduler unreachable: keep the task for the next round
+                with self._lock:
+                    self._backlog.appendleft(item)
+                raise
 
     def _from_cache(self, item: _Item) -> bool:
         """Record the row another study computed meanwhile (same task key) instead of running it."""

@@ -298,3 +298,36 @@ def test_task_past_the_time_limit_restarts_its_worker_and_fails_with_the_local_m
         return len(now) == 2 and now != pids
 
     assert wait_for(replaced, timeout=60, step=0.5), "the overdue task's worker was restarted"
+
+
+class FlakyStore(MemoryStore):
+    """The database is unreachable for the first cache look-up and the first row write."""
+
+    def __init__(self):
+        super().__init__()
+        self.failures = Counter()
+
+    def task_keys(self, study_id):
+        return {0: "k0", 1: "k1"}
+
+    def cached_row(self, key):
+        if self.failures["cached_row"] == 0:
+            self.failures["cached_row"] += 1
+            raise OSError("database unreachable")
+        return None
+
+    def record_row(self, study_id, task_index, row, seconds, cached=False):
+        if self.failures["record_row"] == 0:
+            self.failures["record_row"] += 1
+            raise OSError("database unreachable")
+        super().record_row(study_id, task_index, row, seconds, cached)
+
+
+def test_a_store_hiccup_loses_no_task(make_executor):
+    tasks = make_tasks(chain(3), ["line", "ring"], compile_only=True, seeds=1, strategy="generic")
+    store = FlakyStore()
+    ex = make_executor(store)
+    ex.submit("flaky", list(enumerate(tasks)))
+    assert ex.wait_idle(60)
+    assert sorted(store.study_rows("flaky")) == [0, 1]
+    assert store.failures == Counter({"cached_row": 1, "record_row": 1})
