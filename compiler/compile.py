@@ -61,6 +61,39 @@ STRATEGIES = ("generic", "structured", "auto")
 _NON_GATES = NON_GATES
 
 
+class _SwapRecorder:
+    """Pass-manager callback that remembers where routing put its SWAPs.
+
+    SWAPs exist between routing and translation, on the physical qubits of that moment;
+    a later post-layout (qiskit's VF2PostLayout) may relabel the physical qubits, so the
+    recorded pairs are mapped through ``property_set["post_layout"]`` at the end.
+    """
+
+    def __init__(self):
+        self.count = 0
+        self._pairs: list[tuple] = []  # (Qubit, Qubit, index, index) on the routed circuit
+        self._props = None
+
+    def __call__(self, pass_, dag, time, property_set, count):
+        self._props = property_set
+        n = dag.count_ops().get("swap", 0)
+        if n > self.count:
+            self.count = n
+            self._pairs = [(*node.qargs, *(dag.find_bit(q).index for q in node.qargs))
+                           for node in dag.op_nodes() if node.op.name == "swap"]
+
+    def edges(self) -> dict[str, int]:
+        """``{"a-b": count}`` over the final physical qubits."""
+        post = self._props.get("post_layout") if self._props is not None else None
+        where: dict[str, int] = {}
+        for qa, qb, ia, ib in self._pairs:
+            if post is not None:
+                ia, ib = post[qa], post[qb]
+            a, b = sorted((ia, ib))
+            where[f"{a}-{b}"] = where.get(f"{a}-{b}", 0) + 1
+        return dict(sorted(where.items()))
+
+
 def compile_generic(
     ansatz: Ansatz,
     connectivity: Connectivity,
@@ -82,27 +115,15 @@ def compile_generic(
     best: tuple | None = None
     for seed in range(seeds):
         pm = generate_preset_pass_manager(optimization_level, target=target, seed_transpiler=seed)
-        swaps: list = [0, {}]
-
-        def count_swaps(pass_, dag, time, property_set, count, _s=swaps):
-            # SWAPs exist between routing and translation; keep the fullest snapshot.
-            n = dag.count_ops().get("swap", 0)
-            if n > _s[0]:
-                where: dict[str, int] = {}
-                for node in dag.op_nodes():
-                    if node.op.name == "swap":
-                        a, b = sorted(dag.find_bit(q).index for q in node.qargs)
-                        where[f"{a}-{b}"] = where.get(f"{a}-{b}", 0) + 1
-                _s[0], _s[1] = n, where
-
-        out = pm.run(logical, callback=count_swaps)
+        rec = _SwapRecorder()
+        out = pm.run(logical, callback=rec)
         two = sum(1 for ins in out.data if ins.operation.num_qubits == 2)
         depth = out.depth(lambda ins: ins.operation.name not in _NON_GATES)
         key = (two, depth, seed)
         if best is None or key < best[0]:
-            best = (key, out, swaps, seed)
+            best = (key, out, rec, seed)
     elapsed = time.perf_counter() - start
-    _, out, swaps, seed = best
+    _, out, rec, seed = best
     check_coupling(out, connectivity)
     initial = tuple(out.layout.initial_index_layout(filter_ancillas=True)) if out.layout else tuple(
         range(ansatz.num_qubits))
@@ -113,10 +134,10 @@ def compile_generic(
         strategy="generic",
         seed=seed,
         compile_seconds=elapsed,
-        swaps=swaps[0],
+        swaps=rec.count,
         connectivity=connectivity,
         gate_set=gate_set,
-        extra={"swap_edges": dict(sorted(swaps[1].items()))},
+        extra={"swap_edges": rec.edges()},
     )
 
 

@@ -112,3 +112,18 @@ def test_qasm3_export_parses():
     assert text.startswith("OPENQASM 3")
     back = qasm3.loads(text)
     assert back.count_ops().get("cx", 0) == c.two_qubit_gates()
+
+
+@pytest.mark.parametrize("family", ["heavy-hex", "grid", "line"])
+def test_swap_edges_are_coupling_edges_next_to_data(family):
+    # Each SWAP moves a variable's state, so one end of it is a qubit the final circuit uses;
+    # the positions must be in the final physical labelling (after qiskit's post-layout).
+    m = load_model("examples/image-patch.nodelink.json")
+    c = compile_ansatz(build_ansatz(m), make_connectivity(family, m.num_variables), get_gate_set("cx"),
+                       strategy="generic", seeds=3)
+    edges, active = set(c.connectivity.edges), set(c.active_qubits())
+    where = c.extra["swap_edges"]
+    assert sum(where.values()) == c.swaps > 0
+    for key in where:
+        a, b = map(int, key.split("-"))
+        assert (a, b) in edges and (a in active or b in active)
