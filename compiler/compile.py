@@ -65,33 +65,27 @@ class _SwapRecorder:
     """Pass-manager callback that remembers where routing put its SWAPs.
 
     SWAPs exist between routing and translation, on the physical qubits of that moment;
-    a later post-layout (qiskit's VF2PostLayout) may relabel the physical qubits, so the
-    recorded pairs are mapped through ``property_set["post_layout"]`` at the end.
+    a later layout pass (qiskit's post-layout ApplyLayout) may relabel the physical qubits,
+    so the last snapshot holding the most SWAPs is kept: it is in the final labelling.
     """
 
     def __init__(self):
         self.count = 0
-        self._pairs: list[tuple] = []  # (Qubit, Qubit, index, index) on the routed circuit
-        self._props = None
+        self._where: dict[str, int] = {}
 
     def __call__(self, pass_, dag, time, property_set, count):
-        self._props = property_set
         n = dag.count_ops().get("swap", 0)
-        if n > self.count:
-            self.count = n
-            self._pairs = [(*node.qargs, *(dag.find_bit(q).index for q in node.qargs))
-                           for node in dag.op_nodes() if node.op.name == "swap"]
+        if n and n >= self.count:
+            where: dict[str, int] = {}
+            for node in dag.op_nodes():
+                if node.op.name == "swap":
+                    a, b = sorted(dag.find_bit(q).index for q in node.qargs)
+                    where[f"{a}-{b}"] = where.get(f"{a}-{b}", 0) + 1
+            self.count, self._where = n, where
 
     def edges(self) -> dict[str, int]:
         """``{"a-b": count}`` over the final physical qubits."""
-        post = self._props.get("post_layout") if self._props is not None else None
-        where: dict[str, int] = {}
-        for qa, qb, ia, ib in self._pairs:
-            if post is not None:
-                ia, ib = post[qa], post[qb]
-            a, b = sorted((ia, ib))
-            where[f"{a}-{b}"] = where.get(f"{a}-{b}", 0) + 1
-        return dict(sorted(where.items()))
+        return dict(sorted(self._where.items()))
 
 
 def compile_generic(
