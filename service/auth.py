@@ -28,8 +28,8 @@ _OWNER = re.compile(r"^[A-Za-z0-9_.@-]{1,64}$")
 def parse_tokens(lines: Iterable[str]) -> dict[str, str]:
     """token -> owner from ``owner:token`` entries; blank entries and ``#`` comments skipped.
 
-    >>> parse_tokens(["alice:tok1", " # comment", "", "bob:tok2"])
-    {'tok1': 'alice', 'tok2': 'bob'}
+    >>> parse_tokens(["alice:alice-tok-1", " # comment", "", "bob:bob-tok-22"])
+    {'alice-tok-1': 'alice', 'bob-tok-22': 'bob'}
     """
     table: dict[str, str] = {}
     for n, raw in enumerate(lines, 1):
