@@ -126,6 +126,7 @@ def main(argv=None) -> int:
     store = _Store()
     ex = DaskExecutor(store=store, address=cluster.scheduler_address)
     ex.start()
+    ex.wait_connected(60)
     out["dask_cluster_start_s"] = time.perf_counter() - t0
     try:
         _run_dask(ex, store, "warm-up", tiny[:4])  # first contact: functions and modules

@@ -118,7 +118,8 @@ class DaskExecutor(Executor):
     max_in_flight: tasks on the scheduler at once (default: 2 x worker threads, at least 4).
     retries: Dask retries of a task that raised (default 1).
     max_attempts: submissions of one task before its row records the failure (default 4).
-    connect_timeout: seconds to reach the scheduler in ``start`` (default 30).
+    connect_timeout: seconds of one connection attempt (default 10); retry_seconds: pause
+        between attempts (default 5).
     time_limit: wall seconds a task may execute on a worker (default
         ``settings.task_time_limit_seconds``; None: no limit). Past it the worker process is
         restarted (a running simulation cannot be interrupted otherwise) and the row fails with
@@ -127,8 +128,8 @@ class DaskExecutor(Executor):
 
     def __init__(self, settings: Any = None, store: Any = None, *, address: str | None = None,
                  client: Any = None, max_in_flight: int | None = None, retries: int = 1,
-                 max_attempts: int = 4, connect_timeout: float = 30.0, poll_seconds: float = 0.5,
-                 time_limit: float | None = None):
+                 max_attempts: int = 4, connect_timeout: float = 10.0, poll_seconds: float = 0.5,
+                 time_limit: float | None = None, retry_seconds: float = 5.0):
         self.address = address or getattr(settings, "dask_address", None)
         if not self.address and client is None:
             raise ToposcoutError("the Dask executor needs a scheduler address (TOPOSCOUT_DASK_ADDRESS=tcp://host:8786)",
@@ -142,6 +143,9 @@ class DaskExecutor(Executor):
         self.max_attempts = max_attempts
         self.connect_timeout = connect_timeout
         self.poll_seconds = poll_seconds
+        self.retry_seconds = retry_seconds
+        #: why the executor cannot reach its scheduler right now (None: connected or connecting)
+        self.last_error: str | None = None
         limit = time_limit if time_limit is not None else getattr(settings, "task_time_limit_seconds", None)
         self.time_limit = float(limit) if limit else None
         self._watcher: threading.Thread | None = None
@@ -161,20 +165,39 @@ class DaskExecutor(Executor):
 
     # --- Executor interface ---------------------------------------------------------
     def start(self) -> None:
-        if self.client is None:
-            from distributed import Client
-
-            try:
-                self.client = Client(self.address, timeout=self.connect_timeout, set_as_default=False)
-            except (OSError, TimeoutError) as exc:
-                raise ToposcoutError(f"cannot reach the Dask scheduler at {self.address}: {exc}",
-                                     field="dask_address") from None
+        """Return at once; the background thread connects (retrying while the scheduler is not
+        up yet: tasks wait meanwhile, and ``last_error`` / the log say why)."""
         self._stop.clear()
-        self._thread = threading.Thread(target=self._pump, name="toposcout-dask", daemon=True)
+        self._thread = threading.Thread(target=self._run, name="toposcout-dask", daemon=True)
         self._thread.start()
+
+    def _run(self) -> None:
+        if self.client is None and not self._connect():
+            return
         if self.time_limit:
             self._watcher = threading.Thread(target=self._watch_loop, name="toposcout-dask-watch", daemon=True)
             self._watcher.start()
+        self._pump()
+
+    def _connect(self) -> bool:
+        from distributed import Client
+
+        while not self._stop.is_set():
+            try:
+                client = Client(self.address, timeout=self.connect_timeout, set_as_default=False)
+            except (OSError, TimeoutError, ValueError) as exc:
+                self.last_error = (f"cannot reach the Dask scheduler at {self.address}: {exc}; "
+                                   f"retrying every {self.retry_seconds:g} s (tasks wait)")
+                log.warning(self.last_error)
+                self._stop.wait(self.retry_seconds)
+                continue
+            if self._stop.is_set():
+                client.close()
+                return False
+            self.client, self.last_error = client, None
+            log.info("connected to the Dask scheduler at %s", self.address)
+            return True
+        return False
 
     def submit(self, study_id: str, tasks: list[tuple[int, dict]]) -> None:
         keys = self.store.task_keys(study_id) if tasks and hasattr(self.store, "task_keys") else {}
@@ -226,6 +249,13 @@ class DaskExecutor(Executor):
         """Tasks of ``study_id`` (default: all) not yet recorded: queued here or on the cluster."""
         with self._lock:
             return sum(1 for s, _ in self._queued if study_id is None or s == study_id)
+
+    def wait_connected(self, timeout: float = 60.0) -> bool:
+        """Block until the client is connected (tests and benchmarks)."""
+        end = time.monotonic() + timeout
+        while self.client is None and time.monotonic() < end:
+            time.sleep(0.02)
+        return self.client is not None
 
     def wait_idle(self, timeout: float = 60.0) -> bool:
         """Block until nothing is queued or running (tests and benchmarks; not for request handlers)."""

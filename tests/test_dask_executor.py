@@ -78,6 +78,7 @@ def make_executor(cluster):
     def make(store, **kw):
         ex = DaskExecutor(store=store, address=cluster.scheduler_address, **kw)
         ex.start()
+        assert ex.wait_connected(60)
         made.append(ex)
         return ex
 
@@ -269,35 +270,18 @@ def test_no_address_is_a_clear_error():
         DaskExecutor(store=MemoryStore())
 
 
-def test_unreachable_scheduler_is_a_clear_error():
-    ex = DaskExecutor(store=MemoryStore(), address="tcp://127.0.0.1:9", connect_timeout=2)
-    with pytest.raises(ToposcoutError, match="cannot reach the Dask scheduler at tcp://127.0.0.1:9"):
-        ex.start()
-
-
-def test_task_past_the_time_limit_restarts_its_worker_and_fails_with_the_local_message(make_executor, cluster):
-    from service.executor import timeout_message
-
-    slow = make_tasks(chain(11, "slow"), ["line"], seeds=1, strategy="generic")[0]
-    quick = make_tasks(chain(3), ["line"], compile_only=True, seeds=1, strategy="generic")[0]
-    store = MemoryStore()
-    ex = make_executor(store, time_limit=1.0)
-    pids = set(ex.client.run(os.getpid).values())
-    t0 = time.monotonic()
-    ex.submit("tl", [(0, slow), (1, quick)])
-    assert ex.wait_idle(60)
-    took = time.monotonic() - t0
-    rows = store.study_rows("tl")
-    assert rows[0]["error"] == timeout_message(1.0) and rows[0]["error_field"] == "task_time_limit"
-    assert rows[1]["error"] is None
-    assert ex.stats["timeouts"] == 1 and set(store.calls.values()) == {1}
-    assert took < 15, "the row fails at the limit, not when the task would have finished (30 s and more)"
-
-    def replaced():
-        now = set(ex.client.run(os.getpid, on_error="ignore").values())
-        return len(now) == 2 and now != pids
-
-    assert wait_for(replaced, timeout=60, step=0.5), "the overdue task's worker was restarted"
+def test_unreachable_scheduler_tasks_wait_and_the_reason_is_told():
+    ex = DaskExecutor(store=MemoryStore(), address="tcp://127.0.0.1:9", connect_timeout=1, retry_seconds=0.2)
+    ex.start()
+    try:
+        ex.submit("u", [(0, make_tasks(chain(3), ["line"], compile_only=True, seeds=1)[0])])
+        assert wait_for(lambda: ex.last_error is not None, timeout=30)
+        assert ex.last_error.startswith("cannot reach the Dask scheduler at tcp://127.0.0.1:9: ")
+        assert "retrying" in ex.last_error and ex.pending() == 1 and ex.client is None
+    finally:
+        t0 = time.monotonic()
+        ex.shutdown()
+    assert time.monotonic() - t0 < 15
 
 
 class FlakyStore(MemoryStore):

@@ -40,6 +40,7 @@ def test_worker_command_joins_with_its_memory_limit_and_threads(tmp_path):
         store = MemoryStore()
         ex = DaskExecutor(store=store, address=cluster.scheduler_address)
         ex.start()
+        assert ex.wait_connected(60)
         try:
             # a simulating task carries half the 1 GiB limit as its budget
             t = make_tasks(chain(3), ["line", "ring"], seeds=1, strategy="generic", error_budget=False)
@@ -80,3 +81,27 @@ def test_worker_unreachable_scheduler_is_a_clear_error():
     with pytest.raises(ToposcoutError, match="cannot start a worker for the scheduler at tcp://127.0.0.1:9"):
         run_worker("tcp://127.0.0.1:9", memory_limit="256MiB", death_timeout=2)
     assert time.monotonic() - t0 < 40
+
+
+def test_executor_started_before_its_scheduler_catches_up():
+    """As in the compose file: the API may come up before the scheduler listens."""
+    from tests.live_server import free_port
+
+    port = free_port()
+    store = MemoryStore()
+    ex = DaskExecutor(store=store, address=f"tcp://127.0.0.1:{port}", connect_timeout=1, retry_seconds=0.3)
+    ex.start()
+    cluster = None
+    try:
+        tasks = make_tasks(chain(3), ["line", "ring"], compile_only=True, seeds=1, strategy="generic")
+        ex.submit("late", list(enumerate(tasks)))
+        assert wait_for(lambda: ex.last_error is not None, timeout=30)
+        assert ex.pending() == 2 and not store.rows
+        cluster = distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                           scheduler_port=port, dashboard_address=None)
+        assert ex.wait_idle(90)
+        assert sorted(store.study_rows("late")) == [0, 1] and ex.last_error is None
+    finally:
+        ex.shutdown()
+        if cluster is not None:
+            cluster.close()
