@@ -419,7 +419,8 @@ def format_table(result: dict, *, markdown: bool = False) -> str:
     by = {(c["model"], c["connectivity"], c["strategy"]): c for c in result["cells"]}
     head = ["model", "connectivity", "LB"]
     for s in strategies:
-        head += [f"{s} 2q", f"{s} depth", f"{s} 2q-depth", f"{s} s"]
+        head += ([f"{s} 2q / depth / 2q-depth / s"] if markdown else
+                 [f"{s} 2q", f"{s} depth", f"{s} 2q-depth", f"{s} s"])
     head += ["str/gen", "str/LB", "qiskit best", "str/best"]
     rows = []
     for p in result["pairs"]:
@@ -427,11 +428,12 @@ def format_table(result: dict, *, markdown: bool = False) -> str:
         for s in strategies:
             c = by.get((p["model"], p["connectivity"], s))
             if c is None:
-                r += ["-"] * 4
+                r += ["-"] if markdown else ["-"] * 4
                 continue
             win = f" ({c['winner'][0]})" if s == "auto" else ""
-            r += [f"{c['two_qubit_gates']}{win}", str(c["depth"]), str(c["two_qubit_depth"]),
-                  f"{c['compile_seconds']:.2f}"]
+            parts = [f"{c['two_qubit_gates']}{win}", str(c["depth"]), str(c["two_qubit_depth"]),
+                     f"{c['compile_seconds']:.2f}"]
+            r += [" / ".join(parts)] if markdown else parts
         st = by.get((p["model"], p["connectivity"], "structured"))
         fmt = lambda x: "-" if x is None else f"{x:.2f}"  # noqa: E731
         r += [fmt(p["structured_over_generic"]), fmt(st and st["ratio_lb"]),
