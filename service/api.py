@@ -42,7 +42,7 @@ from compiler.version import __version__
 from service import schemas as S
 from service.auth import request_owner
 from service.settings import Settings
-from service.store import Store, StudyConflict, TooManyActive
+from service.store import Store, StudyConflict, TooManyActive, best_connectivity
 
 __all__ = ["create_app", "best_connectivity"]
 
@@ -118,18 +118,6 @@ def _validation_detail(errors: list[dict], *, strip_source: bool) -> tuple[str, 
         msg += f" (got {got[:60]}{'...' if len(got) > 60 else ''})"
     more = f"; and {len(errors) - 1} more problem(s)" if len(errors) > 1 else ""
     return f"{field}: {msg}{more}", field
-
-
-def best_connectivity(rows: list[dict]) -> str | None:
-    """The connectivity of the best finished row: highest state fidelity when simulated,
-    else fewest two-qubit gates (then depth)."""
-    ok = [r for r in rows if r.get("status") == "done" and not r.get("error") and r.get("connectivity")]
-    if not ok:
-        return None
-    noisy = [r for r in ok if isinstance(r.get("state_fidelity"), (int, float))]
-    if noisy:
-        return max(noisy, key=lambda r: (r["state_fidelity"], -(r.get("two_qubit_gates") or 0)))["connectivity"]
-    return min(ok, key=lambda r: (r.get("two_qubit_gates") or 0, r.get("depth") or 0))["connectivity"]
 
 
 def _reject_constant(token: str):

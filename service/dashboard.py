@@ -206,32 +206,11 @@ async def study_list(request: Request):
     if resp.status_code != 200:
         return _problem(request, resp)
     data = resp.json()
-    for item in data.get("items", []):
-        if "best_connectivity" not in item:
-            item["best_connectivity"] = await _best_of(request, item)
     total = int(data.get("total", 0))
     pages = max(1, math.ceil(total / PAGE_SIZE))
     return _page(request, "studies.html", items=data.get("items", []), total=total, page=page, pages=pages,
                  status=status, api_url="/v1/studies?" + urlencode(params),
                  statuses=("queued", "running", "done", "failed", "cancelled"))
-
-
-_best_cache: OrderedDict[tuple[str, str], str | None] = OrderedDict()
-
-
-async def _best_of(request: Request, item: Mapping[str, Any]) -> str | None:
-    """The best connectivity of a listed study (from its detail; remembered per update)."""
-    if item.get("status") not in ("done", "running") or not item.get("progress", {}).get("done"):
-        return None
-    key = (str(item.get("id")), str(item.get("updated_at")))
-    if key in _best_cache:
-        return _best_cache[key]
-    resp = await _api(request, "GET", f"/v1/studies/{item['id']}")
-    best = resp.json().get("best_connectivity") if resp.status_code == 200 else None
-    _best_cache[key] = best
-    while len(_best_cache) > 1024:
-        _best_cache.popitem(last=False)
-    return best
 
 
 def _positive_int(raw: str | None, default: int) -> int:

@@ -84,6 +84,7 @@ class StudySummary(BaseModel):
     created_at: str
     updated_at: str
     progress: Progress
+    best_connectivity: str | None = None  # set when the study finishes; live in GET /v1/studies/{id}
 
 
 class StudyCreated(BaseModel):
@@ -108,7 +109,6 @@ class Row(BaseModel):
 
 class Study(StudySummary):
     request: dict[str, Any]
-    best_connectivity: str | None
     rows: list[Row]
 
 

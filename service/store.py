@@ -35,7 +35,7 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
 from sqlalchemy.types import TypeDecorator
 
-__all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "STUDY_STATES", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow",
+__all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "best_connectivity", "STUDY_STATES", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow",
            "new_study_id"]
 
 STUDY_STATES = ("queued", "running", "done", "failed", "cancelled")
@@ -85,6 +85,7 @@ class StudyRecord(Base):
     idempotency_key: Mapped[str | None] = mapped_column(String(200), nullable=True)
     total: Mapped[int] = mapped_column(Integer)
     done: Mapped[int] = mapped_column(Integer, default=0)
+    best_connectivity: Mapped[str | None] = mapped_column(String(200), nullable=True)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, index=True)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
 
@@ -105,7 +106,7 @@ class RowRecord(Base):
 
 
 _STUDY_COLUMNS = ("id", "owner", "status", "model_name", "request", "request_hash", "idempotency_key", "total",
-                  "done", "created_at", "updated_at")
+                  "done", "best_connectivity", "created_at", "updated_at")
 
 
 class ResultRecord(Base):
@@ -251,9 +252,11 @@ class Store:
                         row.update(status="pending", cached=False, row=None, seconds=None)
                     rows.append(row)
                 status = ("done" if any_ok else "failed") if tasks and done == len(tasks) else "queued"
+                best = (best_connectivity([{**(r["row"] or {}), "status": r["status"]} for r in rows])
+                        if status != "queued" else None)
                 rec = StudyRecord(id=sid, owner=owner, status=status, model_name=model_name[:200], request=req,
                                   request_hash=rhash, idempotency_key=idempotency_key, total=len(tasks), done=done,
-                                  created_at=now, updated_at=now)
+                                  best_connectivity=best, created_at=now, updated_at=now)
                 s.execute(insert(StudyRecord), [{c: getattr(rec, c) for c in _STUDY_COLUMNS}])
                 if rows:
                     s.execute(insert(RowRecord), rows)
@@ -397,6 +400,8 @@ class Store:
                 ok = s.scalar(select(func.count()).select_from(RowRecord)
                               .where(RowRecord.study_id == study_id, RowRecord.status == "done"))
                 st.status = "done" if ok else "failed"
+                recs = s.scalars(select(RowRecord).where(RowRecord.study_id == study_id)).all()
+                st.best_connectivity = best_connectivity([_api_row(r) for r in recs])
             elif st.status == "queued":
                 st.status = "running"
         return True
@@ -456,7 +461,20 @@ class Store:
     def _summary(rec: StudyRecord) -> dict:
         return {"id": rec.id, "status": rec.status, "owner": rec.owner, "model_name": rec.model_name,
                 "created_at": _iso(rec.created_at), "updated_at": _iso(rec.updated_at),
-                "progress": {"done": rec.done, "total": rec.total}}
+                "progress": {"done": rec.done, "total": rec.total},
+                "best_connectivity": rec.best_connectivity}
+
+
+def best_connectivity(rows: list[dict]) -> str | None:
+    """The connectivity of the best finished row: highest state fidelity when simulated,
+    else fewest two-qubit gates (then depth)."""
+    ok = [r for r in rows if r.get("status") == "done" and not r.get("error") and r.get("connectivity")]
+    if not ok:
+        return None
+    noisy = [r for r in ok if isinstance(r.get("state_fidelity"), (int, float))]
+    if noisy:
+        return max(noisy, key=lambda r: (r["state_fidelity"], -(r.get("two_qubit_gates") or 0)))["connectivity"]
+    return min(ok, key=lambda r: (r.get("two_qubit_gates") or 0, r.get("depth") or 0))["connectivity"]
 
 
 def _row_status(row: Mapping[str, Any]) -> str:

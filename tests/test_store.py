@@ -30,8 +30,9 @@ def test_migrations_build_the_schema_and_are_idempotent(store, database_url):
     assert {"studies", "study_rows", "results", "alembic_version"} <= names
     again = Store(database_url)  # a second start applies nothing and keeps the data
     with again.engine.connect() as c:
-        assert c.execute(text("select version_num from alembic_version")).scalar() == "0001"
+        assert c.execute(text("select version_num from alembic_version")).scalar() == "0002"
     again.close()
+    assert "best_connectivity" in {col["name"] for col in inspect(store.engine).get_columns("studies")}
     if store.dialect == "sqlite":
         with store.engine.connect() as c:
             assert c.execute(text("pragma journal_mode")).scalar() == "wal"
@@ -98,9 +99,13 @@ def test_record_row_progress_status_and_idempotence(store):
     assert got["status"] == "running" and got["progress"]["done"] == 1
     assert got["rows"][0]["two_qubit_gates"] == 4 and got["rows"][0]["x"] is None  # NaN stored as null
     store.record_row(sid, 1, {"error": "does not fit", "error_field": "connectivity"}, 0.1)
-    store.record_row(sid, 2, {"error": None, "two_qubit_gates": 6}, 0.2)
+    assert store.list_studies(owner="alice")[0][0]["best_connectivity"] is None  # not finished yet
+    store.record_row(sid, 2, {"error": None, "two_qubit_gates": 6, "connectivity": "ring-3"}, 0.2)
     got = store.get_study(sid)
     assert got["status"] == "done" and got["progress"] == {"done": 3, "total": 3}
+    # the finished study's best connectivity is kept for the list (fewest two-qubit gates here;
+    # row 0 names no connectivity, row 1 failed)
+    assert store.list_studies(owner="alice")[0][0]["best_connectivity"] == "ring-3"
     assert [r["status"] for r in got["rows"]] == ["done", "failed", "done"]
     assert got["rows"][1]["error"] == "does not fit"  # a failed row keeps the others
 
@@ -132,9 +137,11 @@ def test_cache_answers_later_studies_and_keeps_circuits_apart(store):
 def test_fully_cached_study_is_done_at_once(store):
     s, _, _ = _new(store, 2, tag="f")
     for i in range(2):
-        store.record_row(s["id"], i, {"error": None, "depth": i}, 0.1)
+        store.record_row(s["id"], i, {"error": None, "depth": i, "two_qubit_gates": 5 - i,
+                                      "connectivity": f"line-{i + 3}"}, 0.1)
     again, _, pending = _new(store, 2, tag="f", request={"n": 2})
     assert pending == [] and again["status"] == "done" and again["progress"] == {"done": 2, "total": 2}
+    assert again["best_connectivity"] == "line-4"
 
 
 def test_cancel_marks_pending_rows_and_keeps_the_record(store):
