@@ -95,6 +95,8 @@ def test_noise_scale_multiplies_every_error_rate():
 
 
 def test_overrides_apply_to_physical_qubits_and_both_edge_directions():
+    # documented profile format (compiler/profiles.py): overrides replace the class value for
+    # one physical qubit / one coupler, in either direction; everything else keeps the default
     p = parse_profile(base_dict(qubit=[{"index": 2, "t1_us": 40.0, "t2_us": 30.0, "p0_given_1": 0.2}],
                                 edge=[{"qubits": [3, 1], "two_qubit_error": 0.05, "two_qubit_ns": 900}]))
     assert p.qubit(2).t1_us == 40.0 and p.qubit(2).p0_given_1 == 0.2 and p.qubit(2).p1_given_0 == 0.01
@@ -115,6 +117,7 @@ def test_dict_round_trip_is_plain_json():
 
 
 def test_user_profile_file_and_unknown_name(tmp_path):
+    # the issue: users can pass their own profile file; an unknown name lists the built-ins
     f = tmp_path / "mine.toml"
     f.write_text('name = "mine"\n[gates]\none_qubit_error = 1e-3\ntwo_qubit_error = 2e-2\n'
                  'one_qubit_ns = 20\ntwo_qubit_ns = 200\nmeasure_ns = 800\n'
