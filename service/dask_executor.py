@@ -144,6 +144,7 @@ class DaskExecutor(Executor):
         self.connect_timeout = connect_timeout
         self.poll_seconds = poll_seconds
         self.retry_seconds = retry_seconds
+        self._complained_at = -1e9
         #: why the executor cannot reach its scheduler right now (None: connected or connecting)
         self.last_error: str | None = None
         limit = time_limit if time_limit is not None else getattr(settings, "task_time_limit_seconds", None)
@@ -284,9 +285,13 @@ class DaskExecutor(Executor):
             try:
                 self._drain_done()
                 self._fill()
-            except Exception:  # keep the thread alive; the next round retries
-                log.exception("Dask executor round failed")
-                time.sleep(self.poll_seconds)
+            except Exception as exc:  # scheduler or store unreachable: keep the thread alive, retry
+                now = time.monotonic()
+                if now - self._complained_at > 30:
+                    self._complained_at = now
+                    log.warning("Dask executor: %s: %s (retrying; %d tasks wait)", type(exc).__name__, exc,
+                                self.pending())
+                self._stop.wait(self.retry_seconds)
             with self._lock:
                 if self._done.empty() and not self._stop.is_set():
                     self._lock.wait(self.poll_seconds)
