@@ -282,6 +282,9 @@ class DaskExecutor(Executor):
     # --- the background thread -------------------------------------------------------
     def _pump(self) -> None:
         while not self._stop.is_set():
+            if self._own_client and self.client is not None and self.client.status in ("closed", "closing"):
+                if not self._reconnect():
+                    return
             try:
                 self._drain_done()
                 self._fill()
@@ -295,6 +298,24 @@ class DaskExecutor(Executor):
             with self._lock:
                 if self._done.empty() and not self._stop.is_set():
                     self._lock.wait(self.poll_seconds)
+
+    def _reconnect(self) -> bool:
+        """The client gave up on a lost scheduler: connect anew and resubmit what was on it."""
+        log.warning("lost the Dask scheduler at %s; reconnecting", self.address)
+        self._drain_done()
+        with self._lock:
+            orphans = list(self._running.values())
+            self._running.clear()
+            for item in orphans:
+                item.attempt += 1           # a fresh key: the old one died with the scheduler
+                item.started_at = item.worker = None
+                self._backlog.appendleft(item)
+        old, self.client, self._info = self.client, None, None
+        try:
+            old.close(timeout=5)
+        except Exception:
+            pass
+        return self._connect()
 
     def _watch_loop(self) -> None:
         """Own thread: asking workers what they execute may stall on a dying worker."""

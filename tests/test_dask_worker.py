@@ -105,3 +105,38 @@ def test_executor_started_before_its_scheduler_catches_up():
         ex.shutdown()
         if cluster is not None:
             cluster.close()
+
+
+def test_scheduler_lost_mid_study_and_back_loses_nothing():
+    from tests.live_server import free_port
+
+    port = free_port()
+
+    def new_cluster():
+        return distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                        scheduler_port=port, dashboard_address=None)
+
+    cluster = new_cluster()
+    store = MemoryStore()
+    ex = DaskExecutor(store=store, address=f"tcp://127.0.0.1:{port}", connect_timeout=2, retry_seconds=0.5)
+    ex.start()
+    try:
+        assert ex.wait_connected(60)
+        tasks = make_tasks(chain(8), ["line", "ring", "grid", "all-to-all"], noise_scales=[1.0, 2.0], seeds=1,
+                           strategy="generic")
+        ex.submit("lost", list(enumerate(tasks)))
+        assert wait_for(lambda: len(store.rows) >= 1, timeout=90)
+        cluster.close()
+        cluster = None
+        left = len(tasks) - len(store.rows)
+        assert left > 0, "the scheduler must go while tasks remain"
+        time.sleep(3)  # the client gives up on the old scheduler
+        cluster = new_cluster()
+        assert ex.wait_idle(120)
+        assert sorted(store.study_rows("lost")) == list(range(len(tasks)))
+        assert set(store.calls.values()) == {1}
+        assert all(r["error"] is None for r in store.rows.values())
+    finally:
+        ex.shutdown()
+        if cluster is not None:
+            cluster.close()
