@@ -22,6 +22,10 @@ each row to the store as soon as it is back.
   same message as the local executor, and the others carry the budget to the worker, where
   :func:`compiler.simulate.check_memory` refuses a routed circuit whose ancillas push it over
   (Aer's ``max_memory_mb`` is set from the same budget).
+* **Time limit**: a task executing past ``task_time_limit_seconds`` gets its worker process
+  restarted and its row fails with the local executor's message.
+* **Scheduler away**: ``start`` returns at once; the background thread connects and retries
+  while the scheduler is not up, and reconnects (resubmitting what was on it) when it is lost.
 * Nothing here blocks an event loop: submissions and row writes happen on one background
   thread; ``submit`` and ``cancel`` only queue work.
 
