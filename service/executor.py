@@ -27,6 +27,8 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
+from service.runner import threads_per_worker
+
 __all__ = ["Executor", "LocalExecutor", "ProcessLane", "make_executor", "failure_row", "TaskTimeout"]
 
 log = logging.getLogger("toposcout.executor")
@@ -67,8 +69,14 @@ def failure_row(task: Mapping[str, Any], message: str, field_name: str) -> dict:
             "variables": len(model.get("variables") or ()), "row_seconds": 0.0}
 
 
-def _worker_main(conn) -> None:  # pragma: no cover - runs in the child process
-    """Child process: receive tasks, answer rows, until ``None`` or the pipe closes."""
+def _worker_main(conn, threads: int = 0) -> None:  # pragma: no cover - runs in the child process
+    """Child process: receive tasks, answer rows, until ``None`` or the pipe closes.
+
+    threads: default 0 (leave as is); else the simulator threads of this process."""
+    if threads:
+        from service.runner import limit_threads
+
+        limit_threads(threads)
     from compiler.study import run_task
 
     conn.send(("ready", None))
@@ -101,10 +109,11 @@ class WorkerDied(Exception):
 class _Worker:
     """One spawned child process running :func:`_worker_main`, killable at any time."""
 
-    def __init__(self):
+    def __init__(self, threads: int = 0):
         self.proc: multiprocessing.Process | None = None
         self.conn = None
         self.restarts = 0
+        self.threads = threads
 
     def ensure(self) -> None:
         if self.proc is not None and self.proc.is_alive():
@@ -112,7 +121,7 @@ class _Worker:
         self.close()
         ctx = multiprocessing.get_context("spawn")
         parent, child = ctx.Pipe()
-        self.proc = ctx.Process(target=_worker_main, args=(child,), daemon=True, name="toposcout-worker")
+        self.proc = ctx.Process(target=_worker_main, args=(child, self.threads), daemon=True, name="toposcout-worker")
         self.proc.start()
         child.close()
         self.conn = parent
@@ -219,7 +228,7 @@ class LocalExecutor(Executor):
         if self._threads:
             return
         for n in range(self.workers):
-            w = _Worker()
+            w = _Worker(threads_per_worker(self.workers))
             self._slots.append(w)
             t = threading.Thread(target=self._slot, args=(w,), name=f"toposcout-slot-{n}", daemon=True)
             t.start()

@@ -14,12 +14,25 @@ from typing import Callable, Sequence
 
 from compiler.study import run_task
 
-__all__ = ["run_tasks", "default_workers"]
+__all__ = ["run_tasks", "default_workers", "threads_per_worker", "limit_threads"]
 
 
 def default_workers() -> int:
     """Worker processes used by default: the cores of this machine, at most 2."""
     return max(1, min(2, os.cpu_count() or 1))
+
+
+def threads_per_worker(workers: int) -> int:
+    """Simulator threads for each of ``workers`` processes so that they share the cores
+    instead of oversubscribing them (each would otherwise take every core)."""
+    return max(1, (os.cpu_count() or 1) // max(1, workers))
+
+
+def limit_threads(threads: int) -> None:
+    """Cap the OpenMP/BLAS threads of this (fresh worker) process; call it before the
+    simulator is imported."""
+    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ[var] = str(threads)
 
 
 def run_tasks(
@@ -57,7 +70,8 @@ def run_tasks(
             for i, t in enumerate(tasks):
                 done(i, run_task(t))
         else:
-            with ProcessPoolExecutor(max_workers=workers, mp_context=get_context("spawn")) as pool:
+            with ProcessPoolExecutor(max_workers=workers, mp_context=get_context("spawn"),
+                                     initializer=limit_threads, initargs=(threads_per_worker(workers),)) as pool:
                 futs = {pool.submit(run_task, t): i for i, t in enumerate(tasks)}
                 for f in as_completed(futs):
                     done(futs[f], f.result())

@@ -42,7 +42,8 @@ STUDY_STATES = ("queued", "running", "done", "failed", "cancelled")
 ROW_STATES = ("pending", "done", "failed", "cancelled")
 UNFINISHED = ("queued", "running")
 #: rows failed by the executor (not by the task itself) are not cached: a retry may succeed.
-UNCACHEABLE_FIELDS = frozenset({"task_time_limit", "worker", "executor"})
+# Failures that depend on the machine, not on the task: never answered from the cache.
+UNCACHEABLE_FIELDS = frozenset({"task_time_limit", "worker", "executor", "memory_budget_bytes"})
 
 
 def utcnow() -> dt.datetime:
