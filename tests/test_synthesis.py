@@ -37,7 +37,7 @@ from compiler.synthesis import (
 )
 from compiler.synthesis.block import sweep_block
 from compiler.synthesis.parity import fuse_zz
-from compiler.synthesis.sweep import maximal_supports
+from compiler.synthesis.sweep import group_supports, maximal_supports
 from compiler.targets import make_connectivity, get_gate_set
 
 Z = np.diag([1.0, -1.0])
@@ -85,14 +85,15 @@ def expected_block_state(psi_logical, diag, initial, final, num_qubits):
     return vin, vout
 
 
-def check_block(terms, graph, placement, seed=0, slack=None, native_zz=False):
+def check_block(terms, graph, placement, seed=0, slack=None, native_zz=False, group=0):
     n = len(placement)
     N = graph.number_of_nodes()
     region = make_region(graph, placement)
     if slack is None:
         block = synthesize_block(terms, region, placement, seeds=[seed], native_zz=native_zz)
     else:
-        block = sweep_block(terms, region, placement, slack=slack, seeds=[seed], native_zz=native_zz)
+        block = sweep_block(terms, region, placement, slack=slack, seeds=[seed], native_zz=native_zz,
+                            group=group)
     qc = block_circuit(block, N)
     # every gate is cx/rzz on a coupling edge or rz (common practice: the coupling-map check)
     for ins in qc.data:
@@ -166,8 +167,8 @@ def test_sweep_block_on_a_plaquette_grid_matches_expm():
     g = nx.convert_node_labels_to_integers(g, ordering="sorted")
     cliques = [[0, 1, 3, 4], [1, 2, 4, 5]]
     placement = [6, 0, 3, 5, 1, 7]
-    for slack in (0, 1):
-        check_block(clique_terms(cliques, rng), g, placement, slack=slack)
+    for slack, group in ((0, 0), (1, 0), (0, 6)):
+        check_block(clique_terms(cliques, rng), g, placement, slack=slack, group=group)
 
 
 def test_fuse_zz_keeps_the_operator():
@@ -208,6 +209,15 @@ def test_native_rzz_needs_fewer_two_qubit_gates_than_cx():
 
 def test_maximal_supports_drops_contained_sets():
     assert maximal_supports([(0, 1), (0, 1, 2), (2, 3), (3,), (1, 0)]) == [(0, 1, 2), (2, 3)]
+
+
+def test_group_supports_merges_overlapping_cliques_up_to_the_size():
+    cliques = [(0, 1, 2), (1, 2, 3), (3, 4, 5), (6, 7)]
+    units = group_supports(cliques, 4)
+    # every clique lies in one unit, no unit is over the size, disjoint cliques stay apart
+    assert all(any(set(c) <= set(u) for u in units) for c in cliques)
+    assert max(len(u) for u in units) <= 4
+    assert (0, 1, 2, 3) in units and (6, 7) in units
 
 
 def test_peel_to_permutation_on_a_line():
@@ -386,10 +396,10 @@ def test_property_block_equivalence_and_coupling(inst):
 
 
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(small_instances(), st.integers(0, 2))
-def test_property_sweep_equivalence_and_coupling(inst, slack):
+@given(small_instances(), st.integers(0, 2), st.sampled_from([0, 3, 4]))
+def test_property_sweep_equivalence_and_coupling(inst, slack, group):
     terms, g, placement, seed = inst
-    check_block(terms, g, placement, seed=seed % 7, slack=slack)
+    check_block(terms, g, placement, seed=seed % 7, slack=slack, group=group)
 
 
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])

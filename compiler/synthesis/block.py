@@ -151,6 +151,7 @@ def sweep_block(
     seeds: Sequence[int] = (0, 1, 2),
     lams: Sequence[float] = (0.25, 1.0),
     native_zz: bool = False,
+    group: int = 0,
 ) -> Block:
     """Like :func:`synthesize_block`, by the clique sweep of :mod:`compiler.synthesis.sweep`."""
     from compiler.synthesis.sweep import sweep_parities
@@ -167,7 +168,7 @@ def sweep_block(
         acc[s] = acc.get(s, 0.0) + 2.0 * theta
     adj = [list(a) for a in region.adj]
     gates, at = sweep_parities(acc, adj, start, cost=region.cost, slack=slack, seeds=seeds, lams=lams,
-                               native_zz=native_zz)
+                               native_zz=native_zz, group=group)
     q = region.qubits
     out = _to_physical(fuse_zz(gates) if native_zz else gates, q)  # SWAP/CNOT seams between cliques
     return Block(out, tuple(placement), tuple(q[w] for w in at), phase)

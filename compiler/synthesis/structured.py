@@ -32,6 +32,9 @@ __all__ = ["compile_structured", "structured_layers", "search_budget"]
 #: takes seconds there, and the clique sweep wins on such sizes).
 GREEDY_WORK = 30_000
 
+#: (Steiner slack, unit size) of the clique sweeps tried; unit size 0 = one clique at a time.
+SWEEPS = ((0, 0), (1, 0), (0, 6), (0, 8), (1, 8))
+
 #: two-qubit gates that are a ZZ (or, up to one-qubit basis changes, XX) interaction of any
 #: angle: on these gate sets a parity on two neighbouring wires is one native gate.
 NATIVE_ZZ = ("rzz", "rxx")
@@ -67,7 +70,7 @@ def structured_layers(
 
     Methods: the global greedy parity network (:func:`synthesize_block`), skipped when the
     problem is so large that even one run is slow (more than ``GREEDY_WORK`` parity-edge
-    products), and the clique sweep (:func:`sweep_block`) with Steiner slack 0 and 1.
+    products), and the clique sweeps (:func:`sweep_block`) of ``SWEEPS``.
     Returns the blocks (block l starts where block l-1 ended), how the placement was found
     and which method won. ``native_zz``: see :func:`synthesize_block`.
     """
@@ -80,9 +83,10 @@ def structured_layers(
     if greedy:
         methods.append(("greedy", lambda layer, region, where: synthesize_block(
             layer, region, where, seeds=[seed * 100 + s for s in range(n_seeds)], lams=lams, native_zz=native_zz)))
-    for slack in (0, 1):
-        methods.append(("sweep", lambda layer, region, where, _k=slack: sweep_block(
-            layer, region, where, slack=_k, seeds=[seed * 100 + s for s in range(3)], native_zz=native_zz)))
+    for slack, group in SWEEPS:
+        methods.append(("sweep", lambda layer, region, where, _k=slack, _g=group: sweep_block(
+            layer, region, where, slack=_k, group=_g, seeds=[seed * 100 + s for s in range(3)],
+            native_zz=native_zz)))
     best: tuple[int, list[Block], str, str] | None = None
     for how, placement in cands:
         region = make_region(graph, placement)

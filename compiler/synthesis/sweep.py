@@ -42,6 +42,46 @@ def maximal_supports(supports: Sequence[Sequence[int]]) -> list[tuple[int, ...]]
     return sorted(tuple(sorted(s)) for s in out)
 
 
+def group_supports(cliques: Sequence[Sequence[int]], size: int) -> list[tuple[int, ...]]:
+    """Merge cliques into units of at most ``size`` variables, most-overlapping pairs first.
+
+    Deterministic: ties go to the lexicographically smallest pair of units.
+    """
+    units = [frozenset(c) for c in cliques]
+    while True:
+        best = None
+        for i in range(len(units)):
+            for j in range(i + 1, len(units)):
+                u = units[i] | units[j]
+                if len(u) > size:
+                    continue
+                key = (-len(units[i] & units[j]), len(u), i, j)
+                if key[0] < 0 and (best is None or key < best):
+                    best = key
+        if best is None:
+            return sorted(tuple(sorted(u)) for u in units)
+        _, _, i, j = best
+        merged = units[i] | units[j]
+        units = [u for k, u in enumerate(units) if k not in (i, j)] + [merged]
+
+
+def _parts(adj: list[list[int]], ws: set[int]) -> dict[int, int]:
+    """Component label of each wire of ``ws`` in the subgraph ``ws`` induces."""
+    part: dict[int, int] = {}
+    for w in sorted(ws):
+        if w in part:
+            continue
+        part[w] = w
+        stack = [w]
+        while stack:
+            u = stack.pop()
+            for v in adj[u]:
+                if v in ws and v not in part:
+                    part[v] = w
+                    stack.append(v)
+    return part
+
+
 def _path(adj: list[list[int]], a: int, b: int) -> list[int]:
     prev = {a: None}
     q = deque([a])
@@ -69,6 +109,7 @@ def sweep_parities(
     seeds: Sequence[int] = (0, 1, 2),
     lams: Sequence[float] = (0.25, 1.0),
     native_zz: bool = False,
+    group: int = 0,
 ) -> tuple[list[tuple], list[int]]:
     """Gates over wires and the variables' final wires.
 
@@ -77,6 +118,9 @@ def sweep_parities(
     adj: adjacency lists of the region's wires (connected).
     start: variable i -> wire at the start. Wires holding no variable hold ``|0>``.
     native_zz: passed to :func:`compiler.synthesis.parity.synthesize_parities`.
+    group: default 0 (one clique at a time); else overlapping cliques are merged into units
+        of up to ``group`` variables (:func:`group_supports`), gathered and synthesised together,
+        so that the local greedy can share CNOTs between them.
     Returns ``(gates, final)``: gates ``("cx", c, t)`` / ``("rz", w, angle)`` /
     ``("zz", a, b, angle)``; ``final[i]``
     the wire of variable i at the end.
@@ -91,7 +135,10 @@ def sweep_parities(
     for s in [s for s in todo if len(s) == 1]:
         (v,) = tuple(s)
         gates.append(("rz", at[v], todo.pop(s)))
-    cliques = [frozenset(c) for c in maximal_supports([tuple(s) for s in todo])]
+    cliques = maximal_supports([tuple(s) for s in todo])
+    if group:
+        cliques = group_supports(cliques, group)
+    cliques = [frozenset(c) for c in cliques]
     dist = cost.dist
 
     def swap(a: int, b: int) -> None:
@@ -126,27 +173,48 @@ def sweep_parities(
         k = min(mine, key=lambda j: (cost(mask_of(cliques[j])), j))
         c = cliques.pop(k)
         # 1. gather
+        steps = 0
+        centre_var = None
         while True:
             nodes = tree_nodes(c)
             if len(nodes) <= len(c) + slack:
                 break
-            here = cost(mask_of(c))
-            best = None
-            for v in sorted(c):
-                a = at[v]
-                for b in adj[a]:
-                    if who[b] is not None and who[b] in c:
-                        continue
-                    m = mask_of(c) ^ (1 << a) ^ (1 << b)
-                    key = (cost(m), a, b)
-                    if key[0] < here and (best is None or key < best):
-                        best = key
-            if best is not None:
-                swap(best[1], best[2])
-                continue
             ws = sorted(at[v] for v in c)
-            pair = min(((dist[x][y], x, y) for i, x in enumerate(ws) for y in ws[i + 1:] if dist[x][y] > 1),
-                       default=None)
+            part = _parts(adj, set(ws))
+            steps += 1
+            if steps <= 2 * n_w:
+                # a SWAP that lowers the clique's Steiner cost, else the closest two members
+                # in different parts of the induced subgraph one hop towards each other; the
+                # two can undo each other, hence the step limit
+                here = cost(mask_of(c))
+                best = None
+                for v in sorted(c):
+                    a = at[v]
+                    for b in adj[a]:
+                        if who[b] is not None and who[b] in c:
+                            continue
+                        m = mask_of(c) ^ (1 << a) ^ (1 << b)
+                        key = (cost(m), a, b)
+                        if key[0] < here and (best is None or key < best):
+                            best = key
+                if best is not None:
+                    swap(best[1], best[2])
+                    continue
+                pair = min(((dist[x][y], x, y) for i, x in enumerate(ws) for y in ws[i + 1:] if part[x] != part[y]),
+                           default=None)
+                if pair is None:
+                    break
+                p = _path(adj, pair[1], pair[2])
+                swap(p[0], p[1])
+                continue
+            # past the limit, growth steps, which terminate: the part holding a fixed central
+            # member (it never moves) grows by the nearest other member, moved one hop at a
+            # time along a shortest path (whose inside holds no member, as it is the nearest)
+            if centre_var is None:
+                centre_var = who[min(ws, key=lambda x: (sum(dist[x][y] for y in ws), x))]
+            centre = at[centre_var]
+            core = [w for w in ws if part[w] == part[centre]]
+            pair = min(((dist[x][y], x, y) for x in ws if part[x] != part[centre] for y in core), default=None)
             if pair is None:
                 break
             p = _path(adj, pair[1], pair[2])
