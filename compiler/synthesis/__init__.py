@@ -3,8 +3,11 @@
 Every Z-term of a model commutes with every other, so a layer's middle block is one
 diagonal operator (a phase polynomial). This package places the variables on the coupling
 graph (:mod:`.placement`) and synthesises that operator directly as CNOTs on coupling edges
-and RZs (:mod:`.parity`, :mod:`.linear`), ending in a permutation of the wires that the rest
-of the circuit follows (:mod:`.structured`).
+and RZs, either by one greedy parity network over the whole region (:mod:`.parity`,
+:mod:`.linear`) or clique by clique after gathering each clique's variables with SWAPs
+(:mod:`.sweep`), ending in a permutation of the wires that the rest of the circuit follows
+(:mod:`.structured`). On gate sets with a native ZZ interaction a parity on two neighbouring
+wires is one ZZ gate.
 
 Examples:
     >>> import networkx as nx
@@ -15,7 +18,7 @@ Examples:
     (True, [0, 1, 2])
 """
 
-from compiler.synthesis.block import Block, Region, block_circuit, make_region, synthesize_block
+from compiler.synthesis.block import Block, Region, block_circuit, make_region, sweep_block, synthesize_block
 from compiler.synthesis.linear import peel_to_permutation
 from compiler.synthesis.parity import ParityNetwork, synthesize_parities
 from compiler.synthesis.placement import candidate_placements, exact_embedding, interaction_graph
@@ -33,6 +36,7 @@ __all__ = [
     "make_region",
     "peel_to_permutation",
     "structured_layers",
+    "sweep_block",
     "synthesize_block",
     "synthesize_parities",
 ]
