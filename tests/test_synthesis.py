@@ -27,6 +27,7 @@ from compiler.ansatz import build_ansatz
 from compiler.errors import CompileError
 from compiler.model import parse_model
 from compiler.synthesis import (
+    append_gates,
     block_circuit,
     candidate_placements,
     compile_structured,
@@ -181,13 +182,7 @@ def test_fuse_zz_keeps_the_operator():
 
     def circ(gs):
         qc = QuantumCircuit(3)
-        for g in gs:
-            if g[0] == "cx":
-                qc.cx(g[1], g[2])
-            elif g[0] == "zz":
-                qc.rzz(g[3], g[1], g[2])
-            else:
-                qc.rz(g[2], g[1])
+        append_gates(qc, gs)
         return qc
 
     assert Operator(circ(fused)).equiv(Operator(circ(gates)))

@@ -18,7 +18,7 @@ Examples:
     (True, [0, 1, 2])
 """
 
-from compiler.synthesis.block import Block, Region, block_circuit, make_region, sweep_block, synthesize_block
+from compiler.synthesis.block import Block, Region, append_gates, block_circuit, make_region, sweep_block, synthesize_block
 from compiler.synthesis.linear import peel_to_permutation
 from compiler.synthesis.parity import ParityNetwork, synthesize_parities
 from compiler.synthesis.placement import candidate_placements, exact_embedding, interaction_graph
@@ -28,6 +28,7 @@ __all__ = [
     "Block",
     "ParityNetwork",
     "Region",
+    "append_gates",
     "block_circuit",
     "candidate_placements",
     "compile_structured",

@@ -11,7 +11,7 @@ from qiskit import QuantumCircuit
 from compiler.synthesis.parity import ZZ_MODES, ParityNetwork, fuse_zz, synthesize_parities
 from compiler.synthesis.steiner import SteinerCost, all_pairs_distances
 
-__all__ = ["Block", "Region", "make_region", "synthesize_block", "block_circuit"]
+__all__ = ["Block", "Region", "make_region", "synthesize_block", "block_circuit", "append_gates"]
 
 
 @dataclass(frozen=True)
@@ -129,16 +129,21 @@ def synthesize_block(
     return Block(gates, tuple(placement), final, phase)
 
 
-def block_circuit(block: Block, num_qubits: int) -> QuantumCircuit:
-    """The block as a circuit on ``num_qubits`` physical wires (cx, rz and rzz only)."""
-    qc = QuantumCircuit(num_qubits, global_phase=block.global_phase)
-    for g in block.gates:
+def append_gates(qc: QuantumCircuit, gates: Sequence[tuple]) -> None:
+    """Append a synthesised gate list (``("cx", c, t)``, ``("zz", a, b, θ)``, ``("rz", q, φ)``) to ``qc``."""
+    for g in gates:
         if g[0] == "cx":
             qc.cx(g[1], g[2])
         elif g[0] == "zz":
             qc.rzz(g[3], g[1], g[2])
         else:
             qc.rz(g[2], g[1])
+
+
+def block_circuit(block: Block, num_qubits: int) -> QuantumCircuit:
+    """The block as a circuit on ``num_qubits`` physical wires (cx, rz and rzz only)."""
+    qc = QuantumCircuit(num_qubits, global_phase=block.global_phase)
+    append_gates(qc, block.gates)
     return qc
 
 

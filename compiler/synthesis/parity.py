@@ -174,6 +174,21 @@ def synthesize_parities(
             d += weight[k] * (cost(z[k] ^ bc) - cur[k])
         return d
 
+    def best_moves() -> list[tuple[int, int]]:
+        """The edge CNOTs that lower the weighted cost most (ties all kept), or []."""
+        best_d = 0.0
+        best: list[tuple[int, int]] = []
+        for c, t in edges:
+            if not on_wire[t]:
+                continue
+            d = delta(c, t)
+            if d < best_d - 1e-12:
+                best_d = d
+                best = [(c, t)]
+            elif best and abs(d - best_d) <= 1e-12:
+                best.append((c, t))
+        return best
+
     forced = -1
     while left:
         if forced >= 0 and not alive[forced]:
@@ -194,17 +209,7 @@ def synthesize_parities(
                 apply(c, t)
                 continue
         if forced < 0:
-            best_d = 0.0
-            best: list[tuple[int, int]] = []
-            for c, t in edges:
-                if not on_wire[t]:
-                    continue
-                d = delta(c, t)
-                if d < best_d - 1e-12:
-                    best_d = d
-                    best = [(c, t)]
-                elif best and abs(d - best_d) <= 1e-12:
-                    best.append((c, t))
+            best = best_moves()
             if best:
                 apply(*best[rng.randrange(len(best))] if len(best) > 1 else best[0])
                 continue
@@ -231,17 +236,7 @@ def synthesize_parities(
         weight[k] = 1.0
     if polish:
         while True:
-            best_d = 0.0
-            best = []
-            for c, t in edges:
-                if not on_wire[t]:
-                    continue
-                d = delta(c, t)
-                if d < best_d - 1e-12:
-                    best_d = d
-                    best = [(c, t)]
-                elif best and abs(d - best_d) <= 1e-12:
-                    best.append((c, t))
+            best = best_moves()
             if not best:
                 break
             apply(*best[rng.randrange(len(best))] if len(best) > 1 else best[0])

@@ -22,7 +22,7 @@ from qiskit.transpiler.passes import BasisTranslator, InverseCancellation, Optim
 
 from compiler.compiled import Compiled, check_coupling, measured_layout
 from compiler.errors import CompileError, TargetError
-from compiler.synthesis.block import Block, make_region, sweep_block, synthesize_block
+from compiler.synthesis.block import Block, append_gates, make_region, sweep_block, synthesize_block
 from compiler.synthesis.placement import candidate_placements
 
 __all__ = ["compile_structured", "structured_layers", "search_budget"]
@@ -139,13 +139,7 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
     where = list(placement)
     for layer, block in enumerate(blocks):
         qc.global_phase += block.global_phase
-        for g in block.gates:
-            if g[0] == "cx":
-                qc.cx(g[1], g[2])
-            elif g[0] == "zz":
-                qc.rzz(g[3], g[1], g[2])
-            else:
-                qc.rz(g[2], g[1])
+        append_gates(qc, block.gates)
         where = list(block.final_placement)
         for v, (th, ph, la) in enumerate(ansatz.rotations[layer]):
             qc.u(th, ph, la, where[v])
