@@ -69,11 +69,9 @@ _HERE = Path(__file__).resolve().parent
 
 
 def profile_dirs() -> tuple[Path, ...]:
-    """Where built-in profiles are looked up: the repository's ``topologies/profiles`` and
-    the installed package's ``compiler/data/profiles`` (whichever exists)."""
-    return tuple(
-        d for d in (_HERE.parent / "topologies" / "profiles", _HERE / "data" / "profiles") if d.is_dir()
-    )
+    """Where built-in profiles are looked up: ``topologies/profiles`` beside the ``compiler``
+    package (the checkout, or the installed ``topologies`` data package)."""
+    return tuple(d for d in (_HERE.parent / "topologies" / "profiles",) if d.is_dir())
 
 
 def _builtin_names() -> tuple[str, ...]:
