@@ -8,7 +8,7 @@ from typing import Sequence
 import networkx as nx
 from qiskit import QuantumCircuit
 
-from compiler.synthesis.parity import ZZ_MODES, ParityNetwork, fuse_zz, synthesize_parities
+from compiler.synthesis.parity import ZZ_MODES, ParityNetwork, cnot_count, fuse_zz, synthesize_parities, two_qubit_count
 from compiler.synthesis.steiner import SteinerCost, all_pairs_distances
 
 __all__ = ["Block", "Region", "make_region", "synthesize_block", "block_circuit", "append_gates"]
@@ -62,12 +62,12 @@ class Block:
 
     @property
     def cnots(self) -> int:
-        return sum(1 for g in self.gates if g[0] == "cx")
+        return cnot_count(self.gates)
 
     @property
     def two_qubit(self) -> int:
         """CNOTs plus native ZZ gates."""
-        return sum(1 for g in self.gates if g[0] != "rz")
+        return two_qubit_count(self.gates)
 
 
 def _to_physical(gates, q) -> tuple[tuple, ...]:

@@ -31,9 +31,21 @@ from dataclasses import dataclass
 from typing import Sequence
 
 from compiler.synthesis.linear import peel_to_permutation
-from compiler.synthesis.steiner import SteinerCost
+from compiler.synthesis.steiner import SteinerCost, set_bits
 
-__all__ = ["ParityNetwork", "synthesize_parities", "invert_rows", "fuse_zz", "ZZ_MODES"]
+__all__ = ["ParityNetwork", "synthesize_parities", "invert_rows", "fuse_zz", "ZZ_MODES", "cnot_count",
+           "two_qubit_count"]
+
+
+def cnot_count(gates) -> int:
+    """CNOTs in a synthesised gate list."""
+    return sum(1 for g in gates if g[0] == "cx")
+
+
+def two_qubit_count(gates) -> int:
+    """CNOTs plus native ZZ gates in a synthesised gate list."""
+    return sum(1 for g in gates if g[0] != "rz")
+
 
 #: on a native-ZZ gate set both networks are tried: the plain CNOT one (then fused by
 #: :func:`fuse_zz`) and the one that applies neighbouring-wire parities as ZZ gates at once.
@@ -53,11 +65,11 @@ class ParityNetwork:
 
     @property
     def cnots(self) -> int:
-        return sum(1 for g in self.gates if g[0] == "cx")
+        return cnot_count(self.gates)
 
     @property
     def two_qubit(self) -> int:
-        return sum(1 for g in self.gates if g[0] != "rz")
+        return two_qubit_count(self.gates)
 
 
 def invert_rows(rows: list[int]) -> list[int]:
@@ -129,13 +141,13 @@ def synthesize_parities(
     on_wire: list[set[int]] = [set() for _ in range(n)]
     for k, m in enumerate(z):
         if alive[k]:
-            for w in _bit_list(m):
+            for w in set_bits(m):
                 on_wire[w].add(k)
     left = P
 
     def zz(k: int) -> None:
         nonlocal left
-        a, b = _bit_list(z[k])
+        a, b = set_bits(z[k])
         gates.append(("zz", a, b, angles[k]))
         alive[k] = False
         on_wire[a].discard(k)
@@ -219,7 +231,7 @@ def synthesize_parities(
         # forced progress on one parity
         m = z[forced]
         bc_best = None
-        for t in _bit_list(m):
+        for t in set_bits(m):
             for c in adj[t]:
                 if cost(m ^ (1 << c)) < cur[forced]:
                     d = delta(c, t)
@@ -281,12 +293,3 @@ def fuse_zz(gates: Sequence[tuple]) -> list[tuple]:
                 dead[j] = True
             break
     return [g for g, d in zip(out, dead) if not d]
-
-
-def _bit_list(mask: int) -> list[int]:
-    out = []
-    while mask:
-        low = mask & -mask
-        out.append(low.bit_length() - 1)
-        mask ^= low
-    return out

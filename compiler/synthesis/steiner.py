@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from collections import deque
 
-__all__ = ["all_pairs_distances", "SteinerCost", "steiner_tree"]
+__all__ = ["all_pairs_distances", "SteinerCost", "steiner_tree", "set_bits"]
 
 
 def all_pairs_distances(adj: list[list[int]]) -> list[list[int]]:
@@ -53,7 +53,7 @@ class SteinerCost:
         return c
 
     def mst(self, mask: int) -> int:
-        bits = _bits(mask)
+        bits = set_bits(mask)
         k = len(bits)
         if k <= 1:
             return 0
@@ -89,7 +89,8 @@ class SteinerCost:
         return 2 * self.mst(mask) + 1 - k
 
 
-def _bits(mask: int) -> list[int]:
+def set_bits(mask: int) -> list[int]:
+    """Indices of the set bits of ``mask``, lowest first."""
     out = []
     while mask:
         low = mask & -mask
