@@ -38,21 +38,26 @@ class LiveServer:
                 self.process.wait(timeout=10)
 
 
-def start_server(folder: Path, *, tokens: str | None = None, workers: int = 2, timeout: float = 90.0) -> LiveServer:
-    """Start ``uvicorn --factory service.api:create_app`` and wait until /healthz answers."""
+def start_server(folder: Path, *, tokens: str | None = None, workers: int = 2, timeout: float = 90.0,
+                 env: dict[str, str] | None = None) -> LiveServer:
+    """Start ``uvicorn --factory service.api:create_app`` and wait until /healthz answers.
+
+    env: more ``TOPOSCOUT_*`` settings (e.g. the Dask address). Each start logs to its own
+    ``server-PORT.log``, so a restarted server on the same folder keeps the first log."""
     folder.mkdir(parents=True, exist_ok=True)
     port = free_port()
     db = f"sqlite:///{folder / 'toposcout.db'}"
-    env = {k: v for k, v in os.environ.items() if not k.startswith("TOPOSCOUT_")}
-    env.update(TOPOSCOUT_DATABASE_URL=db, TOPOSCOUT_DATA_DIR=str(folder), TOPOSCOUT_WORKERS=str(workers),
-               PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    child_env = {k: v for k, v in os.environ.items() if not k.startswith("TOPOSCOUT_")}
+    child_env.update(TOPOSCOUT_DATABASE_URL=db, TOPOSCOUT_DATA_DIR=str(folder), TOPOSCOUT_WORKERS=str(workers),
+                     PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     if tokens:
-        env["TOPOSCOUT_TOKENS"] = tokens
-    log = folder / "server.log"
+        child_env["TOPOSCOUT_TOKENS"] = tokens
+    child_env.update(env or {})
+    log = folder / f"server-{port}.log"
     fh = open(log, "wb")
     proc = subprocess.Popen([sys.executable, "-m", "uvicorn", "--factory", "service.api:create_app",
                              "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"],
-                            cwd=ROOT, env=env, stdout=fh, stderr=subprocess.STDOUT)
+                            cwd=ROOT, env=child_env, stdout=fh, stderr=subprocess.STDOUT)
     fh.close()
     url = f"http://127.0.0.1:{port}"
     deadline = time.monotonic() + timeout

@@ -2,9 +2,6 @@
 
 from __future__ import annotations
 
-import os
-import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -14,36 +11,14 @@ import pytest
 distributed = pytest.importorskip("distributed")
 
 from service.dask_executor import WORKER_PRELOAD  # noqa: E402
-from tests.live_server import ROOT, LiveServer, free_port  # noqa: E402
+from tests.live_server import LiveServer, start_server  # noqa: E402
 
 
 def start_dask_server(folder: Path, scheduler: str, timeout: float = 90.0) -> LiveServer:
-    folder.mkdir(parents=True, exist_ok=True)
-    port = free_port()
-    db = f"sqlite:///{folder / 'toposcout.db'}"
-    env = {k: v for k, v in os.environ.items() if not k.startswith("TOPOSCOUT_")}
-    env.update(TOPOSCOUT_DATABASE_URL=db, TOPOSCOUT_DATA_DIR=str(folder), TOPOSCOUT_DASK_ADDRESS=scheduler,
-               PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    log = folder / f"server-{port}.log"
-    with open(log, "wb") as fh:
-        proc = subprocess.Popen([sys.executable, "-m", "uvicorn", "--factory", "service.api:create_app",
-                                 "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"],
-                                cwd=ROOT, env=env, stdout=fh, stderr=subprocess.STDOUT)
-    url = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if proc.poll() is not None:
-            raise RuntimeError(f"the server exited with {proc.returncode}:\n{log.read_text(errors='replace')}")
-        try:
-            r = httpx.get(url + "/healthz", timeout=2)
-            if r.status_code == 200:
-                assert r.json().get("executor") == "DaskExecutor", r.text
-                return LiveServer(url, db, proc, log)
-        except httpx.HTTPError:
-            pass
-        time.sleep(0.25)
-    proc.kill()
-    raise RuntimeError(f"the server did not answer within {timeout} s:\n{log.read_text(errors='replace')}")
+    server = start_server(folder, timeout=timeout, env={"TOPOSCOUT_DASK_ADDRESS": scheduler})
+    health = httpx.get(server.url + "/healthz", timeout=5)
+    assert health.json().get("executor") == "DaskExecutor", health.text
+    return server
 
 
 def chain(n: int) -> dict:
