@@ -11,11 +11,11 @@ from __future__ import annotations
 import argparse
 import time
 
-from compiler.ansatz import build_ansatz
-from compiler.compile import compile_ansatz
-from compiler.model import parse_model
-from compiler.targets import BUILTIN_FAMILIES, get_gate_set, make_connectivity
-from service.bench import chain_model, plaquette_model
+from toposcout.compiler.ansatz import build_ansatz
+from toposcout.compiler.compile import compile_ansatz
+from toposcout.compiler.model import parse_model
+from toposcout.compiler.targets import BUILTIN_FAMILIES, get_gate_set, make_connectivity
+from toposcout.compiler.bench import chain_model, plaquette_model
 
 
 def bench(model_dict: dict, families, strategy: str, seeds: int) -> float:

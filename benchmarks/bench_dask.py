@@ -4,10 +4,10 @@
 
 The sweep: one model, 4 connectivities x 6 noise scales = 24 noisy tasks. Reported:
 
-* local: the service's :class:`service.executor.LocalExecutor` with ``--workers`` spawned
+* local: the service's :class:`toposcout.service.execution.local.LocalExecutor` with ``--workers`` spawned
   processes (warm: started before the clock runs), as the service runs it, and once more with
   ``OMP_NUM_THREADS=1`` in its environment (one simulator thread per process, as on a Dask worker);
-* dask: :class:`service.dask_executor.DaskExecutor` on a warm LocalCluster (started, modules
+* dask: :class:`toposcout.service.execution.dask.DaskExecutor` on a warm LocalCluster (started, modules
   preloaded) with rows going to an in-memory store; the cluster's start-up is reported apart;
 * per-task overhead of the Dask path beyond the task's own compute:
   ``(wall x workers - sum of row_seconds) / tasks`` — for the noisy sweep, and for 48 tiny
@@ -51,7 +51,7 @@ class _Store:
 
 
 def _run_local(tasks, workers: int, omp: str | None) -> tuple[float, list[dict]]:
-    from service.executor import LocalExecutor
+    from toposcout.service.execution.local import LocalExecutor
 
     old = os.environ.get("OMP_NUM_THREADS")
     if omp is not None:
@@ -94,8 +94,8 @@ def _overhead(wall: float, rows: list[dict], workers: int) -> float:
 def main(argv=None) -> int:
     from distributed import LocalCluster
 
-    from compiler.study import make_tasks
-    from service.dask_executor import WORKER_PRELOAD, DaskExecutor
+    from toposcout.compiler.study import make_tasks
+    from toposcout.service.execution.dask import WORKER_PRELOAD, DaskExecutor
 
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--model", default=str(ROOT / "examples" / "orchard-frost.json"))
@@ -103,7 +103,7 @@ def main(argv=None) -> int:
     p.add_argument("--json", action="store_true", help="print the figures as JSON")
     args = p.parse_args(argv)
 
-    from compiler.model import load_model
+    from toposcout.compiler.model import load_model
 
     model = load_model(args.model)
     tasks = make_tasks(model, CONNECTIVITIES, noise_scales=NOISE_SCALES, seeds=2, strategy="auto")

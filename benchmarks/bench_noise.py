@@ -9,7 +9,7 @@ the two variants alternate and the fastest of 3 runs is kept (1 run from 12 qubi
 is a chain of overlapping triples on a line connectivity (active qubits = variables), the
 superconducting-like profile at scale 1, error budget off (one density-matrix run per row).
 
-* ``toposcout row``: ``compiler.metrics.noise_figures`` (schedule, ideal statevector run,
+* ``toposcout row``: ``toposcout.compiler.metrics.noise_figures`` (schedule, ideal statevector run,
   density-matrix run, all metrics).
 * ``hand-written``: what a user would write with qiskit-aer alone for the same compiled
   circuit: a timed Target, ALAP + PadDelay, RelaxationNoisePass on delays, depolarizing +
@@ -31,7 +31,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 
 def build(n: int):
-    from compiler import build_ansatz, compile_ansatz, get_gate_set, make_connectivity, parse_model
+    from toposcout.compiler import build_ansatz, compile_ansatz, get_gate_set, make_connectivity, parse_model
 
     names = [f"x{i}" for i in range(n)]
     model = parse_model({"name": f"triples{n}", "variables": names,
@@ -88,9 +88,9 @@ def hand_written(compiled, prof) -> float:
 def one(n: int, repeat: int) -> dict:
     """Both variants on the same compiled circuit in one process, interleaved ``repeat`` times
     (the fastest of each is kept: the machine is shared); peak RSS of the whole process."""
-    from compiler.metrics import noise_figures
-    from compiler.profiles import load_profile
-    from compiler.simulate import estimate_memory_bytes
+    from toposcout.compiler.metrics import noise_figures
+    from toposcout.compiler.profiles import load_profile
+    from toposcout.compiler.simulate import estimate_memory_bytes
 
     ansatz, compiled = build(n)
     prof = load_profile("superconducting")

@@ -1,7 +1,7 @@
-"""Structured vs generic two-qubit counts on the issue's four models (cx gate set).
+"""Structured vs generic two-qubit counts on the suite's four reference models (cx gate set).
 
 Run: .venv/bin/python benchmarks/bench_structured.py [--generic-seeds 5] [--json out.json]
-The full suite with every check is `toposcout bench` (service/bench.py).
+The full suite with every check is `toposcout bench` (compiler/bench.py).
 Prints one row per (model, connectivity): LB, structured 2q count / depth / seconds, generic
 (qiskit preset pipeline, optimization level 3, best of the seeds) 2q count / depth, ratios.
 """
@@ -13,14 +13,14 @@ import json
 import statistics
 import time
 
-from compiler.ansatz import build_ansatz
-from compiler.compile import compile_generic
-from compiler.model import parse_model
-from compiler.synthesis import compile_structured
-from compiler.targets import get_gate_set, make_connectivity
-from service.bench import FAMILIES, ISSUE_BEST, plaquette_model, ring_triples_model, triangle_model
+from toposcout.compiler.ansatz import build_ansatz
+from toposcout.compiler.compile import compile_generic
+from toposcout.compiler.model import parse_model
+from toposcout.compiler.synthesis import compile_structured
+from toposcout.compiler.targets import get_gate_set, make_connectivity
+from toposcout.compiler.bench import CONNECTIVITY_FAMILIES_BENCHED as FAMILIES, PLUGIN_BEST_REFERENCE, plaquette_model, ring_triples_model, triangle_model
 
-# the issue's four models (generators shared with `toposcout bench`, which runs the full suite)
+# the suite's four reference models (generators shared with `toposcout bench`, which runs the full suite)
 MODELS = {m["name"]: m for m in (plaquette_model(3, 3), plaquette_model(3, 4), triangle_model(3, 3),
                                   ring_triples_model(10))}
 
@@ -43,20 +43,20 @@ def main(argv=None) -> int:
             st_s = time.perf_counter() - t
             row = {"model": name, "connectivity": con.name, "family": fam, "lb": lb,
                    "structured": st.two_qubit_gates(), "structured_depth": st.depth(),
-                   "structured_seconds": round(st_s, 3), "issue_best": ISSUE_BEST[name].get(fam)}
+                   "structured_seconds": round(st_s, 3), "plugin_best_reference": PLUGIN_BEST_REFERENCE[name].get(fam)}
             if args.generic_seeds > 0:
                 gen = compile_generic(a, con, gs, seeds=args.generic_seeds)
                 row.update(generic=gen.two_qubit_gates(), generic_depth=gen.depth())
             rows.append(row)
-            best = row["issue_best"]
+            best = row["plugin_best_reference"]
             print(f"{name:16s} {fam:10s} LB {lb:3d}  structured {row['structured']:4d} "
                   f"(x{row['structured'] / lb:.2f} LB"
-                  + (f", {row['structured'] / best:.2f} of issue best {best}" if best else "")
+                  + (f", {row['structured'] / best:.2f} of the reference best {best}" if best else "")
                   + f") depth {row['structured_depth']:4d} {st_s:5.2f}s"
                   + (f" | generic {row['generic']:4d} depth {row['generic_depth']:4d}" if "generic" in row else ""),
                   flush=True)
-    cons = [r["structured"] / r["issue_best"] for r in rows if r["family"] != "all-to-all" and r["issue_best"]]
-    print(f"median structured / issue best over constrained table cells: {statistics.median(cons):.3f}")
+    cons = [r["structured"] / r["plugin_best_reference"] for r in rows if r["family"] != "all-to-all" and r["plugin_best_reference"]]
+    print(f"median structured / reference best over constrained table cells: {statistics.median(cons):.3f}")
     a2a = [r["structured"] / r["lb"] for r in rows if r["family"] == "all-to-all"]
     print(f"all-to-all structured / LB: max {max(a2a):.2f}")
     if all("generic" in r for r in rows):

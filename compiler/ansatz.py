@@ -17,7 +17,7 @@ seeded generator: term angles uniform in [-π/2, π/2), rotation angles θ in [0
 φ and λ in [-π, π).
 
 Examples:
-    >>> from compiler.model import parse_model
+    >>> from toposcout.compiler.model import parse_model
     >>> m = parse_model({"variables": ["a", "b", "c"], "cliques": [["a", "b", "c"]]})
     >>> a = build_ansatz(m, seed=3)
     >>> a.stats()["terms_per_order"], a.stats()["cnots"]
@@ -33,8 +33,8 @@ from typing import Any
 import numpy as np
 from qiskit import QuantumCircuit
 
-from compiler.errors import ModelError
-from compiler.model import Model
+from toposcout.compiler.errors import ModelError
+from toposcout.compiler.model import Model
 
 __all__ = ["Term", "Ansatz", "build_ansatz", "FAMILIES", "append_term"]
 

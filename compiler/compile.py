@@ -6,7 +6,7 @@ Strategies:
   optimisation) at ``optimization_level`` (default 3), run with ``seeds`` seeds; the best
   by two-qubit count, then depth, is kept and its seed recorded.
 * ``structured``: our synthesis of the commuting block for the coupling graph
-  (:mod:`compiler.synthesis`).
+  (:mod:`toposcout.compiler.synthesis`).
 * ``auto`` (default): both, keeping the better by two-qubit count then depth; the result
   records which won and both counts in ``extra``.
 
@@ -14,9 +14,9 @@ Every result is checked: each two-qubit gate lies on an edge of the coupling map
 physical qubit ``final_layout[i]`` is measured into bit ``i``.
 
 Examples:
-    >>> from compiler.model import parse_model
-    >>> from compiler.ansatz import build_ansatz
-    >>> from compiler.targets import make_connectivity, get_gate_set
+    >>> from toposcout.compiler.model import parse_model
+    >>> from toposcout.compiler.ansatz import build_ansatz
+    >>> from toposcout.compiler.targets import make_connectivity, get_gate_set
     >>> m = parse_model({"variables": ["a", "b", "c"], "cliques": [["a", "b", "c"]]})
     >>> c = compile_ansatz(build_ansatz(m), make_connectivity("all-to-all", 3), get_gate_set("cx"),
     ...                    strategy="generic", seeds=1)
@@ -30,8 +30,8 @@ import time
 
 from qiskit.transpiler import generate_preset_pass_manager
 
-from compiler.ansatz import Ansatz
-from compiler.compiled import (
+from toposcout.compiler.ansatz import Ansatz
+from toposcout.compiler.compiled import (
     NON_GATES,
     Compiled,
     check_coupling,
@@ -40,9 +40,9 @@ from compiler.compiled import (
     qasm3_text,
     qpy_bytes,
 )
-from compiler.errors import CompileError, TargetError
-from compiler.synthesis import compile_structured
-from compiler.targets import Connectivity, GateSet, build_target
+from toposcout.compiler.errors import CompileError, TargetError
+from toposcout.compiler.synthesis import compile_structured
+from toposcout.compiler.targets import Connectivity, GateSet, build_target
 
 __all__ = [
     "STRATEGIES",

@@ -1,6 +1,6 @@
 """The compiled circuit as a value, its checks and its exports (OpenQASM 3, QPY).
 
-Every strategy (``compiler.compile``, ``compiler.synthesis``) returns a :class:`Compiled`;
+Every strategy (``toposcout.compiler.compile``, ``toposcout.compiler.synthesis``) returns a :class:`Compiled`;
 :func:`check_coupling` and :func:`measured_layout` are the invariants every result must keep.
 """
 
@@ -12,8 +12,8 @@ from typing import Any
 
 from qiskit import QuantumCircuit
 
-from compiler.errors import CompileError
-from compiler.targets import Connectivity, GateSet
+from toposcout.compiler.errors import CompileError
+from toposcout.compiler.targets import Connectivity, GateSet
 
 __all__ = ["Compiled", "check_coupling", "measured_layout", "qasm3_text", "qpy_bytes", "load_qpy", "NON_GATES"]
 

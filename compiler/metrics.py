@@ -15,13 +15,19 @@ little-endian over ``model.variables``; ancilla/SWAP qubits are traced out):
   positive-definite kernel; a mixture over several bandwidths is common practice).
 * ``esp`` (estimated success probability) = product over every operation of (1 - error):
   gates (profile average infidelity), idle windows (average infidelity of their relaxation)
-  and readout ((p(1|0) + p(0|1)) / 2 per variable); see ``compiler.noise.operation_errors``.
+  and readout ((p(1|0) + p(0|1)) / 2 per variable); see ``toposcout.compiler.noise.operation_errors``.
 * error budget: ``budget_<source>`` = Hellinger fidelity with that source switched off minus
   the Hellinger fidelity with all sources on (re-simulated for two_qubit, one_qubit, idle;
   readout needs no new simulation). The Hellinger fidelity of the *measured* distribution is
   used because readout error cannot change the state fidelity. The four budgets need not add
   up to 1 - hellinger_fidelity (sources interact). ``budget_state_<source>`` is the same
   for the state fidelity (two_qubit, one_qubit, idle).
+* clique marginals: for each clique of the model, the Hellinger fidelity between the ideal
+  and the measured noisy marginal distribution on the clique's variables
+  (``clique_hellinger``: one ``{"clique": [names], "fidelity": F}`` per clique;
+  ``clique_hellinger_mean`` / ``_min`` / ``_worst`` (names joined by ","). They stay
+  informative when the global fidelity of a large model is ~0.
+* ``log10_state_fidelity`` = log10 of the state fidelity (None when it is 0).
 """
 
 from __future__ import annotations
@@ -32,11 +38,11 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from compiler.errors import ToposcoutError
-from compiler.model import target_distribution
-from compiler.noise import SOURCES, NoiseSwitches, Scheduled, operation_errors, readout_matrices, schedule
-from compiler.profiles import DeviceProfile
-from compiler.simulate import (
+from toposcout.compiler.errors import ToposcoutError
+from toposcout.compiler.model import target_distribution
+from toposcout.compiler.noise import SOURCES, NoiseSwitches, Scheduled, operation_errors, readout_matrices, schedule
+from toposcout.compiler.profiles import DeviceProfile
+from toposcout.compiler.simulate import (
     IdealState,
     check_memory,
     default_memory_budget_bytes,
@@ -56,6 +62,10 @@ __all__ = [
     "noise_figures",
     "threshold_two_qubit_error",
     "FIGURE_KEYS",
+    "marginal",
+    "clique_indices",
+    "clique_figures",
+    "log10",
 ]
 
 MMD_BANDWIDTHS = (0.5, 1.0, 2.0)
@@ -68,6 +78,8 @@ FIGURE_KEYS = (
     "budget_two_qubit", "budget_one_qubit", "budget_idle", "budget_readout",
     "budget_state_two_qubit", "budget_state_one_qubit", "budget_state_idle",
     "kl_target_ideal", "kl_target_noisy", "simulate_seconds",
+    "log10_state_fidelity", "clique_hellinger_mean", "clique_hellinger_min", "clique_hellinger_worst",
+    "clique_hellinger",
 )
 
 
@@ -147,6 +159,61 @@ def mmd(p: np.ndarray, q: np.ndarray, bandwidths: Sequence[float] = MMD_BANDWIDT
     return math.sqrt(max(val, 0.0))
 
 
+def marginal(p: np.ndarray, variables: Sequence[int]) -> np.ndarray:
+    """The marginal of ``p`` (little-endian over k variables) on ``variables``, little-endian
+    over them in the order given (``variables[0]`` is the least significant bit).
+
+    >>> marginal(np.array([0.1, 0.2, 0.3, 0.4]), [1]).round(3).tolist()   # P(v1=0), P(v1=1)
+    [0.3, 0.7]
+    """
+    p = np.asarray(p, dtype=float)
+    k = int(round(math.log2(p.shape[-1])))
+    lead = p.shape[:-1]
+    t = p.reshape(lead + (2,) * k)  # axis len(lead)+j <-> variable k-1-j
+    off = len(lead)
+    keep = [off + k - 1 - v for v in reversed(list(variables))]
+    drop = tuple(a for a in range(off, off + k) if a not in keep)
+    s = t.sum(axis=drop) if drop else t
+    # s keeps the kept axes in increasing axis order; put them in the order of ``keep``
+    order = sorted(keep)
+    s = np.moveaxis(s, [off + order.index(a) for a in keep], list(range(off, off + len(keep))))
+    return s.reshape(lead + (2 ** len(keep),))
+
+
+def clique_indices(model) -> list[tuple[int, ...]]:
+    """Each clique of the model as variable indices (the model's clique order)."""
+    pos = {v: i for i, v in enumerate(model.variables)}
+    return [tuple(pos[v] for v in c) for c in model.cliques]
+
+
+def clique_figures(model, fidelities: Sequence[float], ses: Sequence[float] | None = None) -> dict[str, Any]:
+    """Row fields of the per-clique Hellinger fidelities (in the model's clique order)."""
+    fs = [float(f) for f in fidelities]
+    items = []
+    for i, (c, f) in enumerate(zip(model.cliques, fs)):
+        item: dict[str, Any] = {"clique": list(c), "fidelity": f}
+        if ses is not None:
+            item["se"] = float(ses[i])
+        items.append(item)
+    if not fs:
+        return {"clique_hellinger_mean": None, "clique_hellinger_min": None, "clique_hellinger_worst": None,
+                "clique_hellinger": []}
+    worst = int(np.argmin(fs))
+    out = {"clique_hellinger_mean": float(np.mean(fs)), "clique_hellinger_min": fs[worst],
+           "clique_hellinger_worst": ",".join(model.cliques[worst]), "clique_hellinger": items}
+    if ses is not None:
+        out["clique_hellinger_mean_se"] = float(math.sqrt(sum(x * x for x in ses)) / len(ses))
+        out["clique_hellinger_min_se"] = float(ses[worst])
+    return out
+
+
+def log10(x: float | None) -> float | None:
+    """log10 of a fidelity (None when it is None or <= 0)."""
+    if x is None or x <= 0:
+        return None
+    return float(math.log10(x))
+
+
 def esp(errors: dict[str, list[float]]) -> float:
     """Product of (1 - e) over all listed operation errors."""
     return float(np.prod([1.0 - e for es in errors.values() for e in es]))
@@ -222,6 +289,9 @@ def noise_figures(compiled, ansatz, profile: DeviceProfile, *, memory_budget_byt
     else:
         out["kl_target_ideal"] = None
         out["kl_target_noisy"] = None
+    cliques = clique_indices(ansatz.model)
+    out.update(clique_figures(ansatz.model, [hellinger_fidelity(marginal(p, c), marginal(q, c)) for c in cliques]))
+    out["log10_state_fidelity"] = log10(f_state)
     out["simulate_seconds"] = time.perf_counter() - t0
     return {k: out[k] for k in FIGURE_KEYS}
 

@@ -17,7 +17,7 @@ Examples:
     >>> parse_model({"variables": ["a", "a"]})
     Traceback (most recent call last):
     ...
-    compiler.errors.ModelError: variables[1]: duplicate variable name 'a' (first at variables[0]); every variable needs its own name
+    toposcout.compiler.errors.ModelError: variables[1]: duplicate variable name 'a' (first at variables[0]); every variable needs its own name
 """
 
 from __future__ import annotations
@@ -33,7 +33,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from compiler.errors import CapacityError, ModelError
+from toposcout.compiler.errors import CapacityError, ModelError
 
 __all__ = [
     "Factor",
@@ -136,7 +136,7 @@ class Model:
 @lru_cache(maxsize=1)
 def model_schema() -> dict:
     """The JSON Schema of our model format (also served at ``GET /v1/schema/model``)."""
-    text = resources.files("compiler").joinpath("model.schema.json").read_text()
+    text = resources.files(__package__).joinpath("model.schema.json").read_text()
     return json.loads(text)
 
 

@@ -16,10 +16,10 @@ The flow for one compiled circuit::
   to whole ns; ``rz`` is virtual: zero duration). Idle windows become ``delay`` instructions.
   ``Scheduled.duration_ns`` is the whole circuit including the final measurement. The final
   measurements are then removed from the circuit (simulation saves the pre-measurement state
-  and applies readout errors exactly, see ``compiler.simulate``).
+  and applies readout errors exactly, see ``toposcout.compiler.simulate``).
 * **Gate noise.** Every non-virtual gate gets ``depolarizing(p)`` followed by thermal
   relaxation for the gate's duration (two-qubit gates: the tensor product of both qubits'
-  relaxation), with ``p`` from :func:`compiler.profiles.depolarizing_parameter` so that the
+  relaxation), with ``p`` from :func:`toposcout.compiler.profiles.depolarizing_parameter` so that the
   whole gate has the profile's average infidelity (Nielsen 2002; relaxation not counted twice).
 * **Idle noise.** Thermal relaxation ``exp(-t/T1)``, ``exp(-t/T2)`` is appended after every
   delay (an explicit ``QuantumError`` instruction per delay, computed with the qubit's own
@@ -42,8 +42,8 @@ from qiskit.transpiler import InstructionProperties, PassManager, Target
 from qiskit.transpiler.passes import ALAPScheduleAnalysis, PadDelay
 from qiskit_aer.noise import NoiseModel, QuantumError, ReadoutError, depolarizing_error, thermal_relaxation_error
 
-from compiler.errors import CompileError, ToposcoutError
-from compiler.profiles import (
+from toposcout.compiler.errors import CompileError, ToposcoutError
+from toposcout.compiler.profiles import (
     DeviceProfile,
     depolarizing_parameter,
     relaxation_average_infidelity,
@@ -229,7 +229,7 @@ def schedule_circuit(circuit: QuantumCircuit, final_layout: Sequence[int] | None
 
 
 def schedule(compiled, profile: DeviceProfile) -> Scheduled:
-    """:func:`schedule_circuit` of a ``compiler.compile.Compiled``."""
+    """:func:`schedule_circuit` of a ``toposcout.compiler.compile.Compiled``."""
     return schedule_circuit(compiled.circuit, compiled.final_layout, profile)
 
 

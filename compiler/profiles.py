@@ -47,7 +47,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from compiler.errors import ProfileError
+from toposcout.compiler.errors import ProfileError
 
 __all__ = [
     "DeviceProfile",

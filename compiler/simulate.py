@@ -1,6 +1,6 @@
 """Density-matrix simulation of the active qubits of a scheduled circuit, and its ideal twin.
 
-* Only the compact circuit of :class:`compiler.noise.Scheduled` is simulated (the physical
+* Only the compact circuit of :class:`toposcout.compiler.noise.Scheduled` is simulated (the physical
   qubits the compiled circuit never touches are gone, the noise model is keyed by the
   compact index).
 * Noisy: ``AerSimulator(method="density_matrix")`` with the profile's noise model, idle
@@ -8,7 +8,7 @@
   final measurement (``save_density_matrix(qubits=measured)``: variable order, little-endian).
 * Ideal: ``AerSimulator(method="statevector")`` of the same compact circuit without noise.
 * Memory is estimated before anything runs (:func:`estimate_memory_bytes`) and a run past
-  the budget is refused with :class:`compiler.errors.CapacityError`. The default budget is a
+  the budget is refused with :class:`toposcout.compiler.errors.CapacityError`. The default budget is a
   fraction of this machine's RAM read with ``os.sysconf`` (:func:`default_memory_budget_bytes`);
   callers pass their own budget to override it. ``result.success`` is always checked.
 """
@@ -23,9 +23,9 @@ from typing import Sequence
 import numpy as np
 from qiskit_aer import AerSimulator
 
-from compiler.errors import CapacityError, ToposcoutError
-from compiler.noise import NoiseSwitches, Scheduled, build_noise_model, noisy_circuit
-from compiler.profiles import DeviceProfile
+from toposcout.compiler.errors import CapacityError, ToposcoutError
+from toposcout.compiler.noise import NoiseSwitches, Scheduled, build_noise_model, noisy_circuit
+from toposcout.compiler.profiles import DeviceProfile
 
 __all__ = [
     "MEMORY_FRACTION",
@@ -85,8 +85,7 @@ def capacity_message(n: int, estimate: int, budget: int) -> str:
     return (
         f"the noise study needs a density matrix of {n} active qubits: about "
         f"{estimate / 2**30:.2f} GiB (16*4^{n} bytes plus overhead), over the memory budget of "
-        f"{budget / 2**30:.2f} GiB. Use fewer variables, a lower max_order, a connectivity whose "
-        f"routing needs fewer SWAP (ancilla) qubits, or compile-only (no simulation)"
+        f"{budget / 2**30:.2f} GiB"
     )
 
 

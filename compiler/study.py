@@ -10,7 +10,11 @@ A task::
      "gate_set": "cx", "strategy": "auto", "seeds": 5, "family": "clique", "layers": 1, "seed": 0,
      "compile_only": False, "profile": "NAME" | {profile dict} | None, "noise_scale": 1.0,
      "memory_budget_bytes": None, "error_budget": True, "fidelity_target": None,
-     "keep_circuit": False}
+     "keep_circuit": False, "method": "auto", "time_budget_seconds": None, "trajectories": None,
+     "precision": None}
+
+``method`` picks how the noise figures are computed (``toposcout.compiler.methods``); when they
+cannot be computed the row keeps its compile figures and says why in ``noise_error``.
 
 With ``keep_circuit`` the row also carries ``circuit_qpy_b64``: the compiled circuit as
 base64 QPY (the service stores it apart from the row).
@@ -28,14 +32,15 @@ import hashlib
 import json
 import math
 import time
+from collections import OrderedDict
 from typing import Any, Iterable, Mapping, Sequence
 
-from compiler.ansatz import FAMILIES, build_ansatz
-from compiler.compile import STRATEGIES, compile_ansatz
-from compiler.errors import ModelError, TargetError, ToposcoutError
-from compiler.model import Limits, Model, parse_model
-from compiler.targets import BUILTIN_FAMILIES, make_connectivity, parse_edge_list, get_gate_set, read_edge_list
-from compiler.version import __version__
+from toposcout.compiler.ansatz import FAMILIES, build_ansatz
+from toposcout.compiler.compile import STRATEGIES, compile_ansatz
+from toposcout.compiler.errors import CapacityError, ModelError, TargetError, ToposcoutError
+from toposcout.compiler.model import Limits, Model, parse_model
+from toposcout.compiler.targets import BUILTIN_FAMILIES, make_connectivity, parse_edge_list, get_gate_set, read_edge_list
+from toposcout.compiler.version import __version__
 
 __all__ = ["TASK_DEFAULTS", "normalise_task", "task_key", "make_tasks", "run_task", "connectivity_spec"]
 
@@ -53,6 +58,10 @@ TASK_DEFAULTS: dict[str, Any] = {
     "error_budget": True,
     "fidelity_target": None,
     "keep_circuit": False,
+    "method": "auto",
+    "time_budget_seconds": None,
+    "trajectories": None,
+    "precision": None,
 }
 
 
@@ -122,6 +131,14 @@ def make_tasks(
     get_gate_set(probe["gate_set"])
     if not probe["compile_only"]:
         _profile(probe["profile"], 1.0)
+        if probe["method"] == "density-matrix":
+            from toposcout.compiler.simulate import capacity_message, default_memory_budget_bytes, estimate_memory_bytes
+
+            budget = probe["memory_budget_bytes"] or default_memory_budget_bytes()
+            est = estimate_memory_bytes(m.num_variables)
+            if est > budget:  # every row needs at least one qubit per variable: no row could run
+                raise CapacityError(f"method density-matrix: {capacity_message(m.num_variables, est, budget)}; "
+                                    "or use method auto, trajectories or clifford", field="method")
     tasks = []
     for spec in specs:
         for k, s in enumerate(scales):
@@ -142,6 +159,10 @@ def _check_options(t: Mapping[str, Any]) -> None:
         v = t[name]
         if not isinstance(v, int) or isinstance(v, bool) or v < 1 or v > 64:
             raise ModelError(f"{name} must be an integer from 1 to 64, got {v!r}", field=name)
+    from toposcout.compiler.methods import check_method_options
+
+    check_method_options(t["method"], precision=t["precision"], trajectories=t["trajectories"],
+                         time_budget_seconds=t["time_budget_seconds"])
     ns = t["noise_scale"]
     if not isinstance(ns, (int, float)) or isinstance(ns, bool) or not math.isfinite(ns) or ns < 0:
         raise ModelError(f"noise_scale must be a finite number >= 0, got {ns!r}", field="noise_scale")
@@ -173,7 +194,8 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         gate_set = get_gate_set(t["gate_set"])
         row["connectivity"] = conn.name
         row["connectivity_family"] = conn.family
-        compiled = compile_ansatz(ansatz, conn, gate_set, strategy=t["strategy"], seeds=t["seeds"])
+        compiled, reused = _compiled(ansatz, conn, gate_set, t, limits)
+        row["compile_reused"] = reused
         fig = compiled.figures()
         fig["layout"] = {v: p for v, p in zip(model.variables, compiled.initial_layout)}
         fig["final_layout"] = {v: p for v, p in zip(model.variables, compiled.final_layout)}
@@ -182,10 +204,12 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         if t["keep_circuit"]:
             import base64
 
-            from compiler.compile import qpy_bytes
+            from toposcout.compiler.compile import qpy_bytes
 
             row["circuit_qpy_b64"] = base64.b64encode(qpy_bytes(compiled)).decode("ascii")
-        if not t["compile_only"]:
+        if t["compile_only"]:
+            row.update(method=None, method_reason="compile-only: no noise simulation")
+        else:
             row.update(_noise_row(compiled, ansatz, t))
     except ToposcoutError as exc:
         row["error"] = str(exc)
@@ -194,8 +218,30 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
     return row
 
 
+#: compiled circuits of the last tasks run in this process, by everything that decides the
+#: compilation (not the noise options): the rows of a noise-scale sweep compile once. A memo
+#: of a deterministic function, so a hit returns exactly what a new compilation would.
+_COMPILED: "OrderedDict[str, Any]" = OrderedDict()
+_COMPILED_SIZE = 8
+
+
+def _compiled(ansatz, conn, gate_set, t: Mapping[str, Any], limits) -> tuple[Any, bool]:
+    key = json.dumps({"model": ansatz.model.to_dict(), "family": t["family"], "layers": t["layers"],
+                      "seed": t["seed"], "connectivity": conn.to_dict(), "gate_set": t["gate_set"],
+                      "strategy": t["strategy"], "seeds": t["seeds"], "limits": repr(limits), "version": __version__},
+                     sort_keys=True, default=str)
+    if key in _COMPILED:
+        _COMPILED.move_to_end(key)
+        return _COMPILED[key], True
+    compiled = compile_ansatz(ansatz, conn, gate_set, strategy=t["strategy"], seeds=t["seeds"])
+    _COMPILED[key] = compiled
+    while len(_COMPILED) > _COMPILED_SIZE:
+        _COMPILED.popitem(last=False)
+    return compiled, False
+
+
 def _profile(spec: str | Mapping[str, Any] | None, noise_scale: float):
-    from compiler.profiles import DEFAULT_PROFILE, DeviceProfile, load_profile
+    from toposcout.compiler.profiles import DEFAULT_PROFILE, DeviceProfile, load_profile
 
     spec = spec or DEFAULT_PROFILE
     if isinstance(spec, Mapping):
@@ -204,14 +250,8 @@ def _profile(spec: str | Mapping[str, Any] | None, noise_scale: float):
 
 
 def _noise_row(compiled, ansatz, t: Mapping[str, Any]) -> dict:
-    from compiler.metrics import noise_figures, threshold_two_qubit_error
+    """The noise figures by the task's method; a failure is ``noise_error`` (the compile
+    figures of the row stay). The threshold bisection replaces the profile's noise scale."""
+    from toposcout.compiler.methods import method_noise_row
 
-    profile = _profile(t["profile"], t["noise_scale"])
-    out = {"profile": profile.name}
-    out.update(noise_figures(compiled, ansatz, profile, memory_budget_bytes=t["memory_budget_bytes"],
-                             error_budget=t["error_budget"]))
-    if t["fidelity_target"] is not None:
-        # the bisection replaces the profile's noise scale, so this row's own scale does not matter
-        out.update(threshold_two_qubit_error(compiled, ansatz, profile, fidelity_target=t["fidelity_target"],
-                                             memory_budget_bytes=t["memory_budget_bytes"]))
-    return out
+    return method_noise_row(compiled, ansatz, _profile(t["profile"], t["noise_scale"]), t)

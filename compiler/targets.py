@@ -12,7 +12,7 @@ Examples:
     >>> make_connectivity("line", 9, size=8)
     Traceback (most recent call last):
     ...
-    compiler.errors.TargetError: the model has 9 variables but line-8 has 8 qubits; pick a connectivity with at least 9 qubits or let toposcout size it
+    toposcout.compiler.errors.TargetError: the model has 9 variables but line-8 has 8 qubits; pick a connectivity with at least 9 qubits or let toposcout size it
 """
 
 from __future__ import annotations
@@ -40,7 +40,7 @@ from qiskit.circuit.library import (
 )
 from qiskit.transpiler import CouplingMap, Target
 
-from compiler.errors import TargetError
+from toposcout.compiler.errors import TargetError
 
 __all__ = [
     "TOPOLOGY_DIR",

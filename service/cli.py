@@ -8,17 +8,21 @@ exit code (2 for bad input), never a traceback.
 from __future__ import annotations
 
 import argparse
-import csv
+import io
 import json
+import os
 import sys
 from pathlib import Path
 from typing import Any, Sequence
 
-from compiler.errors import ToposcoutError
+from toposcout.compiler.errors import ToposcoutError
+from toposcout.compiler.targets import BUILTIN_FAMILIES, GATE_SETS
+from toposcout.service.output import CAUTION, rows_table, sort_rows, write_csv, write_json
 
 EXIT_OK, EXIT_FAILED_ROWS, EXIT_BAD_INPUT = 0, 1, 2
 
-CAUTION = ("Figures are a simulation under the stated noise model, not a promise about a device.")
+# Each command imports what it needs when it runs (qiskit, FastAPI, Dask are heavy to load), so
+# ``toposcout --help`` and ``toposcout targets`` stay quick: the function-local imports below are those.
 
 
 class _Parser(argparse.ArgumentParser):
@@ -28,8 +32,6 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _parser() -> argparse.ArgumentParser:
-    from compiler.targets import BUILTIN_FAMILIES, GATE_SETS
-
     p = _Parser(prog="toposcout", description="Where does a graph-structured circuit fit, and what survives noise?")
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
@@ -52,6 +54,16 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--fidelity-target", type=float, default=None,
                    help="with a sweep, find the largest 2q error reaching this state fidelity (default 0.5)")
     c.add_argument("--compile-only", action="store_true", help="skip the noise simulation")
+    c.add_argument("--method", default="auto", metavar="METHOD",
+                   help="how noise figures are computed: auto (default: density-matrix within the memory budget, "
+                        "else trajectories within the time budget, else clifford), density-matrix, trajectories, "
+                        "clifford")
+    c.add_argument("--time-budget", type=float, metavar="SECONDS",
+                   help="wall time the noise figures of one row may take (default 300)")
+    c.add_argument("--trajectories", type=int, metavar="N", help="trajectories method: run exactly N trajectories")
+    c.add_argument("--precision", type=float, metavar="SE",
+                   help="trajectories method: stop when the state fidelity's standard error is below SE "
+                        "(default 0.01)")
     c.add_argument("--memory-budget", type=float, metavar="GIB", help="refuse simulations needing more (GiB)")
     c.add_argument("--max-variables", type=int, default=128, help="cap on the model's variables (default 128)")
     c.add_argument("--json", action="store_true", help="print rows as JSON instead of a table")
@@ -62,8 +74,6 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--token", help="bearer token for --server (default: $TOPOSCOUT_TOKEN)")
 
     sub.add_parser("targets", help="list connectivities, gate sets and device profiles")
-
-    from service.bench import add_arguments as _bench_arguments
 
     _bench_arguments(sub.add_parser("bench", help="structured vs generic compilation on a fixed suite of models"))
 
@@ -84,72 +94,47 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
-def _rows_table(rows: list[dict]) -> str:
-    cols = [("connectivity", "connectivity"), ("strategy", "strategy"), ("phys", "physical_qubits"),
-            ("active", "active_qubits"), ("2q", "two_qubit_gates"), ("swaps", "swaps"), ("depth", "depth"),
-            ("2q-depth", "two_qubit_depth"), ("1q", "one_qubit_gates"), ("compile s", "compile_seconds")]
-    if any("state_fidelity" in r for r in rows):
-        cols += [("scale", "noise_scale"), ("F state", "state_fidelity"), ("F hell", "hellinger_fidelity"),
-                 ("TVD", "tvd"), ("KL", "kl_ideal_noisy"), ("ESP", "esp"), ("us", "duration_us"),
-                 ("loss 2q/1q/idle/ro", "_budget")]
-    if any(r.get("threshold_two_qubit_error") is not None for r in rows):
-        cols.append(("2q err @F", "threshold_two_qubit_error"))
-
-    def cell(r: dict, key: str) -> str:
-        if key == "_budget":
-            parts = [r.get(k) for k in ("budget_two_qubit", "budget_one_qubit", "budget_idle", "budget_readout")]
-            return "/".join("-" if p is None else f"{p:.3f}" for p in parts) if any(p is not None for p in parts) else ""
-        v = r.get(key)
-        if v is None:
-            return ""
-        if isinstance(v, float):
-            return f"{v:.4g}"
-        return str(v)
-
-    body = []
-    for r in rows:
-        if r.get("error"):
-            body.append([r.get("connectivity") or "?", "error: " + r["error"]])
-        else:
-            body.append([cell(r, k) for _, k in cols])
-    full = [b for b in body if len(b) == len(cols)]
-    widths = [max([len(h)] + [len(b[i]) for b in full]) for i, (h, _) in enumerate(cols)]
-    lines = ["  ".join(h.ljust(w) for (h, _), w in zip(cols, widths))]
-    for b in body:
-        if len(b) == len(cols):
-            lines.append("  ".join(x.ljust(w) for x, w in zip(b, widths)))
-        else:
-            lines.append(f"{b[0]}  {b[1]}")
-    return "\n".join(lines)
+def _bench_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--quick", action="store_true", help="a small subset (three models, three connectivities)")
+    p.add_argument("--strategy", action="append", choices=("generic", "structured", "auto"),
+                   help="repeatable; default: generic, structured and auto")
+    p.add_argument("--seeds", type=int, default=5, help="transpiler seeds 0..N-1 for generic and --qiskit-best "
+                                                        "(default 5)")
+    p.add_argument("--json", metavar="FILE", help="write the full result as JSON")
+    p.add_argument("--markdown", action="store_true", help="print the table as Markdown")
+    p.add_argument("--qiskit-best", action="store_true",
+                   help="also measure qiskit's PauliEvolution synthesis plugins per cell (slow)")
+    p.add_argument("--mcts-simulations", type=int, default=300,
+                   help="simulation budget of the mcts plugin for --qiskit-best (default 300)")
+    p.add_argument("--big", action="store_true",
+                   help="also the big cells: a 100-variable chain and an 8x8 plaquette grid on heavy-hex "
+                        "(structured only)")
 
 
-def _flatten(row: dict) -> dict:
-    out = {}
-    for k, v in row.items():
-        out[k] = json.dumps(v, sort_keys=True) if isinstance(v, (dict, list)) else v
-    return out
 
+def _bench(args, out, err) -> int:
+    from toposcout.compiler.bench import STRATEGY_ORDER, format_table, run_bench
 
-def write_csv(rows: list[dict], fh) -> None:
-    keys: list[str] = []
-    for r in rows:
-        for k in r:
-            if k not in keys:
-                keys.append(k)
-    w = csv.DictWriter(fh, fieldnames=keys)
-    w.writeheader()
-    for r in rows:
-        w.writerow(_flatten(r))
-
-
-def _sort_key(r: dict):
-    return (r.get("error") is not None, r.get("two_qubit_gates") or 0, r.get("depth") or 0,
-            str(r.get("connectivity")), r.get("noise_scale") or 0)
+    if args.seeds < 1:
+        raise ToposcoutError("--seeds must be at least 1", field="seeds")
+    if args.mcts_simulations < 1:
+        raise ToposcoutError("--mcts-simulations must be at least 1", field="mcts_simulations")
+    tty = hasattr(err, "isatty") and err.isatty()
+    result = run_bench(quick=args.quick, strategies=args.strategy or STRATEGY_ORDER, seeds=args.seeds,
+                       measure_qiskit=args.qiskit_best, simulations=args.mcts_simulations, big=args.big,
+                       progress=(lambda msg: (err.write(msg + "\n"), err.flush())) if tty else None)
+    out.write(format_table(result, markdown=args.markdown) + "\n")
+    out.write(f"({result['seconds']} s)\n")
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as fh:
+            json.dump(result, fh, indent=1)
+            fh.write("\n")
+    return 0
 
 
 def _compare(args, out, err) -> int:
-    from compiler.model import Limits, load_model
-    from compiler.study import make_tasks
+    from toposcout.compiler.model import Limits, load_model
+    from toposcout.compiler.study import make_tasks
 
     limits = Limits(max_variables=args.max_variables)
     model = load_model(args.model, limits=limits)
@@ -161,72 +146,89 @@ def _compare(args, out, err) -> int:
         model = model.from_dict(d, limits=limits)
     options: dict[str, Any] = dict(gate_set=args.gate_set, strategy=args.strategy, seeds=args.seeds,
                                    family=args.family, layers=args.layers, seed=args.seed,
-                                   compile_only=args.compile_only, profile=args.profile)
+                                   compile_only=args.compile_only, profile=args.profile, method=args.method,
+                                   time_budget_seconds=args.time_budget, trajectories=args.trajectories,
+                                   precision=args.precision)
+    from toposcout.compiler.methods import check_method_options
+
+    try:
+        check_method_options(args.method, precision=args.precision, trajectories=args.trajectories,
+                             time_budget_seconds=args.time_budget)
+    except ToposcoutError as exc:  # name the command-line option, not the task field
+        flag = {"method": "--method", "precision": "--precision", "trajectories": "--trajectories",
+                "time_budget_seconds": "--time-budget"}.get(exc.field or "", exc.field)
+        raise ToposcoutError(f"{flag}: {exc}", field=flag) from None
     if args.memory_budget is not None:
         options["memory_budget_bytes"] = int(args.memory_budget * 2**30)
     scales = args.noise_scale or [1.0]
     if len(scales) > 1 or args.fidelity_target is not None:
         options["fidelity_target"] = 0.5 if args.fidelity_target is None else args.fidelity_target
     if args.profile and Path(args.profile).suffix == ".toml":
-        from compiler.profiles import load_profile
+        from toposcout.compiler.profiles import load_profile
 
         options["profile"] = load_profile(args.profile).to_dict()
+    if args.qasm_dir:
+        options["keep_circuit"] = True  # the rows bring their compiled circuits for the files
     tasks = make_tasks(model, args.connectivity, noise_scales=scales, **options)
     show_progress = not args.json and hasattr(err, "isatty") and err.isatty()
     if args.server:
-        from service.client import Client
-
-        import os
+        from toposcout.service.client import Client
 
         client = Client(args.server, token=args.token or os.environ.get("TOPOSCOUT_TOKEN"))
         rows = client.run_tasks(model, tasks, progress=show_progress)
     else:
-        from service.runner import run_tasks
+        from toposcout.service.execution.runner import run_tasks
 
         rows = run_tasks(tasks, workers=args.workers, progress=show_progress)
-    rows.sort(key=_sort_key)
     if args.qasm_dir:
         _write_circuits(tasks, rows, Path(args.qasm_dir))
+        rows = [{k: v for k, v in r.items() if k != "circuit_qpy_b64"} for r in rows]
+    rows = sort_rows(rows)
     if args.csv:
         with open(args.csv, "w", newline="", encoding="utf-8") as fh:
             write_csv(rows, fh)
     if args.json:
-        json.dump({"model": model.name, "caution": CAUTION, "rows": rows}, out, indent=2, default=str)
-        out.write("\n")
+        write_json(model.name, rows, out)
     else:
         out.write(f"model {model.name}: {model.num_variables} variables, {len(model.cliques)} cliques\n")
-        out.write(_rows_table(rows) + "\n")
-        if any("state_fidelity" in r for r in rows):
+        out.write(rows_table(rows) + "\n")
+        if any("state_fidelity" in r or r.get("method") for r in rows):
             out.write(CAUTION + "\n")
     failed = [r for r in rows if r.get("error")]
     return EXIT_FAILED_ROWS if failed and len(failed) == len(rows) else EXIT_OK
 
 
 def _write_circuits(tasks: list[dict], rows: list[dict], folder: Path) -> None:
-    """Recompile each connectivity's best row deterministically and write QASM 3 + QPY."""
-    from compiler.ansatz import build_ansatz
-    from compiler.compile import compile_ansatz, qasm3_text, qpy_bytes
-    from compiler.model import Model
-    from compiler.targets import get_gate_set, make_connectivity
+    """Write each connectivity's compiled circuit as QASM 3 and QPY (the QPY keeps the layout).
+
+    ``rows[i]`` is the row of ``tasks[i]``. A local run keeps the circuit it compiled in the row
+    (``keep_circuit``); rows from a server carry none, so those are compiled again here, with
+    the same task and seed, hence the same circuit."""
+    import base64
+
+    from qiskit import qasm3, qpy  # circuit files only when --qasm-dir asks for them
+
+    from toposcout.compiler.study import run_task
 
     folder.mkdir(parents=True, exist_ok=True)
     done = set()
-    for t in tasks:
-        spec = t["connectivity"]
-        m = Model.from_dict(t["model"])
-        conn = make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"])
-        if conn.name in done:
+    for t, row in zip(tasks, rows):
+        name = row.get("connectivity")
+        if not name or name in done or row.get("error"):
             continue
-        done.add(conn.name)
-        a = build_ansatz(m, family=t.get("family", "clique"), layers=t.get("layers", 1), seed=t.get("seed", 0))
-        c = compile_ansatz(a, conn, get_gate_set(t.get("gate_set", "cx")), strategy=t.get("strategy", "auto"),
-                           seeds=t.get("seeds", 5))
-        (folder / f"{conn.name}.qasm").write_text(qasm3_text(c), encoding="utf-8")
-        (folder / f"{conn.name}.qpy").write_bytes(qpy_bytes(c))
+        done.add(name)
+        data = row.get("circuit_qpy_b64") or run_task({**t, "compile_only": True, "keep_circuit": True}).get(
+            "circuit_qpy_b64")
+        if not data:
+            continue
+        raw = base64.b64decode(data)
+        (circuit,) = qpy.load(io.BytesIO(raw))
+        (folder / f"{name}.qasm").write_text(qasm3.dumps(circuit), encoding="utf-8")
+        (folder / f"{name}.qpy").write_bytes(raw)
 
 
 def _targets(out) -> int:
-    from compiler.targets import connectivity_catalogue, gate_set_catalogue
+    from toposcout.compiler.targets import connectivity_catalogue, gate_set_catalogue
 
     out.write("Connectivities (FAMILY[:SIZE]):\n")
     for name, e in connectivity_catalogue().items():
@@ -235,7 +237,7 @@ def _targets(out) -> int:
     for name, e in gate_set_catalogue().items():
         out.write(f"  {name:<11} {e['description']}\n")
     try:
-        from compiler.profiles import profile_catalogue
+        from toposcout.compiler.profiles import profile_catalogue
     except ImportError:
         return EXIT_OK
     out.write("\nDevice profiles (--profile NAME or a TOML file; typical values from memory, not a real device):\n")
@@ -261,15 +263,13 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
         if args.command == "targets":
             return _targets(out)
         if args.command == "bench":
-            from service.bench import run_cli
-
-            return run_cli(args, out, err)
+            return _bench(args, out, err)
         if args.command == "serve":
-            from service.api import serve
+            from toposcout.service.api.server import serve
 
             return serve(host=args.host, port=args.port, allow_remote=args.allow_remote, err=err)
         if args.command == "worker":
-            from service.dask_executor import run_worker
+            from toposcout.service.execution.dask import run_worker
 
             return run_worker(args.scheduler, nworkers=args.nworkers, memory_limit=args.memory_limit,
                               threads=args.threads, host=args.host, name=args.name)

@@ -2,12 +2,12 @@
 
 Two lines from a notebook::
 
-    from service.client import Client
+    from toposcout.service.client import Client
     df = Client("http://127.0.0.1:8000").compare("examples/orchard-frost.json", ["line", "grid"])
 
 Exceptions::
 
-    compiler.errors.ToposcoutError
+    toposcout.compiler.errors.ToposcoutError
      └── ToposcoutClientError     every failure of the client: an error answer of the server,
                                   a refused connection, a time-out, a model it cannot read
 
@@ -27,7 +27,7 @@ from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import httpx
 
-from compiler.errors import ToposcoutError
+from toposcout.compiler.errors import ToposcoutError
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
@@ -43,7 +43,7 @@ _FINAL = ("done", "failed", "cancelled")
 class ToposcoutClientError(ToposcoutError):
     """A request to the server failed; ``.message`` is the server's message (or why no answer came).
 
-    A :class:`compiler.errors.ToposcoutError`, so callers that handle toposcout's errors
+    A :class:`toposcout.compiler.errors.ToposcoutError`, so callers that handle toposcout's errors
     (the CLI does) handle this one too.
     """
 
@@ -67,7 +67,7 @@ def model_payload(model: Any) -> tuple[Any, str | None]:
 
     model: a path (str or Path) of a JSON, UAI or node-link file; a dict in our JSON model
         format or node-link form; a networkx graph (the cliques are its maximal cliques; sent
-        as node-link JSON); a ``compiler.model.Model``; or the text of a UAI or JSON model.
+        as node-link JSON); a ``toposcout.compiler.model.Model``; or the text of a UAI or JSON model.
     """
     try:
         import networkx as nx
@@ -199,7 +199,8 @@ class Client:
         profile: default None: the server's default profile.
         options: further request fields (``noise_scales``, ``compile_only``, ``gate_set``,
             ``strategy``, ``seeds``, ``family``, ``layers``, ``seed``, ``max_order``,
-            ``fidelity_target``); the server validates them and says what is wrong.
+            ``fidelity_target``, ``method``, ``time_budget_seconds``, ``trajectories``,
+            ``precision``); the server validates them and says what is wrong.
         """
         payload, fmt = model_payload(model)
         body: dict[str, Any] = {"model": payload, "model_format": options.pop("model_format", fmt)}
@@ -230,7 +231,7 @@ class Client:
 
     def run_tasks(self, model: Any, tasks: Sequence[Mapping[str, Any]], *, progress: bool = False,
                   timeout: float | None = None) -> list[dict]:
-        """Run the study that ``compiler.study.make_tasks`` built as ``tasks`` on the server.
+        """Run the study that ``toposcout.compiler.study.make_tasks`` built as ``tasks`` on the server.
 
         This is what ``toposcout compare --server URL`` calls. The tasks are turned back into
         one request (their connectivities, noise scales and shared options); the rows come
@@ -267,7 +268,8 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
             "a profile read from a local file cannot be sent to a server; name one of the server's profiles "
             "(GET /v1/profiles lists them) or run without --server", field="profile")
     body: dict[str, Any] = {"connectivities": conns, "noise_scales": scales}
-    for key in ("gate_set", "strategy", "seeds", "family", "layers", "seed", "compile_only", "fidelity_target"):
+    for key in ("gate_set", "strategy", "seeds", "family", "layers", "seed", "compile_only", "fidelity_target",
+                "method", "time_budget_seconds", "trajectories", "precision"):
         if key in first:
             body[key] = first[key]
     if profile is not None:

@@ -2,7 +2,7 @@
 
 Every field can be set as ``TOPOSCOUT_<FIELD>`` (upper case), e.g. ``TOPOSCOUT_DATABASE_URL``,
 ``TOPOSCOUT_TOKENS="alice:tok1,bob:tok2"``, ``TOPOSCOUT_TASK_TIME_LIMIT_SECONDS=120``. Tests build
-a ``Settings(...)`` directly and hand it to :func:`service.api.create_app`.
+a ``Settings(...)`` directly and hand it to :func:`toposcout.service.api.app.create_app`.
 
 The default store is the SQLite file ``toposcout.db`` (WAL mode) in :attr:`Settings.data_dir`
 (``$TOPOSCOUT_DATA_DIR``, else ``$XDG_DATA_HOME/toposcout``, else ``~/.local/share/toposcout``).
@@ -11,22 +11,25 @@ The default store is the SQLite file ``toposcout.db`` (WAL mode) in :attr:`Setti
 from __future__ import annotations
 
 import os
+import re
 from pathlib import Path
+from typing import Iterable
 
 from pydantic import Field, SecretStr
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
-__all__ = ["Settings", "default_data_dir"]
+from toposcout.compiler.errors import ToposcoutError
+from toposcout.service.execution.threads import default_workers
+
+__all__ = ["Settings", "default_data_dir", "parse_tokens"]
+
+_OWNER = re.compile(r"^[A-Za-z0-9_.@-]{1,64}$")
 
 
 def default_data_dir() -> Path:
     """``$XDG_DATA_HOME/toposcout`` or ``~/.local/share/toposcout``."""
     base = os.environ.get("XDG_DATA_HOME") or str(Path.home() / ".local" / "share")
     return Path(base) / "toposcout"
-
-
-def _default_workers() -> int:
-    return max(1, min(2, os.cpu_count() or 1))
 
 
 class Settings(BaseSettings):
@@ -48,7 +51,7 @@ class Settings(BaseSettings):
     tokens_file: Path | None = Field(default=None, description="a file with one owner:token per line")
 
     # --- execution
-    workers: int = Field(default_factory=_default_workers, ge=1, le=64,
+    workers: int = Field(default_factory=default_workers, ge=1, le=64,
                          description="local worker processes (default: cores, at most 2)")
     task_time_limit_seconds: float = Field(default=900.0, gt=0, description="wall time one task may take")
     compile_time_limit_seconds: float = Field(default=60.0, gt=0,
@@ -81,11 +84,34 @@ class Settings(BaseSettings):
 
     def token_table(self) -> dict[str, str]:
         """token -> owner from ``tokens`` and ``tokens_file`` (empty: no authentication)."""
-        from service.auth import parse_tokens
-
         lines: list[str] = []
         if self.tokens is not None:
             lines += self.tokens.get_secret_value().split(",")
         if self.tokens_file is not None:
             lines += self.tokens_file.read_text(encoding="utf-8").splitlines()
         return parse_tokens(lines)
+
+
+def parse_tokens(lines: Iterable[str]) -> dict[str, str]:
+    """token -> owner from ``owner:token`` entries; blank entries and ``#`` comments skipped.
+
+    >>> parse_tokens(["alice:alice-tok-1", " # comment", "", "bob:bob-tok-22"])
+    {'alice-tok-1': 'alice', 'bob-tok-22': 'bob'}
+    """
+    table: dict[str, str] = {}
+    for n, raw in enumerate(lines, 1):
+        line = raw.split("#", 1)[0].strip()
+        if not line:
+            continue
+        owner, sep, token = line.partition(":")
+        owner, token = owner.strip(), token.strip()
+        if not sep or not token or not _OWNER.match(owner):
+            raise ToposcoutError(f"token entry {n}: expected owner:token with an owner of letters, digits "
+                                 "and _.@- (the token itself is not shown)", field="tokens")
+        if len(token) < 8:
+            raise ToposcoutError(f"token entry {n} (owner {owner}): a token needs at least 8 characters",
+                                 field="tokens")
+        if token in table:
+            raise ToposcoutError(f"token entry {n} (owner {owner}): the same token is given twice", field="tokens")
+        table[token] = owner
+    return table

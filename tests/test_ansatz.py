@@ -11,9 +11,9 @@ import scipy.linalg
 from qiskit import QuantumCircuit
 from qiskit.quantum_info import Operator
 
-from compiler.ansatz import append_term, build_ansatz
-from compiler.errors import ModelError
-from compiler.model import parse_model
+from toposcout.compiler.ansatz import append_term, build_ansatz
+from toposcout.compiler.errors import ModelError
+from toposcout.compiler.model import parse_model
 
 Z = np.diag([1.0, -1.0])
 I2 = np.eye(2)

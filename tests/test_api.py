@@ -4,15 +4,14 @@ from __future__ import annotations
 
 import io
 import logging
-import time
 
 import pytest
 from fastapi.testclient import TestClient
 
-from service.api import _RedactTokens, create_app, serve
-from service.auth import parse_tokens
-from service.settings import Settings
-from tests.service_support import SMALL_MODEL
+from toposcout.service.api.app import create_app
+from toposcout.service.api.server import _RedactTokens, serve
+from toposcout.service.api.auth import parse_tokens
+from toposcout.service.settings import Settings
 
 UAI = "MARKOV\n3\n2 2 2\n2\n2 0 1\n2 1 2\n4\n1 2 3 4\n4\n2 1 1 2\n"
 
@@ -23,16 +22,6 @@ def client(tmp_path_factory):
     with TestClient(create_app(settings)) as c:
         c.headers["Authorization"] = "Bearer carol-secret-1"
         yield c
-
-
-def _wait(c: TestClient, sid: str) -> dict:
-    end = time.monotonic() + 90
-    while time.monotonic() < end:
-        body = c.get(f"/v1/studies/{sid}").json()
-        if body["status"] in ("done", "failed", "cancelled"):
-            return body
-        time.sleep(0.1)
-    raise AssertionError(body)
 
 
 def test_openapi_documents_every_error_response(client):
@@ -63,20 +52,20 @@ def test_every_endpoint_but_healthz_needs_the_token(client):
     assert r.status_code == 401 and "carol-secret" not in r.text
 
 
-def test_uploaded_model_file_runs_and_records_its_owner(client):
+def test_uploaded_model_file_runs_and_records_its_owner(client, wait_study):
     r = client.post("/v1/studies", files={"file": ("door-chain.uai", UAI.encode())},
                     data={"compile_only": "true", "connectivities": ["line", "ring"], "seeds": "1"})
     assert r.status_code == 202, r.text
-    study = _wait(client, r.json()["id"])
+    study = wait_study(client, r.json()["id"])
     assert study["owner"] == "carol" and study["model_name"] == "door-chain"
     assert study["request"]["compile_only"] is True and len(study["rows"]) == 2
     assert all(row["status"] == "done" for row in study["rows"])
 
 
-def test_model_given_as_json_text_and_as_nodelink(client):
+def test_model_given_as_json_text_and_as_nodelink(client, small_model):
     import json
 
-    text = json.dumps(SMALL_MODEL)
+    text = json.dumps(small_model)
     r = client.post("/v1/compile", json={"model": text, "connectivities": ["line"], "seeds": 1})
     assert r.status_code == 200 and r.json()["rows"][0]["variables"] == 4
     nodelink = {"directed": False, "multigraph": False, "graph": {}, "nodes": [{"id": "p"}, {"id": "q"}],
@@ -86,8 +75,8 @@ def test_model_given_as_json_text_and_as_nodelink(client):
     assert r.json()["rows"][0]["variables"] == 2
 
 
-def test_compile_endpoint_caps_its_targets(client):
-    r = client.post("/v1/compile", json={"model": SMALL_MODEL, "connectivities": ["line"] * 7})
+def test_compile_endpoint_caps_its_targets(client, small_model):
+    r = client.post("/v1/compile", json={"model": small_model, "connectivities": ["line"] * 7})
     assert r.status_code == 422 and r.json()["field"] == "connectivities" and "cap of 6" in r.json()["detail"]
 
 

@@ -11,7 +11,6 @@ import math
 import shutil
 import subprocess
 import sys
-import threading
 import time
 import uuid
 from concurrent.futures import ThreadPoolExecutor
@@ -19,19 +18,16 @@ from concurrent.futures import ThreadPoolExecutor
 import httpx
 import pytest
 
-from compiler.study import make_tasks, run_task
-from tests.service_support import K6, SMALL_MODEL, Server, comparable, fresh_postgres_database, wait_study
+from toposcout.compiler.study import make_tasks, run_task
 
 ALICE, BOB = "alice-token-0001", "bob-token-000002"
 TOKENS = f"alice:{ALICE},bob:{BOB}"
 
 
 @pytest.fixture(scope="module")
-def server(tmp_path_factory):
-    tmp = tmp_path_factory.mktemp("server")
-    srv = Server(tmp, env={"TOPOSCOUT_TOKENS": TOKENS, "TOPOSCOUT_WORKERS": "2",
-                           "TOPOSCOUT_MAX_BODY_BYTES": str(4 * 2**20)})
-    with srv:
+def server(tmp_path_factory, start_server):
+    with start_server(tmp_path_factory.mktemp("server"), tokens=TOKENS, workers=2,
+                      env={"TOPOSCOUT_MAX_BODY_BYTES": str(4 * 2**20)}) as srv:
         yield srv
 
 
@@ -57,8 +53,8 @@ def _same(a, b) -> bool:
     return a == b
 
 
-def test_end_to_end_rows_equal_the_library(alice):
-    body = {"model": SMALL_MODEL, "connectivities": ["line", "grid:2x2", "all-to-all"], "seeds": 2,
+def test_end_to_end_rows_equal_the_library(alice, small_model, comparable, wait_study):
+    body = {"model": small_model, "connectivities": ["line", "grid:2x2", "all-to-all"], "seeds": 2,
             "noise_scales": [1.0]}
     r = alice.post("/v1/studies", json=body)
     assert r.status_code == 202, r.text
@@ -68,7 +64,7 @@ def test_end_to_end_rows_equal_the_library(alice):
     study = wait_study(alice, created["id"])
     assert study["status"] == "done" and study["owner"] == "alice" and study["model_name"] == "tri-chain"
     # the library's own result for the same input (default options, the same seeds)
-    expected = [run_task(t) for t in make_tasks(SMALL_MODEL, body["connectivities"], seeds=2)]
+    expected = [run_task(t) for t in make_tasks(small_model, body["connectivities"], seeds=2)]
     for got, want in zip(study["rows"], expected):
         assert got["status"] == "done" and got["cached"] is False
         assert "state_fidelity" in got and "circuit_qpy_b64" not in got
@@ -86,7 +82,7 @@ def test_end_to_end_rows_equal_the_library(alice):
     qasm = alice.get(f"/v1/studies/{created['id']}/circuits/0.qasm")
     assert qasm.status_code == 200 and qasm.text.startswith("OPENQASM 3")
     qpy = alice.get(f"/v1/studies/{created['id']}/circuits/0.qpy")
-    from compiler.compile import load_qpy
+    from toposcout.compiler.compile import load_qpy
 
     circuit = load_qpy(qpy.content)
     assert circuit.count_ops().get("cx", 0) == study["rows"][0]["two_qubit_gates"]
@@ -100,13 +96,13 @@ def test_end_to_end_rows_equal_the_library(alice):
     assert 'toposcout_studies{status="done"}' in metrics and "toposcout_task_duration_seconds_count" in metrics
 
 
-def test_compile_endpoint_and_catalogues(alice):
-    r = alice.post("/v1/compile", json={"model": SMALL_MODEL, "connectivities": ["ring"], "seeds": 1})
+def test_compile_endpoint_and_catalogues(alice, small_model):
+    r = alice.post("/v1/compile", json={"model": small_model, "connectivities": ["ring"], "seeds": 1})
     assert r.status_code == 200, r.text
     row = r.json()["rows"][0]
-    want = run_task(make_tasks(SMALL_MODEL, ["ring"], seeds=1, compile_only=True)[0])
+    want = run_task(make_tasks(small_model, ["ring"], seeds=1, compile_only=True)[0])
     assert row["two_qubit_gates"] == want["two_qubit_gates"] and row["depth"] == want["depth"]
-    assert alice.post("/v1/compile", json={"model": SMALL_MODEL, "connectivities": ["ring"], "seeds": 1}
+    assert alice.post("/v1/compile", json={"model": small_model, "connectivities": ["ring"], "seeds": 1}
                       ).json()["rows"][0]["cached"] is True
     assert {c["name"] for c in alice.get("/v1/connectivities").json()["connectivities"]} >= {"line", "grid"}
     assert alice.get("/v1/profiles").json()["default"] == "superconducting"
@@ -126,6 +122,20 @@ K14 = {"name": "k14", "variables": [f"x{i}" for i in range(14)], "cliques": [[f"
 J = {"content-type": "application/json"}
 
 # (name, method, path, request kwargs, auth (alice|bob|none|bad), status, substring of detail, field)
+#: stands for the small model in the table below (filled in by the test from the fixture)
+SMALL = "<the small model>"
+
+
+def _fill(value, model):
+    if value == SMALL:
+        return model
+    if isinstance(value, dict):
+        return {k: _fill(v, model) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_fill(v, model) for v in value]
+    return value
+
+
 BAD = [
     ("broken JSON", "POST", "/v1/studies", {"content": b'{"model": ', "headers": J}, "alice", 422, "not valid JSON", "body"),
     ("NaN literal", "POST", "/v1/studies", {"content": b'{"model": NaN}', "headers": J}, "alice", 422, "NaN", "body"),
@@ -138,44 +148,50 @@ BAD = [
     ("array body", "POST", "/v1/studies", {"json": [1, 2]}, "alice", 422, "expected a JSON object", "body"),
     ("not UTF-8", "POST", "/v1/studies", {"content": b'{"model": "\xff\xfe"}', "headers": J}, "alice", 422, "UTF-8", "body"),
     ("nested too deeply", "POST", "/v1/studies", {"content": _nested(100_000), "headers": J}, "alice", 422, "nested", "body"),
-    ("seeds is a string", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "seeds": "five"}}, "alice", 422,
+    ("seeds is a string", "POST", "/v1/studies", {"json": {"model": SMALL, "seeds": "five"}}, "alice", 422,
      "seeds", "seeds"),
-    ("seeds is false", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "seeds": False}}, "alice", 422, "seeds", "seeds"),
-    ("compile_only is a string", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "compile_only": "yes"}}, "alice",
+    ("seeds is false", "POST", "/v1/studies", {"json": {"model": SMALL, "seeds": False}}, "alice", 422, "seeds", "seeds"),
+    ("compile_only is a string", "POST", "/v1/studies", {"json": {"model": SMALL, "compile_only": "yes"}}, "alice",
      422, "compile_only", "compile_only"),
-    ("layers zero", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "layers": 0}}, "alice", 422, "layers", "layers"),
-    ("unknown field", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "colour": "red"}}, "alice", 422, "colour", "colour"),
+    ("layers zero", "POST", "/v1/studies", {"json": {"model": SMALL, "layers": 0}}, "alice", 422, "layers", "layers"),
+    ("unknown field", "POST", "/v1/studies", {"json": {"model": SMALL, "colour": "red"}}, "alice", 422, "colour", "colour"),
     ("missing model", "POST", "/v1/studies", {"json": {"seeds": 2}}, "alice", 422, "model", "model"),
     ("duplicate variables", "POST", "/v1/studies", {"json": {"model": {"variables": ["a", "a"]}}}, "alice", 422,
      "duplicate", "model.variables[1]"),
     ("broken UAI", "POST", "/v1/studies", {"json": {"model": "MARKOV\n2\n2 2\n1\n3 0 1\n", "model_format": "uai"}},
      "alice", 422, "line", "model"),
-    ("40 variables simulated", "POST", "/v1/studies", {"json": {"model": V40}}, "alice", 422, "max_active_qubits",
-     "model.variables"),
+    ("40 variables, density matrix forced", "POST", "/v1/studies", {"json": {"model": V40, "method": "density-matrix"}},
+     "alice", 422, "max_active_qubits", "method"),
+    ("unknown method", "POST", "/v1/studies", {"json": {"model": V40, "method": "magic"}}, "alice", 422, "method",
+     "method"),
+    ("precision out of range", "POST", "/v1/studies", {"json": {"model": V40, "precision": 1.5}}, "alice", 422,
+     "precision", "precision"),
+    ("no trajectories", "POST", "/v1/studies", {"json": {"model": V40, "trajectories": 0}}, "alice", 422,
+     "trajectories", "trajectories"),
     ("200 variables", "POST", "/v1/studies", {"json": {"model": V200, "compile_only": True}}, "alice", 422, "variables", None),
     ("clique of 25 variables", "POST", "/v1/studies", {"json": {"model": K25, "compile_only": True}}, "alice", 422,
      "clique", None),
     ("order over the cap", "POST", "/v1/studies", {"json": {"model": K14, "compile_only": True}}, "alice", 422,
      "max_order=12", "max_order"),
-    ("unknown connectivity", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "connectivities": ["moebius"]}},
+    ("unknown connectivity", "POST", "/v1/studies", {"json": {"model": SMALL, "connectivities": ["moebius"]}},
      "alice", 422, "unknown connectivity family", "connectivities[0]"),
-    ("model does not fit", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "connectivities": ["line:3"]}},
+    ("model does not fit", "POST", "/v1/studies", {"json": {"model": SMALL, "connectivities": ["line:3"]}},
      "alice", 422, "at least 4", "connectivity"),
     ("server file as connectivity", "POST", "/v1/studies",
-     {"json": {"model": SMALL_MODEL, "connectivities": ["custom:/etc/passwd"]}}, "alice", 422, "reads no files",
+     {"json": {"model": SMALL, "connectivities": ["custom:/etc/passwd"]}}, "alice", 422, "reads no files",
      "connectivities[0]"),
-    ("huge connectivity", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "connectivities": ["line:9999"]}},
+    ("huge connectivity", "POST", "/v1/studies", {"json": {"model": SMALL, "connectivities": ["line:9999"]}},
      "alice", 422, "max_physical_qubits", "connectivities[0]"),
     ("negative custom edge", "POST", "/v1/studies",
-     {"json": {"model": SMALL_MODEL, "connectivities": [{"family": "custom", "edges": [[0, -1]]}]}}, "alice", 422,
+     {"json": {"model": SMALL, "connectivities": [{"family": "custom", "edges": [[0, -1]]}]}}, "alice", 422,
      ">= 0", "connectivities[0].edges"),
-    ("unknown gate set", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "gate_set": "magic"}}, "alice", 422,
+    ("unknown gate set", "POST", "/v1/studies", {"json": {"model": SMALL, "gate_set": "magic"}}, "alice", 422,
      "unknown gate set", "gate_set"),
-    ("profile as a path", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "profile": "../../etc/passwd"}},
+    ("profile as a path", "POST", "/v1/studies", {"json": {"model": SMALL, "profile": "../../etc/passwd"}},
      "alice", 422, "unknown profile", "profile"),
-    ("negative noise scale", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "noise_scales": [-1.0]}}, "alice",
+    ("negative noise scale", "POST", "/v1/studies", {"json": {"model": SMALL, "noise_scales": [-1.0]}}, "alice",
      422, "noise_scales[0]", "noise_scales[0]"),
-    ("too many noise scales", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL, "noise_scales": [1.0] * 100}},
+    ("too many noise scales", "POST", "/v1/studies", {"json": {"model": SMALL, "noise_scales": [1.0] * 100}},
      "alice", 422, "noise_scales", "noise_scales"),
     ("50 MB body", "POST", "/v1/studies", {"content": b" " * (50 * 2**20), "headers": J}, "alice", 413, "limit", "body"),
     ("path traversal in file name", "POST", "/v1/studies", {"files": {"file": ("../../etc/passwd.uai", UAI_OK.encode())}},
@@ -184,14 +200,14 @@ BAD = [
      "alice", 422, "unknown form field", "evil"),
     ("wrong content type", "POST", "/v1/studies", {"content": b"model", "headers": {"content-type": "text/plain"}},
      "alice", 415, "Content-Type", None),
-    ("no token", "POST", "/v1/studies", {"json": {"model": SMALL_MODEL}}, "none", 401, "token", None),
+    ("no token", "POST", "/v1/studies", {"json": {"model": SMALL}}, "none", 401, "token", None),
     ("unknown token", "GET", "/v1/studies", {}, "bad", 401, "unknown token", None),
     ("not a bearer header", "GET", "/v1/studies", {"headers": {"Authorization": "Basic YWxpY2U6eA=="}}, "raw", 401,
      "Bearer", None),
     ("another user's token cancels", "DELETE", "/v1/studies/{alice_study}", {}, "bob", 403, "only its owner", "study_id"),
     ("unknown study", "GET", "/v1/studies/" + "0" * 32, {}, "alice", 404, "no study", "study_id"),
     ("reused idempotency key", "POST", "/v1/studies",
-     {"json": {"model": SMALL_MODEL, "seeds": 3}, "headers": {"Idempotency-Key": "fixed-key-1"}}, "alice", 409,
+     {"json": {"model": SMALL, "seeds": 3}, "headers": {"Idempotency-Key": "fixed-key-1"}}, "alice", 409,
      "different request", "Idempotency-Key"),
     ("limit too large", "GET", "/v1/studies", {"params": {"limit": 1000}}, "alice", 422, "limit", "limit"),
     ("unknown status filter", "GET", "/v1/studies", {"params": {"status": "bogus"}}, "alice", 422, "status", "status"),
@@ -200,9 +216,9 @@ BAD = [
 ]
 
 
-def test_bad_and_hostile_requests_get_a_4xx_naming_the_problem(server, alice, bob):
+def test_bad_and_hostile_requests_get_a_4xx_naming_the_problem(server, alice, bob, small_model, wait_study):
     assert len(BAD) >= 25
-    first = alice.post("/v1/studies", json={"model": SMALL_MODEL, "compile_only": True, "connectivities": ["line"],
+    first = alice.post("/v1/studies", json={"model": small_model, "compile_only": True, "connectivities": ["line"],
                                             "seeds": 1}, headers={"Idempotency-Key": "fixed-key-1"})
     assert first.status_code == 202
     sid = first.json()["id"]
@@ -211,7 +227,7 @@ def test_bad_and_hostile_requests_get_a_4xx_naming_the_problem(server, alice, bo
     failures = []
     for name, method, path, kwargs, who, status, needle, field in BAD:
         path = path.replace("{alice_study}", sid)
-        kwargs = dict(kwargs)
+        kwargs = _fill(dict(kwargs), small_model)
         if who in clients:
             r = clients[who].request(method, path, **kwargs)
         else:
@@ -236,10 +252,10 @@ def test_bad_and_hostile_requests_get_a_4xx_naming_the_problem(server, alice, bo
     assert ALICE not in server.log() and BOB not in server.log()  # nor logged
 
 
-def test_429_with_retry_after_when_a_token_has_too_many_unfinished_studies(tmp_path):
-    with Server(tmp_path, env={"TOPOSCOUT_MAX_ACTIVE_STUDIES_PER_OWNER": "1", "TOPOSCOUT_WORKERS": "1"}) as srv, \
+def test_429_with_retry_after_when_a_token_has_too_many_unfinished_studies(tmp_path, k6_model, start_server):
+    with start_server(tmp_path, workers=1, env={"TOPOSCOUT_MAX_ACTIVE_STUDIES_PER_OWNER": "1"}) as srv, \
             httpx.Client(base_url=srv.url, timeout=30) as c:
-        slow = {"model": K6, "connectivities": ["line"], "seeds": 1, "fidelity_target": 0.5}
+        slow = {"model": k6_model, "connectivities": ["line"], "seeds": 1, "fidelity_target": 0.5}
         first = c.post("/v1/studies", json=slow)
         assert first.status_code == 202
         r = c.post("/v1/studies", json={**slow, "seed": 1})
@@ -251,8 +267,8 @@ def test_429_with_retry_after_when_a_token_has_too_many_unfinished_studies(tmp_p
         assert c.get(f"/v1/studies/{first.json()['id']}").json()["status"] == "cancelled"  # the record stays
 
 
-def test_200_submissions_from_20_clients(server, alice):
-    body = {"model": SMALL_MODEL, "connectivities": ["line", "ring"], "compile_only": True, "seeds": 1, "seed": 11}
+def test_200_submissions_from_20_clients(server, alice, small_model, wait_study):
+    body = {"model": small_model, "connectivities": ["line", "ring"], "compile_only": True, "seeds": 1, "seed": 11}
     warm = alice.post("/v1/studies", json=body).json()
     wait_study(alice, warm["id"])  # later submissions are answered from the cache
     before = alice.get("/v1/studies", params={"limit": 1}).json()["total"]
@@ -286,17 +302,15 @@ def test_200_submissions_from_20_clients(server, alice):
 
 
 @pytest.mark.parametrize("backend", ["sqlite", "postgresql"])
-def test_restart_after_sigkill_loses_nothing(tmp_path, backend):
-    with (fresh_postgres_database() if backend == "postgresql" else contextlib.nullcontext(None)) as pg_url:
-        env = {"TOPOSCOUT_WORKERS": "2"}
-        if pg_url:
-            env["TOPOSCOUT_DATABASE_URL"] = pg_url
-        srv = Server(tmp_path, env=env).start()
+def test_restart_after_sigkill_loses_nothing(tmp_path, backend, k6_model, small_model, postgres_database,
+                                             start_server, wait_study):
+    with (postgres_database() if backend == "postgresql" else contextlib.nullcontext(None)) as pg_url:
+        srv = start_server(tmp_path, workers=2, database_url=pg_url)
         try:
             c = httpx.Client(base_url=srv.url, timeout=30)
-            slow = {"model": K6, "connectivities": ["line", "ring", "grid"], "seeds": 1}
+            slow = {"model": k6_model, "connectivities": ["line", "ring", "grid"], "seeds": 1}
             a = c.post("/v1/studies", json=slow).json()
-            b = c.post("/v1/studies", json={"model": SMALL_MODEL, "compile_only": True, "seed": 4,
+            b = c.post("/v1/studies", json={"model": small_model, "compile_only": True, "seed": 4,
                                             "connectivities": ["line", "ring"]}).json()
             end = time.monotonic() + 60
             while c.get(f"/v1/studies/{a['id']}").json()["progress"]["done"] < 1:
@@ -304,7 +318,7 @@ def test_restart_after_sigkill_loses_nothing(tmp_path, backend):
                 time.sleep(0.1)
             srv.kill()  # SIGKILL the server and its workers mid-study
             c.close()
-            srv2 = Server(tmp_path, env=env, port=srv.port).start()
+            srv2 = srv.restarted()
             try:
                 with httpx.Client(base_url=srv2.url, timeout=30) as c2:
                     sa, sb = wait_study(c2, a["id"], 120), wait_study(c2, b["id"], 60)

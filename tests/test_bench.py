@@ -9,9 +9,9 @@ from itertools import combinations
 
 import pytest
 
-from compiler.ansatz import build_ansatz
-from compiler.model import parse_model
-from service.bench import (
+from toposcout.compiler.ansatz import build_ansatz
+from toposcout.compiler.model import parse_model
+from toposcout.compiler.bench import (
     lower_bound,
     plaquette_model,
     random_clique_model,
@@ -19,7 +19,7 @@ from service.bench import (
     suite_models,
     triangle_model,
 )
-from service.cli import main
+from toposcout.service.cli import main
 
 
 def distinct_order2(cliques) -> int:
@@ -93,8 +93,8 @@ def test_ratios_are_computed_from_the_counts(quick):
             assert p["qiskit_best"] <= g["two_qubit_gates"]
             assert p["structured_over_qiskit_best"] == pytest.approx(s["two_qubit_gates"] / p["qiskit_best"],
                                                                      abs=1e-4)
-    # the issue's 3x3 plaquette figures are used where the quick suite has them
-    assert any(p["qiskit_best_source"] and "issue" in p["qiskit_best_source"] for p in doc["pairs"])
+    # the reference 3x3 plaquette figures are used where the quick suite has them
+    assert any(p["qiskit_best_source"] and "reference" in p["qiskit_best_source"] for p in doc["pairs"])
 
     cons = [p for p in doc["pairs"] if p["family"] != "all-to-all"]
     med = doc["medians"]
@@ -120,8 +120,8 @@ def test_checks_follow_the_cells(quick):
     assert checks["structured_compile_under_2s_to_16_variables"]["ok"] is (max(st) < 2.0)
 
 
-def test_generators_match_the_issue_models():
-    # LB column of the issue's table: 40, 59, 24, 30
+def test_generators_match_the_suite_models():
+    # LB column of the suite table measured with qiskit (README): 40, 59, 24, 30
     assert [lower_bound(m) for m in (plaquette_model(3, 3), plaquette_model(3, 4), triangle_model(3, 3),
                                      ring_triples_model(10))] == [40, 59, 24, 30]
     assert len(triangle_model(3, 3)["cliques"]) == 8

@@ -17,8 +17,6 @@ from urllib.parse import urlparse
 import httpx
 import pytest
 
-from tests.live_server import start_server
-
 CHROMIUM = "/usr/bin/chromium"
 ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
         "--disable-component-update", "--disable-sync", "--no-first-run"]
@@ -44,7 +42,7 @@ def _require_browser():
 
 
 @pytest.fixture(scope="module")
-def server(tmp_path_factory):
+def server(tmp_path_factory, start_server):
     _require_browser()
     s = start_server(tmp_path_factory.mktemp("browser-server"), tokens=f"carol:{TOKEN}")
     yield s
@@ -230,7 +228,7 @@ def test_connectivity_drawing_marks_the_placed_variables(submitted, context, ser
 def test_downloaded_circuits_are_valid(submitted, context, server, tmp_path):
     from qiskit import qasm3, qpy
 
-    from service.store import Store
+    from toposcout.service.store import Store
 
     page = context.new_page()
     page.goto(f"{server.url}/studies/{submitted['id']}")

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from service.cli import main
+from toposcout.service.cli import main
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -106,7 +106,7 @@ def test_missing_file_message():
 def test_console_script_runs_without_traceback(tmp_path):
     # The installed entry point, as a user runs it: a bad file gives a message and exit 2.
     path = write(tmp_path, "m.json", {"variables": ["a", "a"]})
-    proc = subprocess.run([sys.executable, "-m", "service.cli", "compare", path], capture_output=True, text=True,
+    proc = subprocess.run([sys.executable, "-m", "toposcout.service.cli", "compare", path], capture_output=True, text=True,
                           cwd=ROOT)
     assert proc.returncode == 2
     assert "duplicate variable name" in proc.stderr and "Traceback" not in proc.stderr
@@ -183,13 +183,18 @@ def test_unknown_profile_name(tmp_path):
     assert code == 2 and "quantum-toaster" in err
 
 
-def test_over_budget_row_fails_with_advice(tmp_path):
+def test_over_budget_forced_density_matrix_is_refused_and_auto_falls_back(tmp_path):
     path = write(tmp_path, "m.json", SMALL)
+    # forced density-matrix: no row could run (one qubit per variable is already over): exit 2 before work
     code, out, err = run("compare", path, "-c", "line", "--strategy", "generic", "--seeds", "1",
-                         "--memory-budget", "0.00001", "--json")
-    rows = json.loads(out)["rows"]
-    assert code == 1  # every row failed
-    assert all("compile-only" in r["error"] and "GiB" in r["error"] for r in rows)
+                         "--memory-budget", "0.00001", "--method", "density-matrix", "--json")
+    assert code == 2 and "density-matrix" in err and "GiB" in err and "trajectories" in err
+    # auto: the row is computed by another method and says why
+    code, out, err = run("compare", path, "-c", "line", "--strategy", "generic", "--seeds", "1",
+                         "--memory-budget", "0.00001", "--precision", "0.1", "--json")
+    (row,) = json.loads(out)["rows"]
+    assert code == 0 and row["error"] is None and row["noise_error"] is None
+    assert row["method"] == "trajectories" and "over the memory budget" in row["method_reason"]
 
 
 def test_custom_connectivity_from_the_example_edge_list():

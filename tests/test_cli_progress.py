@@ -17,7 +17,7 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
-CMD = [sys.executable, "-m", "service.cli", "compare", str(ROOT / "examples" / "warehouse-doors.uai"),
+CMD = [sys.executable, "-m", "toposcout.service.cli", "compare", str(ROOT / "examples" / "warehouse-doors.uai"),
        "-c", "line", "-c", "ring", "--compile-only", "--strategy", "generic", "--seeds", "1"]
 BAR = re.compile(rb"toposcout:\s+\d+%\|.*\d+/2 \[")  # tqdm's bar: "toposcout:  0%|   | 0/2 ["
 

@@ -11,17 +11,15 @@ import networkx as nx
 import pandas as pd
 import pytest
 
-from service import cli
-from service.client import API_ONLY_COLUMNS, Client, StudyHandle, ToposcoutClientError, model_payload
-from tests.live_server import start_server
+from toposcout.service import cli
+from toposcout.service.client import API_ONLY_COLUMNS, Client, StudyHandle, ToposcoutClientError, model_payload
 
 TOKEN = "alice-secret-token"
-MODEL = {"name": "kite", "variables": ["a", "b", "c", "d"], "cliques": [["a", "b", "c"], ["c", "d"]]}
 UAI = "MARKOV\n3\n2 2 2\n2\n2 0 1\n2 1 2\n\n4\n1.0 0.5 0.5 1.0\n\n4\n1.0 0.5 0.5 1.0\n"
 
 
 @pytest.fixture(scope="module")
-def server(tmp_path_factory):
+def server(tmp_path_factory, start_server):
     s = start_server(tmp_path_factory.mktemp("client-server"), tokens=f"alice:{TOKEN},bob:bob-secret-token")
     yield s
     s.stop()
@@ -45,8 +43,8 @@ def _same(a, b) -> bool:
     return a == b
 
 
-def test_dataframe_equals_the_api_rows(server, client):
-    df = client.compare(MODEL, ["line", "grid", "all-to-all"], compile_only=True, strategy="generic", seeds=1,
+def test_dataframe_equals_the_api_rows(server, client, small_model):
+    df = client.compare(small_model, ["line", "grid", "all-to-all"], compile_only=True, strategy="generic", seeds=1,
                         progress=False)
     assert isinstance(df, pd.DataFrame) and len(df) == 3
     study_id = client.studies(limit=1)["items"][0]["id"]
@@ -66,8 +64,8 @@ def test_dataframe_equals_the_api_rows(server, client):
     assert list(df["connectivity"]) == ["line-4", "grid-2x2", "all-to-all-4"]
 
 
-def test_handle_waits_with_a_progress_bar(client, capsys):
-    h = client.submit(MODEL, ["line"], compile_only=True, seeds=1, strategy="generic")
+def test_handle_waits_with_a_progress_bar(client, capsys, small_model):
+    h = client.submit(small_model, ["line"], compile_only=True, seeds=1, strategy="generic")
     assert isinstance(h, StudyHandle) and len(h.id) >= 8
     assert h.wait(progress=True, timeout=60) is h
     assert h.status == "done" and h.progress == (1, 1)
@@ -79,7 +77,7 @@ def test_handle_waits_with_a_progress_bar(client, capsys):
 
 
 @pytest.mark.parametrize("kind", ["networkx", "uai-text", "uai-path", "json-path", "json-text"])
-def test_model_may_be_a_graph_uai_text_or_a_path(client, server, tmp_path, kind):
+def test_model_may_be_a_graph_uai_text_or_a_path(client, server, tmp_path, kind, small_model):
     if kind == "networkx":
         g = nx.Graph([("p", "q"), ("q", "r"), ("r", "p"), ("r", "s")])
         model, cliques = g, {frozenset("pqr"), frozenset("rs")}
@@ -90,7 +88,7 @@ def test_model_may_be_a_graph_uai_text_or_a_path(client, server, tmp_path, kind)
             model.write_text(UAI)
         cliques = {frozenset({"v0", "v1"}), frozenset({"v1", "v2"})}
     else:
-        model = json.dumps(MODEL)
+        model = json.dumps(small_model)
         if kind == "json-path":
             (tmp_path / "kite.json").write_text(model)
             model = str(tmp_path / "kite.json")
@@ -101,12 +99,12 @@ def test_model_may_be_a_graph_uai_text_or_a_path(client, server, tmp_path, kind)
     assert h.wait(progress=False, timeout=60).status == "done"
 
 
-def test_a_server_error_carries_the_servers_message(server, client):
-    body = {"model": MODEL, "connectivities": ["line", "moebius"], "compile_only": True}
+def test_a_server_error_carries_the_servers_message(server, client, small_model):
+    body = {"model": small_model, "connectivities": ["line", "moebius"], "compile_only": True}
     raw = httpx.post(f"{server.url}/v1/studies", json=body, headers={"Authorization": f"Bearer {TOKEN}"})
     assert raw.status_code == 422
     with pytest.raises(ToposcoutClientError) as info:
-        client.submit(MODEL, ["line", "moebius"], compile_only=True)
+        client.submit(small_model, ["line", "moebius"], compile_only=True)
     e = info.value
     assert e.status == 422
     assert e.message == raw.json()["detail"] and "moebius" in e.message
@@ -121,18 +119,16 @@ def test_an_unknown_study_is_a_clean_404(client):
 
 
 @pytest.mark.parametrize("token", ["not-a-real-token", None])
-def test_a_wrong_or_missing_token_fails_cleanly(server, token):
+def test_a_wrong_or_missing_token_fails_cleanly(server, token, small_model):
     with Client(server.url, token=token) as c:
         with pytest.raises(ToposcoutClientError) as info:
-            c.submit(MODEL, ["line"], compile_only=True)
+            c.submit(small_model, ["line"], compile_only=True)
     assert info.value.status == 401
     assert "token" in info.value.message
     assert TOKEN not in str(info.value)
 
 
-def test_an_unreachable_server_is_a_client_error(server):
-    from tests.live_server import free_port
-
+def test_an_unreachable_server_is_a_client_error(server, free_port):
     with Client(f"http://127.0.0.1:{free_port()}", timeout=2) as c:
         with pytest.raises(ToposcoutClientError) as info:
             c.studies()
@@ -156,25 +152,25 @@ def test_injected_http_client_is_used(server):
     http.close()
 
 
-def test_cli_compare_on_a_server_gives_the_local_rows(server, tmp_path):
+def test_cli_compare_on_a_server_gives_the_local_rows(server, tmp_path, small_model):
     path = tmp_path / "kite.json"
-    path.write_text(json.dumps(MODEL))
+    path.write_text(json.dumps(small_model))
     args = ["compare", str(path), "-c", "line", "-c", "grid", "--compile-only", "--strategy", "generic",
             "--seeds", "1", "--json"]
     local_out, remote_out, err = io.StringIO(), io.StringIO(), io.StringIO()
     assert cli.main(args, out=local_out, err=err) == 0, err.getvalue()
     assert cli.main(args + ["--server", server.url, "--token", TOKEN], out=remote_out, err=err) == 0, err.getvalue()
     local, remote = json.loads(local_out.getvalue()), json.loads(remote_out.getvalue())
-    assert remote["model"] == local["model"] == "kite"
+    assert remote["model"] == local["model"] == small_model["name"]
     for lr, rr in zip(local["rows"], remote["rows"]):
         assert not set(API_ONLY_COLUMNS) & set(rr)
         for k in ("connectivity", "two_qubit_gates", "depth", "swaps", "layout", "final_layout"):
             assert rr[k] == lr[k], k
 
 
-def test_cli_compare_on_a_server_with_a_wrong_token_is_a_clean_error(server, tmp_path):
+def test_cli_compare_on_a_server_with_a_wrong_token_is_a_clean_error(server, tmp_path, small_model):
     path = tmp_path / "kite.json"
-    path.write_text(json.dumps(MODEL))
+    path.write_text(json.dumps(small_model))
     out, err = io.StringIO(), io.StringIO()
     code = cli.main(["compare", str(path), "-c", "line", "--compile-only", "--server", server.url, "--token", "nope"],
                     out=out, err=err)

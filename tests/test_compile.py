@@ -6,17 +6,17 @@ import numpy as np
 import pytest
 from qiskit.quantum_info import Operator
 
-from compiler.ansatz import build_ansatz
-from compiler.compile import check_coupling, compile_ansatz, load_qpy, qasm3_text, qpy_bytes
-from compiler.errors import CompileError
-from compiler.model import load_model, parse_model
-from compiler.targets import BUILTIN_FAMILIES, GATE_SETS, get_gate_set, make_connectivity
-from tests.conftest import compiled_distribution, logical_distribution
+from toposcout.compiler.ansatz import build_ansatz
+from toposcout.compiler.compile import check_coupling, compile_ansatz, load_qpy, qasm3_text, qpy_bytes
+from toposcout.compiler.errors import CompileError
+from toposcout.compiler.model import load_model, parse_model
+from toposcout.compiler.targets import BUILTIN_FAMILIES, GATE_SETS, get_gate_set, make_connectivity
 
 
 @pytest.mark.parametrize("strategy", ["generic", "auto"])
 @pytest.mark.parametrize("family", BUILTIN_FAMILIES)
-def test_compiled_distribution_equals_logical(example_path, family, strategy):
+def test_compiled_distribution_equals_logical(example_path, family, strategy, compiled_distribution,
+                                              logical_distribution):
     # Reference: qiskit.quantum_info.Statevector of the logical circuit; whatever layout and
     # routing did, the distribution over the model's variables must be unchanged (tol 1e-9).
     m = load_model(example_path)
@@ -32,7 +32,7 @@ def test_compiled_distribution_equals_logical(example_path, family, strategy):
 
 
 @pytest.mark.parametrize("gate_set", GATE_SETS)
-def test_every_gate_set_preserves_the_distribution(gate_set):
+def test_every_gate_set_preserves_the_distribution(gate_set, compiled_distribution, logical_distribution):
     m = parse_model({"variables": list("abcde"), "cliques": [list("abc"), list("cde")]})
     a = build_ansatz(m, seed=7, layers=2)
     c = compile_ansatz(a, make_connectivity("ring", 5), get_gate_set(gate_set), strategy="generic", seeds=2)

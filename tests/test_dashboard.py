@@ -4,13 +4,12 @@ from __future__ import annotations
 
 import html
 import re
-import time
 
 import pytest
 from fastapi.testclient import TestClient
 
-from service.api import create_app
-from service.settings import Settings
+from toposcout.service.api.app import create_app
+from toposcout.service.settings import Settings
 
 TOKEN = "dave-dashboard-token"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
@@ -33,22 +32,12 @@ def _submit(c: TestClient, **extra) -> str:
     return r.json()["id"]
 
 
-def _wait_done(c: TestClient, study_id: str) -> dict:
-    deadline = time.monotonic() + 60
-    while time.monotonic() < deadline:
-        s = c.get(f"/v1/studies/{study_id}", headers=AUTH).json()
-        if s["status"] in ("done", "failed", "cancelled"):
-            return s
-        time.sleep(0.2)
-    raise AssertionError(f"study {study_id} did not finish")
-
-
 @pytest.fixture(scope="module")
-def studies(app_client) -> list[str]:
+def studies(app_client, wait_study) -> list[str]:
     ids = [_submit(app_client, seed=i) for i in range(3)]
     ids += [_submit(app_client) for _ in range(19)]  # equal tasks: rows come from the cache
     for i in ids:
-        _wait_done(app_client, i)
+        wait_study(app_client, i, 60, headers=AUTH)
     return ids
 
 

@@ -7,9 +7,9 @@ import xml.etree.ElementTree as ET
 
 import pytest
 
-from compiler.errors import ToposcoutError
-from compiler.study import make_tasks, run_task
-from service import charts
+from toposcout.compiler.errors import ToposcoutError
+from toposcout.compiler.study import make_tasks, run_task
+from toposcout.service.web import charts
 
 SVG = "{http://www.w3.org/2000/svg}"
 MODEL = {"name": "kite", "variables": ["a", "b", "c", "d", "e"],

@@ -114,7 +114,7 @@ def test_readme_hpc_snippet_builds_the_job_script(monkeypatch):
         worker_line = next(line for line in script.splitlines() if "distributed.cli.dask_worker" in line)
         assert "--nthreads 1" in worker_line and "--nworkers 4" in worker_line
         assert "--memory-limit 4.00GiB" in worker_line
-        assert "--preload compiler.study" in worker_line and "--preload compiler.metrics" in worker_line
+        assert "--preload toposcout.compiler.study" in worker_line and "--preload toposcout.compiler.metrics" in worker_line
         assert f"export TOPOSCOUT_DASK_ADDRESS={cluster.scheduler_address}" in printed
         assert cluster.scheduler_address.startswith("tcp://127.0.0.1:")
     finally:

@@ -12,9 +12,9 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
-from compiler.errors import ToposcoutError  # noqa: E402
-from compiler.study import make_tasks, run_task  # noqa: E402
-from service.dask_executor import (  # noqa: E402
+from toposcout.compiler.errors import ToposcoutError  # noqa: E402
+from toposcout.compiler.study import make_tasks, run_task  # noqa: E402
+from toposcout.service.execution.dask import (  # noqa: E402
     WORKER_PRELOAD,
     DaskExecutor,
     parse_memory,
@@ -24,41 +24,6 @@ from service.dask_executor import (  # noqa: E402
 )
 
 WORKER_LIMIT = 2 * 2**30
-
-
-class MemoryStore:
-    """Stands in for the database: record_row is an upsert on (study_id, task_index)."""
-
-    def __init__(self):
-        self.rows: dict[tuple[str, int], dict] = {}
-        self.calls: Counter = Counter()
-        self.lock = threading.Lock()
-
-    def record_row(self, study_id, task_index, row, seconds, cached=False):
-        with self.lock:
-            self.calls[(study_id, task_index)] += 1
-            self.rows[(study_id, task_index)] = dict(row, _seconds=seconds)
-
-    def study_rows(self, study_id):
-        return {i: r for (s, i), r in self.rows.items() if s == study_id}
-
-
-def chain(n: int, name: str | None = None) -> dict:
-    v = [f"x{i}" for i in range(n)]
-    return {"name": name or f"chain{n}", "variables": v, "cliques": [[v[i], v[i + 1]] for i in range(n - 1)]}
-
-
-def deterministic(row: dict) -> dict:
-    return {k: v for k, v in row.items() if not k.endswith("_seconds") and not k.startswith("_")}
-
-
-def wait_for(pred, timeout=90.0, step=0.05):
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if pred():
-            return True
-        time.sleep(step)
-    return pred()
 
 
 @pytest.fixture(scope="module")
@@ -87,15 +52,15 @@ def make_executor(cluster):
         ex.shutdown()
 
 
-def test_twelve_tasks_equal_the_local_rows(make_executor):
-    tasks = make_tasks(chain(4), ["line", "ring", "grid", "all-to-all"], compile_only=True, seeds=2,
+def test_twelve_tasks_equal_the_local_rows(make_executor, chain_model, comparable, memory_store_class):
+    tasks = make_tasks(chain_model(4), ["line", "ring", "grid", "all-to-all"], compile_only=True, seeds=2,
                        strategy="auto")
-    tasks += make_tasks(chain(4), ["line", "ring", "grid", "all-to-all"], compile_only=True, seeds=2,
+    tasks += make_tasks(chain_model(4), ["line", "ring", "grid", "all-to-all"], compile_only=True, seeds=2,
                         strategy="generic", gate_set="cz")
-    tasks += make_tasks(chain(3), ["line", "ring", "grid", "all-to-all"], compile_only=False, seeds=1,
+    tasks += make_tasks(chain_model(3), ["line", "ring", "grid", "all-to-all"], compile_only=False, seeds=1,
                         strategy="generic", error_budget=False)
     assert len(tasks) == 12
-    store = MemoryStore()
+    store = memory_store_class()
     ex = make_executor(store)
     ex.submit("s12", list(enumerate(tasks)))
     assert ex.wait_idle(120)
@@ -103,8 +68,8 @@ def test_twelve_tasks_equal_the_local_rows(make_executor):
     assert sorted(got) == list(range(12))
     assert all(n == 1 for n in store.calls.values())
     for i, task in enumerate(tasks):
-        local = deterministic(run_task(task))
-        remote = deterministic(got[i])
+        local = comparable(run_task(task))
+        remote = comparable(got[i])
         assert remote.get("error") is None, remote.get("error")
         assert remote.keys() == local.keys()
         for k, v in local.items():
@@ -125,10 +90,10 @@ def _worker_running(client, prefix):
     return None
 
 
-def test_sigkill_a_worker_mid_task_loses_nothing(make_executor, cluster):
-    tasks = make_tasks(chain(8), ["line", "ring", "grid", "all-to-all"], noise_scales=[1.0, 2.0], seeds=1,
+def test_sigkill_a_worker_mid_task_loses_nothing(make_executor, cluster, chain_model, wait_until, memory_store_class):
+    tasks = make_tasks(chain_model(8), ["line", "ring", "grid", "all-to-all"], noise_scales=[1.0, 2.0], seeds=1,
                        strategy="generic")
-    store = MemoryStore()
+    store = memory_store_class()
     ex = make_executor(store)
     client = ex.client
     before = {addr: pid for addr, pid in client.run(os.getpid).items()}
@@ -148,7 +113,7 @@ def test_sigkill_a_worker_mid_task_loses_nothing(make_executor, cluster):
             return True
         return False
 
-    assert wait_for(executing, timeout=60, step=0.1)
+    assert wait_until(executing, timeout=60, step=0.1)
     victim_addr, victim_key = hit
     victim_index = int(str(victim_key).split("-")[2])
     assert ("kill", victim_index) not in store.rows, "the kill must land while the task runs"
@@ -159,17 +124,17 @@ def test_sigkill_a_worker_mid_task_loses_nothing(make_executor, cluster):
     assert set(store.calls.values()) == {1}, "every row exactly once"
     assert all(r["error"] is None and r["simulated_qubits"] == 8 for r in rows.values())
     # the nanny brought a new process up in place of the killed one
-    assert wait_for(lambda: len(client.scheduler_info()["workers"]) == 2, timeout=150)
+    assert wait_until(lambda: len(client.scheduler_info()["workers"]) == 2, timeout=150)
     assert before[victim_addr] not in client.run(os.getpid).values()
 
 
-def test_restart_while_the_cluster_computes(make_executor):
+def test_restart_while_the_cluster_computes(make_executor, chain_model, wait_until, memory_store_class):
     """The executor (server side) goes away mid-study; a new one resubmits what the store lacks."""
-    tasks = make_tasks(chain(8), ["line", "ring", "grid"], noise_scales=[1.0, 2.0], seeds=1, strategy="generic")
-    store = MemoryStore()
+    tasks = make_tasks(chain_model(8), ["line", "ring", "grid"], noise_scales=[1.0, 2.0], seeds=1, strategy="generic")
+    store = memory_store_class()
     first = make_executor(store)
     first.submit("rs", list(enumerate(tasks)))
-    assert wait_for(lambda: len(store.rows) >= 2, timeout=90)
+    assert wait_until(lambda: len(store.rows) >= 2, timeout=90)
     first.shutdown()
     done_at_restart = set(store.study_rows("rs"))
     assert len(done_at_restart) < len(tasks), "the restart must happen while tasks remain"
@@ -184,41 +149,44 @@ def test_restart_while_the_cluster_computes(make_executor):
     assert second.stats["recorded"] == len(missing)
 
 
-def test_task_over_the_worker_memory_limit_is_refused_before_submission(make_executor):
+def test_task_over_the_worker_memory_limit_is_refused_before_submission(make_executor, chain_model, memory_store_class):
     budget = worker_memory_budget([WORKER_LIMIT])
-    big = make_tasks(chain(13, "big"), ["all-to-all"], seeds=1, strategy="generic")[0]
-    small = make_tasks(chain(3), ["all-to-all"], seeds=1, strategy="generic", error_budget=False)[0]
-    store = MemoryStore()
+    # forced density-matrix: the one method that needs the whole state in memory
+    big = dict(make_tasks(chain_model(13, "big"), ["all-to-all"], seeds=1, strategy="generic")[0],
+               method="density-matrix")
+    small = make_tasks(chain_model(3), ["all-to-all"], seeds=1, strategy="generic", error_budget=False)[0]
+    store = memory_store_class()
     ex = make_executor(store)
     ex.submit("mem", [(0, big), (1, small)])
     assert ex.wait_idle(60)
     rows = store.study_rows("mem")
     assert ex.stats["refused"] == 1 and ex.stats["submitted"] == 1
-    # the local path with the same budget gives the same message
+    # the local path with the same budget states the same fact; it keeps the compile figures
+    # it computed (noise_error), the refused task computed nothing (error)
     local = run_task(dict(big, memory_budget_bytes=budget))
-    assert local["error"] and "13 active qubits" in local["error"]
-    assert rows[0]["error"] == local["error"]
-    assert rows[0]["error_field"] == local["error_field"] == "memory_budget_bytes"
+    assert local["error"] is None and "13 active qubits" in local["noise_error"] and local["two_qubit_gates"] > 0
+    assert "13 active qubits" in rows[0]["error"] and "trajectories" in rows[0]["error"]
+    assert rows[0]["error_field"] == "memory_budget_bytes"
     assert rows[1]["error"] is None and rows[1]["memory_estimate_bytes"] <= budget
 
 
-def test_cancel_drops_pending_tasks(make_executor):
-    tasks = make_tasks(chain(6), ["line", "ring", "grid", "all-to-all"], noise_scales=[1.0, 2.0, 3.0], seeds=1,
+def test_cancel_drops_pending_tasks(make_executor, chain_model, wait_until, memory_store_class):
+    tasks = make_tasks(chain_model(6), ["line", "ring", "grid", "all-to-all"], noise_scales=[1.0, 2.0, 3.0], seeds=1,
                        strategy="generic", error_budget=False)
-    store = MemoryStore()
+    store = memory_store_class()
     ex = make_executor(store, max_in_flight=2)
     ex.submit("cx", list(enumerate(tasks)))
-    assert wait_for(lambda: ex.stats["submitted"] >= 2, timeout=30)
+    assert wait_until(lambda: ex.stats["submitted"] >= 2, timeout=30)
     ex.cancel("cx")
     assert ex.wait_idle(60)
     assert len(store.study_rows("cx")) < len(tasks)
     assert ex.stats["submitted"] <= 4, "bounded: at most max_in_flight on the scheduler"
 
 
-def test_bounded_in_flight(make_executor):
-    tasks = make_tasks(chain(3), ["line", "ring", "grid", "all-to-all"], compile_only=True, seeds=1,
+def test_bounded_in_flight(make_executor, chain_model, memory_store_class):
+    tasks = make_tasks(chain_model(3), ["line", "ring", "grid", "all-to-all"], compile_only=True, seeds=1,
                        strategy="generic") * 5
-    store = MemoryStore()
+    store = memory_store_class()
     ex = make_executor(store, max_in_flight=3)
     peak = 0
     stop = threading.Event()
@@ -241,15 +209,17 @@ def test_bounded_in_flight(make_executor):
 
 
 # --- pure helpers ----------------------------------------------------------------------
-def test_precheck_keeps_the_smaller_budget_and_skips_compile_only():
-    t = make_tasks(chain(3), ["line"], seeds=1)[0]
+def test_precheck_keeps_the_smaller_budget_and_skips_compile_only(chain_model):
+    t = make_tasks(chain_model(3), ["line"], seeds=1)[0]
     sent, refused = precheck_memory(t, 10**9)
     assert refused is None and sent["memory_budget_bytes"] == 10**9
     sent, _ = precheck_memory(dict(t, memory_budget_bytes=5 * 10**8), 10**9)
     assert sent["memory_budget_bytes"] == 5 * 10**8
     sent, refused = precheck_memory(dict(t, compile_only=True), 1)
     assert refused is None and sent.get("memory_budget_bytes") is None
-    _, refused = precheck_memory(t, 2**20)
+    sent, refused = precheck_memory(t, 2**20)  # method auto: the row picks a method that fits
+    assert refused is None and sent["memory_budget_bytes"] == 2**20
+    _, refused = precheck_memory(dict(t, method="density-matrix"), 2**20)
     assert refused["error_field"] == "memory_budget_bytes" and "3 active qubits" in refused["error"]
     assert refused["connectivity"] == "line" and refused["model"] == "chain3"
 
@@ -265,17 +235,17 @@ def test_helpers():
             parse_memory(bad)
 
 
-def test_no_address_is_a_clear_error():
+def test_no_address_is_a_clear_error(memory_store_class):
     with pytest.raises(ToposcoutError, match="TOPOSCOUT_DASK_ADDRESS"):
-        DaskExecutor(store=MemoryStore())
+        DaskExecutor(store=memory_store_class())
 
 
-def test_unreachable_scheduler_tasks_wait_and_the_reason_is_told():
-    ex = DaskExecutor(store=MemoryStore(), address="tcp://127.0.0.1:9", connect_timeout=1, retry_seconds=0.2)
+def test_unreachable_scheduler_tasks_wait_and_the_reason_is_told(chain_model, wait_until, memory_store_class):
+    ex = DaskExecutor(store=memory_store_class(), address="tcp://127.0.0.1:9", connect_timeout=1, retry_seconds=0.2)
     ex.start()
     try:
-        ex.submit("u", [(0, make_tasks(chain(3), ["line"], compile_only=True, seeds=1)[0])])
-        assert wait_for(lambda: ex.last_error is not None, timeout=30)
+        ex.submit("u", [(0, make_tasks(chain_model(3), ["line"], compile_only=True, seeds=1)[0])])
+        assert wait_until(lambda: ex.last_error is not None, timeout=30)
         assert ex.last_error.startswith("cannot reach the Dask scheduler at tcp://127.0.0.1:9: ")
         assert "retrying" in ex.last_error and ex.pending() == 1 and ex.client is None
     finally:
@@ -284,31 +254,30 @@ def test_unreachable_scheduler_tasks_wait_and_the_reason_is_told():
     assert time.monotonic() - t0 < 15
 
 
-class FlakyStore(MemoryStore):
-    """The database is unreachable for the first cache look-up and the first row write."""
+def test_a_store_hiccup_loses_no_task(make_executor, chain_model, memory_store):
+    class FlakyStore(type(memory_store)):
+        """The database is unreachable for the first cache look-up and the first row write."""
 
-    def __init__(self):
-        super().__init__()
-        self.failures = Counter()
+        def __init__(self):
+            super().__init__()
+            self.failures = Counter()
 
-    def task_keys(self, study_id):
-        return {0: "k0", 1: "k1"}
+        def task_keys(self, study_id):
+            return {0: "k0", 1: "k1"}
 
-    def cached_row(self, key):
-        if self.failures["cached_row"] == 0:
-            self.failures["cached_row"] += 1
-            raise OSError("database unreachable")
-        return None
+        def cached_row(self, key):
+            if self.failures["cached_row"] == 0:
+                self.failures["cached_row"] += 1
+                raise OSError("database unreachable")
+            return None
 
-    def record_row(self, study_id, task_index, row, seconds, cached=False):
-        if self.failures["record_row"] == 0:
-            self.failures["record_row"] += 1
-            raise OSError("database unreachable")
-        super().record_row(study_id, task_index, row, seconds, cached)
+        def record_row(self, study_id, task_index, row, seconds, cached=False):
+            if self.failures["record_row"] == 0:
+                self.failures["record_row"] += 1
+                raise OSError("database unreachable")
+            super().record_row(study_id, task_index, row, seconds, cached)
 
-
-def test_a_store_hiccup_loses_no_task(make_executor):
-    tasks = make_tasks(chain(3), ["line", "ring"], compile_only=True, seeds=1, strategy="generic")
+    tasks = make_tasks(chain_model(3), ["line", "ring"], compile_only=True, seeds=1, strategy="generic")
     store = FlakyStore()
     ex = make_executor(store)
     ex.submit("flaky", list(enumerate(tasks)))

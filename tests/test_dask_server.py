@@ -3,37 +3,28 @@
 from __future__ import annotations
 
 import time
-from pathlib import Path
 
 import httpx
 import pytest
 
 distributed = pytest.importorskip("distributed")
 
-from service.dask_executor import WORKER_PRELOAD  # noqa: E402
-from tests.live_server import LiveServer, start_server  # noqa: E402
+from toposcout.service.execution.dask import WORKER_PRELOAD  # noqa: E402
 
 
-def start_dask_server(folder: Path, scheduler: str, timeout: float = 90.0) -> LiveServer:
-    server = start_server(folder, timeout=timeout, env={"TOPOSCOUT_DASK_ADDRESS": scheduler})
+def _on_dask(server):
     health = httpx.get(server.url + "/healthz", timeout=5)
     assert health.json().get("executor") == "DaskExecutor", health.text
     return server
 
 
-def chain(n: int) -> dict:
-    v = [f"x{i}" for i in range(n)]
-    return {"name": f"chain{n}", "variables": v, "cliques": [[v[i], v[i + 1]] for i in range(n - 1)]}
-
-
-def test_server_killed_mid_study_and_restarted_completes(tmp_path):
+def test_server_killed_mid_study_and_restarted_completes(tmp_path, start_server, chain_model):
     cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, memory_limit="2GiB",
                                        host="127.0.0.1", dashboard_address=None, preload=list(WORKER_PRELOAD))
-    servers: list[LiveServer] = []
+    first = second = None
     try:
-        first = start_dask_server(tmp_path, cluster.scheduler_address)
-        servers.append(first)
-        body = {"model": chain(8), "connectivities": ["line", "ring", "grid", "all-to-all"],
+        first = _on_dask(start_server(tmp_path, env={"TOPOSCOUT_DASK_ADDRESS": cluster.scheduler_address}))
+        body = {"model": chain_model(8), "connectivities": ["line", "ring", "grid", "all-to-all"],
                 "noise_scales": [0.5, 2.0], "seeds": 1, "strategy": "generic"}
         r = httpx.post(first.url + "/v1/studies", json=body, timeout=30)
         assert r.status_code == 202, r.text
@@ -51,22 +42,22 @@ def test_server_killed_mid_study_and_restarted_completes(tmp_path):
             on_cluster = [k for ks in client.processing().values() for k in ks if str(k).startswith("toposcout-")]
         finally:
             client.close()
-        first.process.kill()  # no shutdown at all: the server dies while the cluster computes
-        first.process.wait(10)
+        first.proc.kill()  # no shutdown at all: the server dies while the cluster computes
+        first.proc.wait(10)
         assert on_cluster, "the kill must land while tasks run on the cluster"
-        second = start_dask_server(tmp_path, cluster.scheduler_address)
-        servers.append(second)
+        second = _on_dask(first.restarted())
         deadline = time.monotonic() + 150
         st = progress(second)
         while st["status"] not in ("done", "failed") and time.monotonic() < deadline:
             time.sleep(0.2)
             st = progress(second)
-        assert st["status"] == "done", (st["status"], st["progress"], second.log.read_text()[-3000:])
+        assert st["status"] == "done", (st["status"], st["progress"], second.log()[-3000:])
         indices = [row["task_index"] for row in st["rows"]]
         assert sorted(indices) == list(range(total))
         assert all(row["status"] == "done" and row["simulated_qubits"] == 8 for row in st["rows"])
         assert st["progress"] == {"done": total, "total": total}
     finally:
-        for s in servers:
-            s.stop()
+        for server in (first, second):
+            if server is not None:
+                server.stop()
         cluster.close()

@@ -13,37 +13,36 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
-from compiler.study import make_tasks  # noqa: E402
-from service.cli import main  # noqa: E402
-from service.dask_executor import DaskExecutor  # noqa: E402
-from tests.test_dask_executor import MemoryStore, chain, wait_for  # noqa: E402
+from toposcout.compiler.study import make_tasks  # noqa: E402
+from toposcout.service.cli import main  # noqa: E402
+from toposcout.service.execution.dask import DaskExecutor  # noqa: E402
 
 
-def test_worker_command_joins_with_its_memory_limit_and_threads(tmp_path):
+def test_worker_command_joins_with_its_memory_limit_and_threads(tmp_path, chain_model, wait_until, memory_store_class):
     cluster = distributed.LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address=None)
     proc = None
     try:
         log = open(tmp_path / "worker.log", "w")
-        proc = subprocess.Popen([sys.executable, "-m", "service.cli", "worker", cluster.scheduler_address,
+        proc = subprocess.Popen([sys.executable, "-m", "toposcout.service.cli", "worker", cluster.scheduler_address,
                                  "--nworkers", "2", "--memory-limit", "1GiB", "--threads", "1",
                                  "--host", "127.0.0.1", "--name", "probe"],
                                 stdout=log, stderr=subprocess.STDOUT, cwd=os.getcwd())
         client = distributed.Client(cluster.scheduler_address, set_as_default=False)
-        assert wait_for(lambda: len(client.scheduler_info()["workers"]) == 2, timeout=90), \
+        assert wait_until(lambda: len(client.scheduler_info()["workers"]) == 2, timeout=90), \
             (tmp_path / "worker.log").read_text()[-2000:]
         workers = client.scheduler_info()["workers"].values()
         assert sorted(w["name"] for w in workers) == ["probe-0", "probe-1"]
         assert all(w["memory_limit"] == 2**30 and w["nthreads"] == 1 for w in workers)
-        env = client.run(lambda: (os.environ.get("OMP_NUM_THREADS"), "compiler.metrics" in sys.modules))
+        env = client.run(lambda: (os.environ.get("OMP_NUM_THREADS"), "toposcout.compiler.metrics" in sys.modules))
         assert set(env.values()) == {("1", True)}, env
         client.close()
-        store = MemoryStore()
+        store = memory_store_class()
         ex = DaskExecutor(store=store, address=cluster.scheduler_address)
         ex.start()
         assert ex.wait_connected(60)
         try:
             # a simulating task carries half the 1 GiB limit as its budget
-            t = make_tasks(chain(3), ["line", "ring"], seeds=1, strategy="generic", error_budget=False)
+            t = make_tasks(chain_model(3), ["line", "ring"], seeds=1, strategy="generic", error_budget=False)
             ex.submit("w", list(enumerate(t)))
             assert ex.wait_idle(90)
         finally:
@@ -74,8 +73,8 @@ def test_worker_bad_input_is_a_clear_message(argv, message):
 
 
 def test_worker_unreachable_scheduler_is_a_clear_error():
-    from compiler.errors import ToposcoutError
-    from service.dask_executor import run_worker
+    from toposcout.compiler.errors import ToposcoutError
+    from toposcout.service.execution.dask import run_worker
 
     t0 = time.monotonic()
     with pytest.raises(ToposcoutError, match="cannot start a worker for the scheduler at tcp://127.0.0.1:9"):
@@ -83,19 +82,17 @@ def test_worker_unreachable_scheduler_is_a_clear_error():
     assert time.monotonic() - t0 < 40
 
 
-def test_executor_started_before_its_scheduler_catches_up():
+def test_executor_started_before_its_scheduler_catches_up(chain_model, free_port, wait_until, memory_store_class):
     """As in the compose file: the API may come up before the scheduler listens."""
-    from tests.live_server import free_port
-
     port = free_port()
-    store = MemoryStore()
+    store = memory_store_class()
     ex = DaskExecutor(store=store, address=f"tcp://127.0.0.1:{port}", connect_timeout=1, retry_seconds=0.3)
     ex.start()
     cluster = None
     try:
-        tasks = make_tasks(chain(3), ["line", "ring"], compile_only=True, seeds=1, strategy="generic")
+        tasks = make_tasks(chain_model(3), ["line", "ring"], compile_only=True, seeds=1, strategy="generic")
         ex.submit("late", list(enumerate(tasks)))
-        assert wait_for(lambda: ex.last_error is not None, timeout=30)
+        assert wait_until(lambda: ex.last_error is not None, timeout=30)
         assert ex.pending() == 2 and not store.rows
         cluster = distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
                                            scheduler_port=port, dashboard_address=None)
@@ -107,9 +104,7 @@ def test_executor_started_before_its_scheduler_catches_up():
             cluster.close()
 
 
-def test_scheduler_lost_mid_study_and_back_loses_nothing():
-    from tests.live_server import free_port
-
+def test_scheduler_lost_mid_study_and_back_loses_nothing(chain_model, free_port, wait_until, memory_store_class):
     port = free_port()
 
     def new_cluster():
@@ -117,15 +112,15 @@ def test_scheduler_lost_mid_study_and_back_loses_nothing():
                                         scheduler_port=port, dashboard_address=None)
 
     cluster = new_cluster()
-    store = MemoryStore()
+    store = memory_store_class()
     ex = DaskExecutor(store=store, address=f"tcp://127.0.0.1:{port}", connect_timeout=2, retry_seconds=0.5)
     ex.start()
     try:
         assert ex.wait_connected(60)
-        tasks = make_tasks(chain(8), ["line", "ring", "grid", "all-to-all"], noise_scales=[1.0, 2.0], seeds=1,
+        tasks = make_tasks(chain_model(8), ["line", "ring", "grid", "all-to-all"], noise_scales=[1.0, 2.0], seeds=1,
                            strategy="generic")
         ex.submit("lost", list(enumerate(tasks)))
-        assert wait_for(lambda: len(store.rows) >= 1, timeout=90)
+        assert wait_until(lambda: len(store.rows) >= 1, timeout=90)
         cluster.close()
         cluster = None
         left = len(tasks) - len(store.rows)

@@ -7,11 +7,10 @@ import time
 
 import pytest
 
-from compiler.study import make_tasks, run_task, task_key
-from service.executor import LocalExecutor
-from service.settings import Settings
-from service.store import Store
-from tests.service_support import K6, SMALL_MODEL, comparable
+from toposcout.compiler.study import make_tasks, run_task, task_key
+from toposcout.service.execution.local import LocalExecutor
+from toposcout.service.settings import Settings
+from toposcout.service.store import Store
 
 
 @pytest.fixture(scope="module")
@@ -30,24 +29,14 @@ def _study(store: Store, tasks: list[dict], tag: str) -> str:
     return s["id"], pending
 
 
-def _wait(store: Store, sid: str, timeout: float = 90.0) -> dict:
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        got = store.get_study(sid)
-        if got["status"] in ("done", "failed", "cancelled"):
-            return got
-        time.sleep(0.05)
-    raise AssertionError(f"study not finished: {store.get_study(sid, rows=False)}")
-
-
-def test_rows_equal_run_task_and_identical_work_is_shared(env):
+def test_rows_equal_run_task_and_identical_work_is_shared(env, small_model, comparable, wait_study):
     store, ex = env
-    tasks = make_tasks(SMALL_MODEL, ["line", "ring"], compile_only=True, seeds=2, keep_circuit=True)
+    tasks = make_tasks(small_model, ["line", "ring"], compile_only=True, seeds=2, keep_circuit=True)
     a, pa = _study(store, tasks, "a")
     b, pb = _study(store, tasks, "b")  # same tasks, submitted while a runs
     ex.submit(a, pa)
     ex.submit(b, pb)
-    ra, rb = _wait(store, a)["rows"], _wait(store, b)["rows"]
+    ra, rb = wait_study(store, a)["rows"], wait_study(store, b)["rows"]
     expected = [comparable(run_task(t)) for t in tasks]
     assert [comparable(r) for r in ra] == expected
     assert [comparable(r) for r in rb] == expected
@@ -55,16 +44,16 @@ def test_rows_equal_run_task_and_identical_work_is_shared(env):
     assert all(store.circuit(a, i) for i in range(len(tasks)))
 
 
-def test_time_limit_fails_the_row_with_the_reason_and_the_worker_is_replaced(env):
+def test_time_limit_fails_the_row_with_the_reason_and_the_worker_is_replaced(env, k6_model, small_model, wait_study):
     store, ex = env
-    slow = make_tasks(K6, ["line"], compile_only=False, seeds=1, fidelity_target=0.5)[0]  # several seconds
-    quick = make_tasks(SMALL_MODEL, ["grid"], compile_only=True, seeds=1)[0]
+    slow = make_tasks(k6_model, ["line"], compile_only=False, seeds=1, fidelity_target=0.5)[0]  # several seconds
+    quick = make_tasks(small_model, ["grid"], compile_only=True, seeds=1)[0]
     ex.time_limit = 1.0
     try:
         sid, pending = _study(store, [slow, quick], "limit")
         t0 = time.monotonic()
         ex.submit(sid, pending)
-        got = _wait(store, sid)
+        got = wait_study(store, sid)
     finally:
         ex.time_limit = 120.0
     slow_row, quick_row = got["rows"]
@@ -76,9 +65,9 @@ def test_time_limit_fails_the_row_with_the_reason_and_the_worker_is_replaced(env
     assert time.monotonic() - t0 < 60
 
 
-def test_cancel_stops_the_running_task_and_drops_queued_ones(env):
+def test_cancel_stops_the_running_task_and_drops_queued_ones(env, k6_model):
     store, ex = env
-    slow = make_tasks(K6, ["ring", "grid"], compile_only=False, seeds=1, fidelity_target=0.5, seed=7)
+    slow = make_tasks(k6_model, ["ring", "grid"], compile_only=False, seeds=1, fidelity_target=0.5, seed=7)
     sid, pending = _study(store, slow, "cancel")
     before = ex.stats["stopped"]
     ex.submit(sid, pending)
@@ -97,10 +86,10 @@ def test_cancel_stops_the_running_task_and_drops_queued_ones(env):
     assert got["status"] == "cancelled" and {r["status"] for r in got["rows"]} == {"cancelled"}
 
 
-def test_a_dead_worker_fails_only_its_row(env):
+def test_a_dead_worker_fails_only_its_row(env, k6_model, small_model, wait_study):
     store, ex = env
-    slow = make_tasks(K6, ["all-to-all"], compile_only=False, seeds=1, fidelity_target=0.5, seed=3)[0]
-    quick = make_tasks(SMALL_MODEL, ["line"], compile_only=True, seeds=1, seed=5)[0]
+    slow = make_tasks(k6_model, ["all-to-all"], compile_only=False, seeds=1, fidelity_target=0.5, seed=3)[0]
+    quick = make_tasks(small_model, ["line"], compile_only=True, seeds=1, seed=5)[0]
     sid, pending = _study(store, [slow, quick], "dead")
     ex.submit(sid, pending)
     end = time.monotonic() + 30
@@ -111,7 +100,7 @@ def test_a_dead_worker_fails_only_its_row(env):
     worker = ex._slots[0].proc
     assert worker is not None and worker.pid != os.getpid()  # tasks run in another process
     os.kill(worker.pid, 9)
-    got = _wait(store, sid)
+    got = wait_study(store, sid)
     assert got["rows"][0]["status"] == "failed" and got["rows"][0]["error_field"] == "worker"
     assert "exited" in got["rows"][0]["error"]
     assert got["rows"][1]["status"] == "done"

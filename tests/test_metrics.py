@@ -9,8 +9,8 @@ import pytest
 from qiskit.quantum_info import hellinger_fidelity as qiskit_hellinger
 from scipy.stats import entropy
 
-from compiler import build_ansatz, compile_ansatz, get_gate_set, make_connectivity, parse_model, target_distribution
-from compiler.metrics import (
+from toposcout.compiler import build_ansatz, compile_ansatz, get_gate_set, make_connectivity, parse_model, target_distribution
+from toposcout.compiler.metrics import (
     FIGURE_KEYS,
     apply_readout,
     esp,
@@ -22,8 +22,8 @@ from compiler.metrics import (
     threshold_two_qubit_error,
     total_variation_distance,
 )
-from compiler.noise import operation_errors, schedule
-from compiler.profiles import load_profile, parse_profile
+from toposcout.compiler.noise import operation_errors, schedule
+from toposcout.compiler.profiles import load_profile, parse_profile
 
 RNG = np.random.default_rng(7)
 
@@ -91,7 +91,7 @@ def setup_row(gate_set="cx", factors=False, n=4, family="line", size=None):
 
 
 def test_fidelities_decrease_with_noise_scale_and_are_one_at_zero():
-    # the issue: fidelity monotone in noise_scale; at scale 0 every fidelity is 1 within 1e-9
+    # requirement: fidelity monotone in noise_scale; at scale 0 every fidelity is 1 within 1e-9
     ansatz, compiled = setup_row(n=4, family="ring", size=5)
     rows = [noise_figures(compiled, ansatz, load_profile("superconducting", noise_scale=s), error_budget=False)
             for s in (0.0, 0.25, 0.5, 1.0, 2.0, 4.0)]

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import itertools
 import json
 import warnings
 
@@ -10,8 +9,8 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from compiler.errors import CapacityError, ModelError
-from compiler.model import Limits, load_model, model_schema, parse_model, target_distribution, to_uai
+from toposcout.compiler.errors import CapacityError, ModelError
+from toposcout.compiler.model import Limits, load_model, model_schema, parse_model, target_distribution, to_uai
 
 # A hand-written MARKOV file following the UAI competition format description
 # (preamble, cardinalities, function scopes, then one table per function with the last
@@ -232,7 +231,7 @@ def test_missing_file():
 
 def test_every_subset_counted():
     # Σ_k C(n, k) = 2^n − 1 non-empty subsets (binomial theorem).
-    from compiler.model import count_terms
+    from toposcout.compiler.model import count_terms
 
     assert count_terms([5], None) == 31
     assert count_terms([5], 2) == 15

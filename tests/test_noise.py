@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 from qiskit import ClassicalRegister, QuantumCircuit
 
-from compiler import build_ansatz, compile_ansatz, get_gate_set, make_connectivity, parse_model
-from compiler.metrics import apply_readout, probabilities_from_rho
-from compiler.noise import (
+from toposcout.compiler import build_ansatz, compile_ansatz, get_gate_set, make_connectivity, parse_model
+from toposcout.compiler.metrics import apply_readout, probabilities_from_rho
+from toposcout.compiler.noise import (
     NoiseSwitches,
     Scheduled,
     build_noise_model,
@@ -20,8 +20,8 @@ from compiler.noise import (
     schedule_circuit,
     strip_to_active,
 )
-from compiler.profiles import depolarizing_parameter, parse_profile
-from compiler.simulate import simulate_ideal, simulate_noisy
+from toposcout.compiler.profiles import depolarizing_parameter, parse_profile
+from toposcout.compiler.simulate import simulate_ideal, simulate_noisy
 from qiskit_aer import AerSimulator
 
 

@@ -8,9 +8,9 @@ import pytest
 from qiskit.quantum_info import average_gate_fidelity, process_fidelity
 from qiskit_aer.noise import depolarizing_error, thermal_relaxation_error
 
-from compiler.errors import ProfileError
-from compiler.noise import gate_error
-from compiler.profiles import (
+from toposcout.compiler.errors import ProfileError
+from toposcout.compiler.noise import gate_error
+from toposcout.compiler.profiles import (
     PROFILE_NAMES,
     DeviceProfile,
     depolarizing_parameter,
@@ -35,7 +35,7 @@ def base_dict(**over):
 
 
 def test_at_least_three_builtin_classes_marked_from_memory():
-    # the issue asks for superconducting-, trapped-ion- and one more device class, with values
+    # requirement: superconducting-, trapped-ion- and one more device class, with values
     # marked "from memory" and the gate-error convention stated in each file
     assert {"superconducting", "trapped_ion", "neutral_atom"} <= set(PROFILE_NAMES)
     for name in PROFILE_NAMES:
@@ -117,7 +117,7 @@ def test_dict_round_trip_is_plain_json():
 
 
 def test_user_profile_file_and_unknown_name(tmp_path):
-    # the issue: users can pass their own profile file; an unknown name lists the built-ins
+    # requirement: users can pass their own profile file; an unknown name lists the built-ins
     f = tmp_path / "mine.toml"
     f.write_text('name = "mine"\n[gates]\none_qubit_error = 1e-3\ntwo_qubit_error = 2e-2\n'
                  'one_qubit_ns = 20\ntwo_qubit_ns = 200\nmeasure_ns = 800\n'

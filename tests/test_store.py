@@ -1,4 +1,4 @@
-"""The store on SQLite and on PostgreSQL (every test runs on both; see service_support)."""
+"""The store on SQLite and on PostgreSQL (every test runs on both; fixtures in conftest)."""
 
 from __future__ import annotations
 
@@ -9,8 +9,7 @@ import threading
 import pytest
 from sqlalchemy import inspect, text
 
-from service.store import Store, StudyConflict, TooManyActive
-from tests.service_support import database_url, store  # noqa: F401  (fixtures)
+from toposcout.service.store import Store, StudyConflict, TooManyActive
 
 
 def _tasks(n: int, tag: str = "t") -> tuple[list[dict], list[str]]:

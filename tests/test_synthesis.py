@@ -1,4 +1,4 @@
-"""Tests of the structured strategy (compiler.synthesis).
+"""Tests of the structured strategy (toposcout.compiler.synthesis).
 
 References used by the checks:
 * exp(-i θ Z_S) as the matrix exponential of a Kronecker product of Pauli Z (Nielsen &
@@ -23,10 +23,10 @@ from hypothesis import strategies as st
 from qiskit import QuantumCircuit
 from qiskit.quantum_info import Operator, Statevector
 
-from compiler.ansatz import build_ansatz
-from compiler.errors import CompileError
-from compiler.model import parse_model
-from compiler.synthesis import (
+from toposcout.compiler.ansatz import build_ansatz
+from toposcout.compiler.errors import CompileError
+from toposcout.compiler.model import parse_model
+from toposcout.compiler.synthesis import (
     append_gates,
     block_circuit,
     candidate_placements,
@@ -36,10 +36,10 @@ from compiler.synthesis import (
     peel_to_permutation,
     synthesize_block,
 )
-from compiler.synthesis.block import sweep_block
-from compiler.synthesis.parity import fuse_zz
-from compiler.synthesis.sweep import group_supports, maximal_supports
-from compiler.targets import make_connectivity, get_gate_set
+from toposcout.compiler.synthesis.block import sweep_block
+from toposcout.compiler.synthesis.parity import fuse_zz
+from toposcout.compiler.synthesis.sweep import group_supports, maximal_supports
+from toposcout.compiler.targets import make_connectivity, get_gate_set
 
 Z = np.diag([1.0, -1.0])
 I2 = np.eye(2)
@@ -118,7 +118,7 @@ def check_block(terms, graph, placement, seed=0, slack=None, native_zz=False, gr
 def test_block_three_qubit_line_matches_expm():
     terms = [((0, 1), 0.3), ((1, 2), -0.2), ((0, 1, 2), 0.1), ((0,), 0.4)]
     b = check_block(terms, nx.path_graph(3), [0, 1, 2])
-    # LB = 3 parities of order >= 2 (from the issue's lower bound argument)
+    # LB = 3 parities of order >= 2 (the lower bound: each term of order >= 2 needs a two-qubit gate)
     assert b.cnots >= 3
 
 
@@ -298,7 +298,7 @@ def test_structured_distribution_equals_logical(name, family):
     out = compile_structured(ansatz, con, get_gate_set("cx"), seed=0)
     _two_qubit_on_edges(out)
     assert set(ins.operation.name for ins in out.circuit.data) <= {"cx", "rz", "sx", "x", "measure"}
-    # Statevector reference, tolerance 1e-9 (the issue's acceptance criterion)
+    # Statevector reference, tolerance 1e-9 (the acceptance tolerance)
     assert np.allclose(_compiled_probs(out), _logical_probs(ansatz), atol=1e-9)
 
 
@@ -349,8 +349,8 @@ def test_structured_beats_ladder_count_on_grid():
 
 
 def test_structured_rejects_too_small_connectivity():
-    from compiler.errors import TargetError
-    from compiler.targets import Connectivity
+    from toposcout.compiler.errors import TargetError
+    from toposcout.compiler.targets import Connectivity
 
     ansatz = build_ansatz(_model([[0, 1, 2]], 3))
     tiny = Connectivity("line-2", "line", 2, ((0, 1),), "2")
@@ -359,7 +359,7 @@ def test_structured_rejects_too_small_connectivity():
 
 
 def test_compile_error_is_a_toposcout_error():
-    from compiler.errors import ToposcoutError
+    from toposcout.compiler.errors import ToposcoutError
 
     assert issubclass(CompileError, ToposcoutError)
 
@@ -418,7 +418,7 @@ def test_property_compiled_distribution(n, seed, family):
 def test_structured_beats_generic_on_a_4x4_plaquette_grid_on_heavy_hex():
     # the comparison is qiskit's own preset pipeline (optimization level 3), which routes the
     # textbook ladders with SWAPs; the clique sweep must need fewer two-qubit gates
-    from compiler.compile import compile_generic
+    from toposcout.compiler.compile import compile_generic
 
     cliques = [[r * 4 + c, r * 4 + c + 1, r * 4 + c + 4, r * 4 + c + 5] for r in range(3) for c in range(3)]
     ansatz = build_ansatz(_model(cliques, 16))

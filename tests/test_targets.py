@@ -6,8 +6,8 @@ import networkx as nx
 import pytest
 from qiskit.transpiler import CouplingMap
 
-from compiler.errors import TargetError
-from compiler.targets import (
+from toposcout.compiler.errors import TargetError
+from toposcout.compiler.targets import (
     BUILTIN_FAMILIES,
     GATE_SETS,
     build_target,

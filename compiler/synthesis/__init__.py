@@ -11,18 +11,18 @@ wires is one ZZ gate.
 
 Examples:
     >>> import networkx as nx
-    >>> from compiler.synthesis import make_region, synthesize_block
+    >>> from toposcout.compiler.synthesis import make_region, synthesize_block
     >>> region = make_region(nx.path_graph(3), [0, 1, 2])
     >>> b = synthesize_block([((0, 1), 0.3), ((1, 2), 0.2), ((0, 1, 2), 0.1)], region, [0, 1, 2])
     >>> b.cnots <= 4, sorted(b.final_placement)
     (True, [0, 1, 2])
 """
 
-from compiler.synthesis.block import Block, Region, append_gates, block_circuit, make_region, sweep_block, synthesize_block
-from compiler.synthesis.linear import peel_to_permutation
-from compiler.synthesis.parity import ParityNetwork, synthesize_parities
-from compiler.synthesis.placement import candidate_placements, exact_embedding, interaction_graph
-from compiler.synthesis.structured import compile_structured, structured_layers
+from toposcout.compiler.synthesis.block import Block, Region, append_gates, block_circuit, make_region, sweep_block, synthesize_block
+from toposcout.compiler.synthesis.linear import peel_to_permutation
+from toposcout.compiler.synthesis.parity import ParityNetwork, synthesize_parities
+from toposcout.compiler.synthesis.placement import candidate_placements, exact_embedding, interaction_graph
+from toposcout.compiler.synthesis.structured import compile_structured, structured_layers
 
 __all__ = [
     "Block",

@@ -8,8 +8,8 @@ from typing import Sequence
 import networkx as nx
 from qiskit import QuantumCircuit
 
-from compiler.synthesis.parity import ZZ_MODES, ParityNetwork, cnot_count, fuse_zz, synthesize_parities, two_qubit_count
-from compiler.synthesis.steiner import SteinerCost, all_pairs_distances
+from toposcout.compiler.synthesis.parity import ZZ_MODES, ParityNetwork, cnot_count, fuse_zz, synthesize_parities, two_qubit_count
+from toposcout.compiler.synthesis.steiner import SteinerCost, all_pairs_distances
 
 __all__ = ["Block", "Region", "make_region", "synthesize_block", "block_circuit", "append_gates"]
 
@@ -158,8 +158,8 @@ def sweep_block(
     native_zz: bool = False,
     group: int = 0,
 ) -> Block:
-    """Like :func:`synthesize_block`, by the clique sweep of :mod:`compiler.synthesis.sweep`."""
-    from compiler.synthesis.sweep import sweep_parities
+    """Like :func:`synthesize_block`, by the clique sweep of :mod:`toposcout.compiler.synthesis.sweep`."""
+    from toposcout.compiler.synthesis.sweep import sweep_parities
 
     wire_of = {q: i for i, q in enumerate(region.qubits)}
     start = [wire_of[p] for p in placement]

@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import networkx as nx
 
-from compiler.synthesis.steiner import SteinerCost, steiner_tree
+from toposcout.compiler.synthesis.steiner import SteinerCost, steiner_tree
 
 __all__ = ["peel_to_permutation"]
 

@@ -13,7 +13,7 @@ is on a wire exactly when ``|z| = 1``. A CNOT ``c -> t`` maps every ``z`` with b
 to ``z ^ {c}`` (``A' = E A`` so ``z' = z E``). The map is a permutation exactly when every
 unit vector's ``z`` (a row of ``A^{-1}``) has one bit.
 
-Search. Greedy descent on the total Steiner cost (:mod:`compiler.synthesis.steiner`) of the
+Search. Greedy descent on the total Steiner cost (:mod:`toposcout.compiler.synthesis.steiner`) of the
 parities not yet produced, plus ``lam`` times the cost of the rows of ``A^{-1}`` (how far the
 map is from a permutation), in the spirit of the cost-driven algorithms of Vandaele,
 Martiel, Perdrix & Vuillot, "Phase polynomials synthesis algorithms for NISQ architectures
@@ -21,7 +21,7 @@ and beyond", 2022. When no CNOT lowers the total, the cheapest parity is forced:
 always a CNOT on an edge that lowers its own cost by one (merge a leaf of its spanning tree
 into its neighbour, or move the leaf one hop along a shortest path), so the loop ends. The
 map is finally brought to a permutation by greedy descent on the ``A^{-1}`` cost, then by
-:func:`compiler.synthesis.linear.peel_to_permutation`.
+:func:`toposcout.compiler.synthesis.linear.peel_to_permutation`.
 """
 
 from __future__ import annotations
@@ -30,8 +30,8 @@ import random
 from dataclasses import dataclass
 from typing import Sequence
 
-from compiler.synthesis.linear import peel_to_permutation
-from compiler.synthesis.steiner import SteinerCost, set_bits
+from toposcout.compiler.synthesis.linear import peel_to_permutation
+from toposcout.compiler.synthesis.steiner import SteinerCost, set_bits
 
 __all__ = ["ParityNetwork", "synthesize_parities", "invert_rows", "fuse_zz", "ZZ_MODES", "cnot_count",
            "two_qubit_count"]

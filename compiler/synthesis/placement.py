@@ -7,7 +7,7 @@ Candidates, best first:
    when they share a term) into the coupling graph, found with VF2 (Cordella, Foggia, Sansone
    & Vento 2004; rustworkx's implementation, with a call limit so it cannot run away);
 2. seeded greedy placements polished by local search, minimising the total Steiner cost of
-   the terms (:mod:`compiler.synthesis.steiner`): grow from a central qubit, always placing
+   the terms (:mod:`toposcout.compiler.synthesis.steiner`): grow from a central qubit, always placing
    the unplaced variable most tied to the placed ones on the free qubit that adds least
    cost; then move or swap single variables while that lowers the total.
 """
@@ -20,7 +20,7 @@ from typing import Sequence
 import networkx as nx
 import rustworkx as rx
 
-from compiler.synthesis.steiner import SteinerCost, all_pairs_distances
+from toposcout.compiler.synthesis.steiner import SteinerCost, all_pairs_distances
 
 __all__ = ["interaction_graph", "exact_embedding", "path_embedding", "placement_cost", "search_placement",
            "candidate_placements"]

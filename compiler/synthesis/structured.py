@@ -20,10 +20,10 @@ from qiskit.circuit.library import CXGate
 from qiskit.transpiler import PassManager
 from qiskit.transpiler.passes import BasisTranslator, InverseCancellation, Optimize1qGatesDecomposition
 
-from compiler.compiled import Compiled, check_coupling, measured_layout
-from compiler.errors import CompileError, TargetError
-from compiler.synthesis.block import Block, append_gates, make_region, sweep_block, synthesize_block
-from compiler.synthesis.placement import candidate_placements
+from toposcout.compiler.compiled import Compiled, check_coupling, measured_layout
+from toposcout.compiler.errors import CompileError, TargetError
+from toposcout.compiler.synthesis.block import Block, append_gates, make_region, sweep_block, synthesize_block
+from toposcout.compiler.synthesis.placement import candidate_placements
 
 __all__ = ["compile_structured", "structured_layers", "search_budget"]
 

@@ -1,6 +1,6 @@
 """Clique sweep: gather each clique's variables with SWAPs, then synthesise its terms locally.
 
-The global greedy of :mod:`compiler.synthesis.parity` moves parities, and moving a parity one
+The global greedy of :mod:`toposcout.compiler.synthesis.parity` moves parities, and moving a parity one
 hop costs CNOTs for that parity alone. On large sparse graphs it is cheaper to move the
 variables themselves: a SWAP (three CNOTs, two when one side holds a relay's ``|0>``, none
 when both do) moves everything a wire holds. This module walks through the model's cliques
@@ -11,7 +11,7 @@ Huggins, Rieffel & Whaley, "Generalized swap networks for near-term quantum comp
 left its variables.
 
 For each clique, chosen greedily as the one whose variables are currently cheapest to join
-(Steiner cost, :mod:`compiler.synthesis.steiner`):
+(Steiner cost, :mod:`toposcout.compiler.synthesis.steiner`):
 
 1. gather: SWAPs along coupling edges until the variables' Steiner tree has at most
    ``|C| + slack`` nodes (each step is the SWAP that lowers the clique's Steiner cost most,
@@ -26,8 +26,8 @@ from __future__ import annotations
 from collections import deque
 from typing import Sequence
 
-from compiler.synthesis.parity import ZZ_MODES, ParityNetwork, fuse_zz, synthesize_parities
-from compiler.synthesis.steiner import SteinerCost, all_pairs_distances, steiner_tree
+from toposcout.compiler.synthesis.parity import ZZ_MODES, ParityNetwork, fuse_zz, synthesize_parities
+from toposcout.compiler.synthesis.steiner import SteinerCost, all_pairs_distances, steiner_tree
 
 __all__ = ["maximal_supports", "sweep_parities"]
 
@@ -117,7 +117,7 @@ def sweep_parities(
         the caller or passed here too, then applied at the start).
     adj: adjacency lists of the region's wires (connected).
     start: variable i -> wire at the start. Wires holding no variable hold ``|0>``.
-    native_zz: passed to :func:`compiler.synthesis.parity.synthesize_parities`.
+    native_zz: passed to :func:`toposcout.compiler.synthesis.parity.synthesize_parities`.
     group: default 0 (one clique at a time); else overlapping cliques are merged into units
         of up to ``group`` variables (:func:`group_supports`), gathered and synthesised together,
         so that the local greedy can share CNOTs between them.

@@ -7,32 +7,14 @@ in-process. Rows come back in task order.
 
 from __future__ import annotations
 
-import os
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from multiprocessing import get_context
 from typing import Callable, Sequence
 
-from compiler.study import run_task
+from toposcout.compiler.study import run_task
+from toposcout.service.execution.threads import default_workers, limit_threads, threads_per_worker
 
-__all__ = ["run_tasks", "default_workers", "threads_per_worker", "limit_threads"]
-
-
-def default_workers() -> int:
-    """Worker processes used by default: the cores of this machine, at most 2."""
-    return max(1, min(2, os.cpu_count() or 1))
-
-
-def threads_per_worker(workers: int) -> int:
-    """Simulator threads for each of ``workers`` processes so that they share the cores
-    instead of oversubscribing them (each would otherwise take every core)."""
-    return max(1, (os.cpu_count() or 1) // max(1, workers))
-
-
-def limit_threads(threads: int) -> None:
-    """Cap the OpenMP/BLAS threads of this (fresh worker) process; call it before the
-    simulator is imported."""
-    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
-        os.environ[var] = str(threads)
+__all__ = ["run_tasks"]
 
 
 def run_tasks(
@@ -53,7 +35,7 @@ def run_tasks(
         workers = 1 if len(tasks) <= 1 or not simulate else min(default_workers(), len(tasks))
     bar = None
     if progress:
-        from tqdm import tqdm
+        from tqdm import tqdm  # only for a terminal bar
 
         bar = tqdm(total=len(tasks), unit="row", desc="toposcout", leave=False)
     rows: list[dict | None] = [None] * len(tasks)

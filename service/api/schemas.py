@@ -2,7 +2,7 @@
 
 Requests are strict (``false`` is not a number, unknown fields are refused) so a bad request
 becomes a 422 naming the field before any work starts. Responses document what the API
-returns; rows carry every field of a ``run_task`` row (see the README) plus ``task_index``,
+returns; rows carry the fields of a ``run_task`` row (``toposcout.compiler.rows``) plus ``task_index``,
 ``status`` and ``cached``.
 """
 
@@ -12,12 +12,17 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
+from toposcout.compiler.ansatz import FAMILIES
+from toposcout.compiler.compile import STRATEGIES
+from toposcout.compiler.rows import ROW_FIELDS
+from toposcout.service.store import ROW_STATES, STUDY_STATES
+
 __all__ = ["ConnectivitySpec", "StudyRequest", "ErrorBody", "Progress", "StudySummary", "StudyCreated",
            "Study", "StudyList", "Row", "CompileResponse", "Health", "ConnectivityList", "ProfileList",
            "StudyStatus", "RowStatus", "RowsDocument"]
 
-StudyStatus = Literal["queued", "running", "done", "failed", "cancelled"]
-RowStatus = Literal["pending", "done", "failed", "cancelled"]
+StudyStatus = Literal[STUDY_STATES]
+RowStatus = Literal[ROW_STATES]
 
 _STRICT = ConfigDict(strict=True, extra="forbid", allow_inf_nan=False)
 
@@ -49,19 +54,30 @@ class StudyRequest(BaseModel):
         default=None, min_length=1, max_length=64,
         description="default null: every built-in family, sized to the model")
     gate_set: str = Field(default="cx", max_length=32)
-    strategy: Literal["generic", "structured", "auto"] = "auto"
+    strategy: Literal[STRATEGIES] = "auto"
     profile: str | dict[str, Any] | None = Field(
         default=None, description="a built-in profile name, or a profile object; null: the default profile")
     noise_scales: list[float] = Field(default_factory=lambda: [1.0], min_length=1, max_length=64,
                                       description="one row per connectivity and scale; every error rate x scale")
     compile_only: bool = Field(default=False, description="skip the noise simulation")
     seeds: int = Field(default=5, ge=1, le=16, description="transpiler seeds tried by the generic strategy")
-    family: Literal["clique", "pairwise"] = "clique"
+    family: Literal[FAMILIES] = "clique"
     layers: int = Field(default=1, ge=1, le=8)
     seed: int = Field(default=0, ge=0, le=2**31 - 1, description="seed of the random angles")
     max_order: int | None = Field(default=None, ge=1, le=16, description="keep only terms of at most this order")
     fidelity_target: float | None = Field(default=None, gt=0, lt=1,
                                           description="also find the largest 2q error reaching this state fidelity")
+    method: Literal["auto", "density-matrix", "trajectories", "clifford"] = Field(
+        default="auto", description="how noise figures are computed; auto: density-matrix within the memory budget, "
+                                    "else trajectories within time_budget_seconds, else clifford (an estimate)")
+    time_budget_seconds: float | None = Field(default=None, gt=0, le=3600,
+                                              description="wall time the noise figures of one row may take "
+                                                          "(null: 300)")
+    trajectories: int | None = Field(default=None, ge=1, le=20000,
+                                     description="trajectories method: run exactly this many trajectories")
+    precision: float | None = Field(default=None, gt=0, lt=1,
+                                    description="trajectories method: stop when the state fidelity's standard "
+                                                "error is below this (null: 0.01)")
 
 
 class ErrorBody(BaseModel):
@@ -94,10 +110,24 @@ class StudyCreated(BaseModel):
     progress: Progress
 
 
-class Row(BaseModel):
-    """One task's row: ``task_index``, ``status``, ``cached`` and the fields of ``run_task``'s row."""
+_JSON_TYPES = {"int": "integer", "float": "number", "str": "string", "bool": "boolean", "object": "object",
+               "list": "array"}
 
-    model_config = ConfigDict(extra="allow")
+
+def _document_row_fields(schema: dict[str, Any]) -> None:
+    """Every field of the row definition in the schema, with its meaning and unit (rows keep extras)."""
+    props = schema.setdefault("properties", {})
+    for f in ROW_FIELDS:
+        if f.name not in props:
+            props[f.name] = {"anyOf": [{"type": _JSON_TYPES[f.kind]}, {"type": "null"}],
+                             "description": f.meaning + (f" ({f.unit})" if f.unit else "")}
+
+
+class Row(BaseModel):
+    """One task's row: ``task_index``, ``status``, ``cached`` and the fields of ``run_task``'s row
+    (defined with meaning and unit in ``toposcout.compiler.rows``; a field that does not apply is absent)."""
+
+    model_config = ConfigDict(extra="allow", json_schema_extra=_document_row_fields)
 
     task_index: int
     status: RowStatus

@@ -36,8 +36,9 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from jinja2 import Environment, FileSystemLoader, select_autoescape
 from starlette.concurrency import run_in_threadpool
 
-from compiler.errors import ToposcoutError
-from service import charts
+from toposcout.compiler.errors import ToposcoutError
+from toposcout.compiler.rows import DASHBOARD_COLUMNS, FIELDS
+from toposcout.service.web import charts
 
 __all__ = ["router", "COOKIE", "PAGE_SIZE"]
 
@@ -258,12 +259,10 @@ def _drawable(study: Mapping[str, Any], actives: Mapping[int, set[int] | None]) 
     return out
 
 
-_COLUMNS = [("task_index", "#"), ("connectivity", "connectivity"), ("noise_scale", "noise scale"),
-            ("status", "status"), ("strategy", "strategy"), ("physical_qubits", "qubits"),
-            ("active_qubits", "active"), ("two_qubit_gates", "2q gates"), ("swaps", "SWAPs"), ("depth", "depth"),
-            ("two_qubit_depth", "2q depth"), ("state_fidelity", "state fidelity"),
-            ("hellinger_fidelity", "Hellinger fidelity"), ("tvd", "TVD"), ("esp", "ESP"),
-            ("duration_us", "duration (µs)"), ("threshold_noise_scale", "threshold scale")]
+_COLUMNS = [("task_index", "#"), *((k, FIELDS[k].title) for k in DASHBOARD_COLUMNS[:1]), ("status", "status"),
+            *((k, FIELDS[k].title) for k in DASHBOARD_COLUMNS[1:])]
+#: what each column means, shown as the header's tooltip (from the row definition)
+_MEANINGS = {k: (FIELDS[k].meaning + (f" ({FIELDS[k].unit})" if FIELDS[k].unit else "")) for k in DASHBOARD_COLUMNS}
 
 
 def _study_context(study: dict, actives: Mapping[int, set[int] | None]) -> dict:
@@ -273,7 +272,7 @@ def _study_context(study: dict, actives: Mapping[int, set[int] | None]) -> dict:
             or any(r.get(k) is not None for r in rows)]
     req = study.get("request") or {}
     profile = next((r.get("profile") for r in rows if r.get("profile")), None) or req.get("profile")
-    return dict(study=study, rows=rows, columns=cols, kinds=kinds, titles=charts.CHART_TITLES,
+    return dict(study=study, rows=rows, columns=cols, meanings=_MEANINGS, kinds=kinds, titles=charts.CHART_TITLES,
                 alts={k: charts.chart_description(k, rows) for k in kinds}, drawings=_drawable(study, actives),
                 final=study.get("status") in _FINAL, profile=profile,
                 compile_only=bool(req.get("compile_only")), caption=charts.caption(rows, kind="fidelity"))
@@ -413,10 +412,10 @@ def _active_qubits(qpy_bytes: bytes) -> set[int] | None:
 # --- the submit form ---------------------------------------------------------------------
 
 def _form_choices() -> dict:
-    from compiler.targets import BUILTIN_FAMILIES, GATE_SETS, connectivity_catalogue
+    from toposcout.compiler.targets import BUILTIN_FAMILIES, GATE_SETS, connectivity_catalogue
 
     try:
-        from compiler.profiles import DEFAULT_PROFILE, profile_catalogue
+        from toposcout.compiler.profiles import DEFAULT_PROFILE, profile_catalogue
 
         profiles = profile_catalogue()
     except ImportError:  # pragma: no cover - profiles ship with the package

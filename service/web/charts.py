@@ -1,6 +1,6 @@
 """Server-side charts of a study's rows: SVG (with ``<title>``/``<desc>``) or PNG bytes.
 
-Every chart is drawn from plain row dicts (what ``compiler.study.run_task`` returns and
+Every chart is drawn from plain row dicts (what ``toposcout.compiler.study.run_task`` returns and
 the API serves) with matplotlib's Agg backend and its object API (no pyplot state, so
 charts can be drawn from several request threads). Every chart carries a title, axis
 labels with units and a caption saying the figures come from a simulation under the
@@ -42,8 +42,8 @@ matplotlib.use("Agg")
 
 from matplotlib.figure import Figure  # noqa: E402
 
-from compiler.errors import ToposcoutError  # noqa: E402
-from compiler.targets import Connectivity, make_connectivity  # noqa: E402
+from toposcout.compiler.errors import ToposcoutError  # noqa: E402
+from toposcout.compiler.targets import Connectivity, make_connectivity  # noqa: E402
 
 __all__ = [
     "CHART_KINDS",

@@ -1,6 +1,6 @@
 """The store: studies, their rows and the result cache, in SQLite (default) or PostgreSQL.
 
-Three tables (schema by the alembic migrations in ``service/migrations``, applied when a
+Three tables (schema by the alembic migrations in ``service/store/migrations``, applied when a
 :class:`Store` opens the database):
 
 * ``studies``: one per submission (owner, status, the normalised request, progress);
@@ -35,12 +35,14 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
 from sqlalchemy.types import TypeDecorator
 
-__all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "best_connectivity", "STUDY_STATES", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow",
+__all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "best_connectivity", "STUDY_STATES", "FINISHED_STATES",
+           "UNFINISHED", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow",
            "new_study_id"]
 
 STUDY_STATES = ("queued", "running", "done", "failed", "cancelled")
 ROW_STATES = ("pending", "done", "failed", "cancelled")
 UNFINISHED = ("queued", "running")
+FINISHED_STATES = ("done", "failed", "cancelled")
 #: rows failed by the executor (not by the task itself) are not cached: a retry may succeed.
 # Failures that depend on the machine, not on the task: never answered from the cache.
 UNCACHEABLE_FIELDS = frozenset({"task_time_limit", "worker", "executor", "memory_budget_bytes"})

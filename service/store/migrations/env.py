@@ -1,13 +1,13 @@
 """Alembic environment of the toposcout store.
 
-Run by :func:`service.store.migrate` with an open connection in ``config.attributes``;
+Run by :func:`toposcout.service.store.migrate` with an open connection in ``config.attributes``;
 ``alembic -x url=sqlite:///x.db upgrade head`` (with ``script_location`` pointing here) works too.
 """
 
 from alembic import context
 from sqlalchemy import create_engine
 
-from service.store import Base
+from toposcout.service.store import Base
 
 
 def _main() -> None:

@@ -9,7 +9,7 @@ structured / generic and strategy / LB, where LB is the number of distinct terms
 computed from the counts of this run.
 
 The "best qiskit" reference per constrained cell is the minimum of (a) the figure measured
-for the issue's four models (:data:`ISSUE_BEST`, qiskit 2.6, mcts up to 2000 simulations),
+once for the suite's four models (:data:`PLUGIN_BEST_REFERENCE`, qiskit 2.6, mcts up to 2000 simulations),
 (b) the generic ladder pipeline of this run and, with ``--qiskit-best``, (c) what this bench
 measures itself: the diagonal block as one ``PauliEvolutionGate`` (the same angles), every
 high-level-synthesis plugin qiskit offers for it (:data:`QISKIT_CONFIGS`; mcts with
@@ -28,7 +28,6 @@ Examples:
 
 from __future__ import annotations
 
-import argparse
 import json
 import statistics
 import time
@@ -38,9 +37,9 @@ from typing import Any, Callable, Iterable, Sequence
 import numpy as np
 
 __all__ = [
-    "FAMILIES",
+    "CONNECTIVITY_FAMILIES_BENCHED",
     "CONSTRAINED",
-    "ISSUE_BEST",
+    "PLUGIN_BEST_REFERENCE",
     "QISKIT_CONFIGS",
     "chain_model",
     "plaquette_model",
@@ -53,18 +52,17 @@ __all__ = [
     "qiskit_best",
     "run_bench",
     "format_table",
-    "add_arguments",
-    "run_cli",
+    "STRATEGY_ORDER",
 ]
 
-FAMILIES = ("line", "ring", "grid", "heavy-hex", "all-to-all")
+CONNECTIVITY_FAMILIES_BENCHED = ("line", "ring", "grid", "heavy-hex", "all-to-all")
 CONSTRAINED = ("line", "ring", "grid", "heavy-hex")
 STRATEGY_ORDER = ("generic", "structured", "auto")
 
 #: best routed two-qubit count over qiskit's PauliEvolution synthesis plugins, measured for the
-#: issue (qiskit 2.6, cx gate set, seeds 0..4, mcts up to 2000 simulations). Reference figures,
+#: suite's four models (qiskit 2.6, cx gate set, seeds 0..4, mcts up to 2000 simulations). Reference figures,
 #: not results of this tool; keyed by the suite's model names.
-ISSUE_BEST: dict[str, dict[str, int]] = {
+PLUGIN_BEST_REFERENCE: dict[str, dict[str, int]] = {
     "plaquettes-3x3": {"line": 184, "grid": 112, "heavy-hex": 152, "all-to-all": 66},
     "plaquettes-3x4": {"line": 288, "grid": 185, "heavy-hex": 246, "all-to-all": 92},
     "triangles-3x3": {"line": 84, "grid": 57, "heavy-hex": 75, "all-to-all": 36},
@@ -207,7 +205,7 @@ def qiskit_best(ansatz, connectivity, gate_set, *, seeds: int = 5, simulations: 
     from qiskit.transpiler import generate_preset_pass_manager
     from qiskit.transpiler.passes import HLSConfig
 
-    from compiler.targets import build_target
+    from toposcout.compiler.targets import build_target
 
     qc = _evolution_circuit(ansatz)
     target = build_target(connectivity, gate_set)
@@ -265,14 +263,14 @@ def run_bench(
     progress: Callable[[str], None] | None = None,
 ) -> dict[str, Any]:
     """Run the suite; returns the JSON-able result (see the module docstring)."""
-    from compiler import __version__
-    from compiler.ansatz import build_ansatz
-    from compiler.compile import compile_ansatz
-    from compiler.model import parse_model
-    from compiler.targets import get_gate_set, make_connectivity
+    from toposcout.compiler import __version__
+    from toposcout.compiler.ansatz import build_ansatz
+    from toposcout.compiler.compile import compile_ansatz
+    from toposcout.compiler.model import parse_model
+    from toposcout.compiler.targets import get_gate_set, make_connectivity
 
     gs = get_gate_set(gate_set)
-    families = ("line", "grid", "all-to-all") if quick else FAMILIES
+    families = ("line", "grid", "all-to-all") if quick else CONNECTIVITY_FAMILIES_BENCHED
     strategies = [s for s in STRATEGY_ORDER if s in strategies]
     say = progress or (lambda msg: None)
     started = time.perf_counter()
@@ -315,8 +313,8 @@ def run_bench(
                                                    > (g["two_qubit_gates"], g["depth"]))
             # the best qiskit reference for this cell
             refs: dict[str, int] = {}
-            if name in ISSUE_BEST and fam in ISSUE_BEST[name]:
-                refs["issue"] = ISSUE_BEST[name][fam]
+            if name in PLUGIN_BEST_REFERENCE and fam in PLUGIN_BEST_REFERENCE[name]:
+                refs["reference"] = PLUGIN_BEST_REFERENCE[name][fam]
             if g:
                 refs["generic"] = g["two_qubit_gates"]
             if measure_qiskit and not is_big:
@@ -325,8 +323,8 @@ def run_bench(
                 measured.append({"model": name, "family": fam, "connectivity": conn.name, **q})
                 say(f"{name:<20} {conn.name:<14} qiskit best {q['two_qubit_gates']:>5}  ({q['config']}, "
                     f"{q['seconds']:.1f} s)")
-            # a reference counts only if it includes a plugin search (issue figure or measured)
-            if "issue" in refs or "measured" in refs:
+            # a reference counts only if it includes a plugin search (the reference figure or a measurement)
+            if "reference" in refs or "measured" in refs:
                 best = min(refs.values())
                 pair["qiskit_best"] = best
                 pair["qiskit_best_source"] = "+".join(k for k, v in refs.items() if v == best)
@@ -458,42 +456,5 @@ def format_table(result: dict, *, markdown: bool = False) -> str:
     lines.append("checks:")
     for k, v in result["checks"].items():
         extra = {x: y for x, y in v.items() if x != "ok" and y not in ([], None)}
-        lines.append(f"  {'PASS' if v['ok'] else 'FAIL'}  {k}" + (f"  {json.dumps(extra)}" if extra else ""))
+        lines.append(f"  {'met    ' if v['ok'] else 'not met'}  {k}" + (f"  {json.dumps(extra)}" if extra else ""))
     return "\n".join(lines)
-
-
-def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--quick", action="store_true", help="a small subset (three models, three connectivities)")
-    p.add_argument("--strategy", action="append", choices=STRATEGY_ORDER,
-                   help="repeatable; default: generic, structured and auto")
-    p.add_argument("--seeds", type=int, default=5, help="transpiler seeds 0..N-1 for generic and --qiskit-best "
-                                                        "(default 5)")
-    p.add_argument("--json", metavar="FILE", help="write the full result as JSON")
-    p.add_argument("--markdown", action="store_true", help="print the table as Markdown")
-    p.add_argument("--qiskit-best", action="store_true",
-                   help="also measure qiskit's PauliEvolution synthesis plugins per cell (slow)")
-    p.add_argument("--mcts-simulations", type=int, default=300,
-                   help="simulation budget of the mcts plugin for --qiskit-best (default 300)")
-    p.add_argument("--big", action="store_true",
-                   help="also the big cells: a 100-variable chain and an 8x8 plaquette grid on heavy-hex "
-                        "(structured only)")
-
-
-def run_cli(args, out, err) -> int:
-    from compiler.errors import ToposcoutError
-
-    if args.seeds < 1:
-        raise ToposcoutError("--seeds must be at least 1", field="seeds")
-    if args.mcts_simulations < 1:
-        raise ToposcoutError("--mcts-simulations must be at least 1", field="mcts_simulations")
-    tty = hasattr(err, "isatty") and err.isatty()
-    result = run_bench(quick=args.quick, strategies=args.strategy or STRATEGY_ORDER, seeds=args.seeds,
-                       measure_qiskit=args.qiskit_best, simulations=args.mcts_simulations, big=args.big,
-                       progress=(lambda msg: (err.write(msg + "\n"), err.flush())) if tty else None)
-    out.write(format_table(result, markdown=args.markdown) + "\n")
-    out.write(f"({result['seconds']} s)\n")
-    if args.json:
-        with open(args.json, "w", encoding="utf-8") as fh:
-            json.dump(result, fh, indent=1)
-            fh.write("\n")
-    return 0

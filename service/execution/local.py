@@ -1,24 +1,21 @@
-"""Executors: where the tasks of a study run.
+"""The local executor: worker processes of our own on this machine.
 
 The API never runs a task itself: the simulator holds the GIL for a whole run, so a task in
 the API process (or one of its threads) would freeze every other request. An executor takes
-``(task_index, task)`` pairs, runs each through :func:`compiler.study.run_task` somewhere
+``(task_index, task)`` pairs, runs each through :func:`toposcout.compiler.study.run_task` somewhere
 else, and writes every finished row to the store itself (``store.record_row``), so a server
 killed at any moment loses at most the rows that were running; the API resubmits the pending
 rows of unfinished studies at start-up.
 
-* :class:`Executor`: the interface (``start``, ``submit``, ``cancel``, ``shutdown``, ``pending``).
 * :class:`LocalExecutor`: a few worker processes of our own (``spawn``), one task at a time
   each. A task past the time limit gets its process killed (and replaced) and its row fails
   with the reason; a cancelled study's running tasks are stopped the same way. Two studies
   asking for the same task key while it runs share one computation.
 * :class:`ProcessLane`: one worker process for synchronous calls (``POST /v1/compile``).
-* :func:`make_executor`: the Dask executor when ``settings.dask_address`` is set, else local.
 """
 
 from __future__ import annotations
 
-import abc
 import collections
 import logging
 import multiprocessing
@@ -27,83 +24,15 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
-from service.runner import threads_per_worker
+from toposcout.service.execution.base import Executor, TaskTimeout, WorkerDied, failure_row, timeout_message
+from toposcout.service.execution.threads import threads_per_worker
+from toposcout.compiler.study import task_key
+from toposcout.service.execution.child import worker_main as _worker_main
+from toposcout.service.store import UNCACHEABLE_FIELDS
 
-__all__ = ["Executor", "LocalExecutor", "ProcessLane", "make_executor", "failure_row", "TaskTimeout"]
+__all__ = ["LocalExecutor", "ProcessLane"]
 
 log = logging.getLogger("toposcout.executor")
-
-
-class Executor(abc.ABC):
-    """Runs the tasks of studies and records their rows in the store."""
-
-    @abc.abstractmethod
-    def start(self) -> None:
-        """Start workers (or connect to them); called once by the API at start-up."""
-
-    @abc.abstractmethod
-    def submit(self, study_id: str, tasks: list[tuple[int, dict]]) -> None:
-        """Queue ``(task_index, task)`` pairs of a study (rows still pending in the store)."""
-
-    @abc.abstractmethod
-    def cancel(self, study_id: str) -> None:
-        """Drop the study's queued tasks and stop its running ones where possible."""
-
-    @abc.abstractmethod
-    def shutdown(self) -> None:
-        """Stop the workers; queued tasks stay pending in the store for the next start."""
-
-    @abc.abstractmethod
-    def pending(self, study_id: str | None = None) -> int:
-        """Tasks queued or running (of one study, or all)."""
-
-
-def failure_row(task: Mapping[str, Any], message: str, field_name: str) -> dict:
-    """A row for a task the executor failed (time limit, dead worker): what is known up front."""
-    spec = task.get("connectivity") or {}
-    family = spec.get("family") if isinstance(spec, Mapping) else str(spec).partition(":")[0]
-    model = task.get("model") or {}
-    return {"error": message, "error_field": field_name, "connectivity": family,
-            "noise_scale": task.get("noise_scale", 1.0), "gate_set": task.get("gate_set", "cx"),
-            "strategy_requested": task.get("strategy", "auto"), "model": model.get("name"),
-            "variables": len(model.get("variables") or ()), "row_seconds": 0.0}
-
-
-def _worker_main(conn, threads: int = 0) -> None:  # pragma: no cover - runs in the child process
-    """Child process: receive tasks, answer rows, until ``None`` or the pipe closes.
-
-    threads: default 0 (leave as is); else the simulator threads of this process."""
-    if threads:
-        from service.runner import limit_threads
-
-        limit_threads(threads)
-    from compiler.study import run_task
-
-    conn.send(("ready", None))
-    while True:
-        try:
-            task = conn.recv()
-        except (EOFError, OSError):
-            return
-        if task is None:
-            return
-        try:
-            row = run_task(task)
-        except Exception as exc:  # a bug: the row says so, the worker lives on
-            row = failure_row(task, f"internal error while running the task ({type(exc).__name__}: {exc})",
-                              "executor")
-        try:
-            conn.send(("row", row))
-        except (BrokenPipeError, OSError):
-            return
-
-
-class TaskTimeout(Exception):
-    pass
-
-
-class WorkerDied(Exception):
-    pass
 
 
 class _Worker:
@@ -189,11 +118,6 @@ class _Worker:
         self.close()
 
 
-def timeout_message(limit: float) -> str:
-    return (f"the task ran past the time limit of {limit:g} s and was stopped; use a smaller model, fewer seeds "
-            f"or compile-only, or ask for a larger TOPOSCOUT_TASK_TIME_LIMIT_SECONDS")
-
-
 @dataclass
 class _Item:
     study_id: str
@@ -235,8 +159,6 @@ class LocalExecutor(Executor):
             self._threads.append(t)
 
     def submit(self, study_id: str, tasks: list[tuple[int, dict]]) -> None:
-        from compiler.study import task_key
-
         keys = self.store.task_keys(study_id) if tasks else {}
         with self._cv:
             self._cancelled.discard(study_id)
@@ -368,8 +290,6 @@ class LocalExecutor(Executor):
             followers, item.followers = item.followers, []
         if not followers:
             return
-        from service.store import UNCACHEABLE_FIELDS
-
         if row is None or row.get("error_field") in UNCACHEABLE_FIELDS:
             with self._cv:  # run them again themselves
                 for f in followers:
@@ -429,12 +349,3 @@ class ProcessLane:
     def shutdown(self) -> None:
         with self._lock:
             self._worker.stop()
-
-
-def make_executor(settings: Any, store: Any) -> Executor:
-    """The Dask executor when ``settings.dask_address`` is set, else a :class:`LocalExecutor`."""
-    if getattr(settings, "dask_address", None):
-        from service.dask_executor import DaskExecutor
-
-        return DaskExecutor(settings, store)
-    return LocalExecutor(settings, store)

@@ -13,41 +13,14 @@ from __future__ import annotations
 import hmac
 import ipaddress
 import re
-from typing import Iterable
 
 from fastapi import HTTPException, Request
 
-from compiler.errors import ToposcoutError
+from toposcout.service.settings import parse_tokens
 
 __all__ = ["parse_tokens", "LOCAL_OWNER", "owner_for_token", "request_owner", "is_loopback", "redact"]
 
 LOCAL_OWNER = "local"
-_OWNER = re.compile(r"^[A-Za-z0-9_.@-]{1,64}$")
-
-
-def parse_tokens(lines: Iterable[str]) -> dict[str, str]:
-    """token -> owner from ``owner:token`` entries; blank entries and ``#`` comments skipped.
-
-    >>> parse_tokens(["alice:alice-tok-1", " # comment", "", "bob:bob-tok-22"])
-    {'alice-tok-1': 'alice', 'bob-tok-22': 'bob'}
-    """
-    table: dict[str, str] = {}
-    for n, raw in enumerate(lines, 1):
-        line = raw.split("#", 1)[0].strip()
-        if not line:
-            continue
-        owner, sep, token = line.partition(":")
-        owner, token = owner.strip(), token.strip()
-        if not sep or not token or not _OWNER.match(owner):
-            raise ToposcoutError(f"token entry {n}: expected owner:token with an owner of letters, digits "
-                                 "and _.@- (the token itself is not shown)", field="tokens")
-        if len(token) < 8:
-            raise ToposcoutError(f"token entry {n} (owner {owner}): a token needs at least 8 characters",
-                                 field="tokens")
-        if token in table:
-            raise ToposcoutError(f"token entry {n} (owner {owner}): the same token is given twice", field="tokens")
-        table[token] = owner
-    return table
 
 
 def owner_for_token(table: dict[str, str], token: str) -> str | None:

@@ -1,7 +1,7 @@
 """Run studies on a Dask distributed cluster.
 
 :class:`DaskExecutor` sends every task (a plain dict) to the cluster as one call of
-:func:`compiler.study.run_task` — the same function the local executor runs — and writes
+:func:`toposcout.compiler.study.run_task` — the same function the local executor runs — and writes
 each row to the store as soon as it is back.
 
 * **Keys** are deterministic: ``toposcout-{study_id}-{task_index}-{attempt}``. A server that
@@ -16,11 +16,11 @@ each row to the store as soon as it is back.
   (the store's ``record_row`` is an upsert on the same pair, so a resubmission after a restart
   cannot duplicate a row either).
 * **Memory**: before submission a simulating task is checked against the workers' memory
-  limit (budget: :data:`compiler.simulate.MEMORY_FRACTION` of the smallest worker limit, the
+  limit (budget: :data:`toposcout.compiler.simulate.MEMORY_FRACTION` of the smallest worker limit, the
   same share of memory the local path allows of this machine's RAM). The model's variables
   are a lower bound of the active qubits; a task that cannot fit is refused here with the
   same message as the local executor, and the others carry the budget to the worker, where
-  :func:`compiler.simulate.check_memory` refuses a routed circuit whose ancillas push it over
+  :func:`toposcout.compiler.simulate.check_memory` refuses a routed circuit whose ancillas push it over
   (Aer's ``max_memory_mb`` is set from the same budget).
 * **Time limit**: a task executing past ``task_time_limit_seconds`` gets its worker process
   restarted and its row fails with the local executor's message.
@@ -45,8 +45,10 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
-from compiler.errors import CapacityError, ToposcoutError
-from service.executor import Executor, failure_row, timeout_message
+from toposcout.compiler.errors import CapacityError, ToposcoutError
+from toposcout.compiler.simulate import MEMORY_FRACTION, check_memory
+from toposcout.compiler.study import run_task
+from toposcout.service.execution.base import Executor, failure_row, timeout_message
 
 __all__ = ["DaskExecutor", "task_key_for", "worker_memory_budget", "precheck_memory", "run_worker",
            "parse_memory"]
@@ -54,7 +56,7 @@ __all__ = ["DaskExecutor", "task_key_for", "worker_memory_budget", "precheck_mem
 log = logging.getLogger("toposcout.dask")
 
 #: modules imported by every worker at start-up, so the first task does not pay for them.
-WORKER_PRELOAD = ("compiler.study", "compiler.metrics")
+WORKER_PRELOAD = ("toposcout.compiler.study", "toposcout.compiler.metrics")
 
 
 def task_key_for(study_id: str, task_index: int, attempt: int) -> str:
@@ -64,8 +66,6 @@ def task_key_for(study_id: str, task_index: int, attempt: int) -> str:
 
 def worker_memory_budget(memory_limits: list[int], *, fraction: float | None = None) -> int | None:
     """Bytes one simulation may use on the smallest worker (None: no worker has a limit)."""
-    from compiler.simulate import MEMORY_FRACTION
-
     limits = [int(m) for m in memory_limits if m]
     if not limits:
         return None
@@ -76,20 +76,20 @@ def precheck_memory(task: Mapping[str, Any], budget: int | None) -> tuple[dict |
     """``(task_to_send, None)`` or ``(None, refused_row)``.
 
     The task sent carries ``memory_budget_bytes = min(its own, budget)``; a task whose model
-    alone (every variable is an active qubit) is over that budget is refused with the
-    message :func:`compiler.simulate.check_memory` gives on the local path.
+    alone (every variable is an active qubit) is over that budget is refused when it forces
+    ``method`` density-matrix (other methods choose per row, see ``toposcout.compiler.methods``).
     """
     if task.get("compile_only") or budget is None:
         return dict(task), None
-    from compiler.simulate import check_memory
-
     own = task.get("memory_budget_bytes")
     eff = budget if own is None else min(int(own), budget)
     n = len((task.get("model") or {}).get("variables") or ())
-    try:
-        check_memory(n, eff, saved_qubits=n)
-    except CapacityError as exc:
-        return None, failure_row(task, str(exc), exc.field)
+    if task.get("method", "auto") == "density-matrix":  # other methods fit any size: the row picks one
+        try:
+            check_memory(n, eff, saved_qubits=n)
+        except CapacityError as exc:
+            return None, failure_row(task, f"method density-matrix: {exc}; use method auto, trajectories or "
+                                           "clifford", exc.field)
     out = dict(task)
     out["memory_budget_bytes"] = eff
     return out, None
@@ -185,7 +185,7 @@ class DaskExecutor(Executor):
         self._pump()
 
     def _connect(self) -> bool:
-        from distributed import Client
+        from distributed import Client  # noqa: PLC0415 - optional heavy dependency (Dask), loaded when configured
 
         while not self._stop.is_set():
             try:
@@ -422,8 +422,6 @@ class DaskExecutor(Executor):
         return True
 
     def _send(self, item: _Item, task: dict) -> None:
-        from compiler.study import run_task
-
         key = task_key_for(item.study_id, item.task_index, item.attempt)
         item.submitted_at = time.monotonic()
         fut = self.client.submit(run_task, task, key=key, pure=False, retries=self.retries)
@@ -549,9 +547,9 @@ def run_worker(scheduler: str, *, nworkers: int = 1, memory_limit: str = "4GiB",
 
     threads: OpenMP threads of the simulator in each process (default: cores / nworkers).
     """
-    import asyncio
+    import asyncio  # noqa: PLC0415 - only the worker command runs an event loop
 
-    from distributed import Nanny
+    from distributed import Nanny  # noqa: PLC0415 - optional heavy dependency, only for `toposcout worker`
 
     if not scheduler or "://" not in scheduler:
         raise ToposcoutError(f"scheduler address must look like tcp://host:8786, got {scheduler!r}",

@@ -1,7 +1,7 @@
 """From a request to tasks: parse the model, apply the server's caps, build and validate tasks.
 
 Everything a study will need is checked here, before anything is stored or queued; each
-problem is a :class:`compiler.errors.ToposcoutError` naming the request field, which the API
+problem is a :class:`toposcout.compiler.errors.ToposcoutError` naming the request field, which the API
 answers with 422. The caps (``Settings.max_*``) bound what one request can make the server do:
 variables, term order, active qubits of a simulation (the density-matrix memory estimate is
 in the message), connectivity size, targets, noise scales.
@@ -14,12 +14,12 @@ import re
 from dataclasses import dataclass
 from typing import Any, Mapping
 
-from compiler.errors import CapacityError, ModelError, ProfileError, TargetError
-from compiler.model import Limits, Model, parse_model
-from compiler.study import make_tasks, task_key
-from compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, heavy_hex_qubits
+from toposcout.compiler.errors import CapacityError, ModelError, ProfileError, TargetError
+from toposcout.compiler.model import Limits, Model, parse_model
+from toposcout.compiler.study import make_tasks, task_key
+from toposcout.compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, heavy_hex_qubits
 
-from service.schemas import CONNECTIVITY_PATTERN, ConnectivitySpec, StudyRequest
+from toposcout.service.api.schemas import CONNECTIVITY_PATTERN, ConnectivitySpec, StudyRequest
 
 __all__ = ["Prepared", "prepare", "physical_qubits_of", "safe_filename"]
 
@@ -98,7 +98,7 @@ def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables:
 def _profile(profile: str | dict | None) -> str | dict | None:
     if profile is None:
         return None
-    from compiler.profiles import PROFILE_NAMES, load_profile
+    from toposcout.compiler.profiles import PROFILE_NAMES, load_profile
 
     if isinstance(profile, str):
         if profile not in PROFILE_NAMES:
@@ -138,17 +138,18 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
     compile_only = req.compile_only if compile_only is None else compile_only
     memory_budget = None
     if not compile_only:
-        from compiler.simulate import default_memory_budget_bytes, estimate_memory_bytes
+        from toposcout.compiler.simulate import default_memory_budget_bytes, estimate_memory_bytes
 
         cap = settings.max_active_qubits
         n = model.num_variables
-        if n > cap:
+        if n > cap and req.method == "density-matrix":
             est = estimate_memory_bytes(n)
             raise CapacityError(
                 f"model.variables: the noise study simulates at least {n} active qubits (one per variable) but this "
                 f"server's cap is max_active_qubits={cap}: a density matrix of {n} qubits needs about {_gib(est)} "
                 f"(16*4^{n} bytes plus overhead; {cap} qubits need {_gib(estimate_memory_bytes(cap))}). "
-                "Send compile_only=true, fewer variables, or use a server with a larger cap", field="model.variables")
+                "Send method auto, trajectories or clifford, compile_only=true, or use a server with a larger cap",
+                field="method")
         budget = settings.memory_budget_bytes or default_memory_budget_bytes()
         memory_budget = min(budget, estimate_memory_bytes(cap))
     max_targets = max_targets or settings.max_connectivities
@@ -158,7 +159,7 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
                             field="connectivities")
     specs = None if conns is None else [_connectivity(i, c, settings, model.num_variables) for i, c in enumerate(conns)]
     if specs is None:
-        from compiler.targets import BUILTIN_FAMILIES
+        from toposcout.compiler.targets import BUILTIN_FAMILIES
 
         specs = [{"family": f, "size": None, "edges": None} for f in BUILTIN_FAMILIES][:max_targets]
     if req.gate_set not in GATE_SETS:
@@ -180,12 +181,17 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
         options["memory_budget_bytes"] = int(memory_budget)
     if req.fidelity_target is not None and not compile_only:
         options["fidelity_target"] = req.fidelity_target
+    if not compile_only:
+        options.update(method=req.method, time_budget_seconds=req.time_budget_seconds,
+                       trajectories=req.trajectories, precision=req.precision)
     tasks = make_tasks(model, specs, noise_scales=scales, **options)
     keys = [task_key({**t, "model": model}) for t in tasks]  # the parsed model: no second parse per task
     normalised = {"model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
                   "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
                   "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
-                  "max_order": model.max_order, "fidelity_target": options.get("fidelity_target")}
+                  "max_order": model.max_order, "fidelity_target": options.get("fidelity_target"),
+                  "method": req.method, "time_budget_seconds": req.time_budget_seconds,
+                  "trajectories": req.trajectories, "precision": req.precision}
     return Prepared(model=model, request=normalised, tasks=tasks, keys=keys)
 
 
@@ -200,7 +206,7 @@ def safe_filename(name: str | None) -> str | None:
     >>> safe_filename("../../etc/passwd")
     Traceback (most recent call last):
     ...
-    compiler.errors.ModelError: file: the file name '../../etc/passwd' must be a plain name without folders, '..' or control characters
+    toposcout.compiler.errors.ModelError: file: the file name '../../etc/passwd' must be a plain name without folders, '..' or control characters
     """
     if name is None or name == "":
         return None
@@ -227,14 +233,14 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
         if len(values) != 1:
             raise ModelError(f"{key}: give this form field once", field=key)
         v = values[0].strip()
-        if key in ("seeds", "layers", "seed", "max_order"):
-            if v == "" and key == "max_order":
+        if key in ("seeds", "layers", "seed", "max_order", "trajectories"):
+            if v == "" and key in ("max_order", "trajectories"):
                 continue
             try:
                 out[key] = int(v)
             except ValueError:
                 raise ModelError(f"{key}: {v[:40]!r} is not an integer", field=key) from None
-        elif key == "fidelity_target":
+        elif key in ("fidelity_target", "time_budget_seconds", "precision"):
             if v:
                 out[key] = _form_float(key, v)
         elif key == "compile_only":

@@ -1,0 +1,137 @@
+"""The app factory: it only wires things (settings, store, executor, routers, middleware).
+
+``create_app(settings)`` builds the app (tests hand it their own :class:`Settings`);
+``toposcout serve`` runs it under uvicorn (:mod:`toposcout.service.api.server`). Every error is
+``{"detail": message, "field": name-or-null}`` (:mod:`toposcout.service.api.errors`).
+
+====================================  ==========================================================
+``POST /v1/studies``                  JSON body or multipart upload → 202, ``Location`` header
+``GET /v1/studies/{id}``              status, progress, request, rows as they complete
+``GET /v1/studies``                   paged summaries (``status``, ``owner``, ``limit``, ``offset``)
+``DELETE /v1/studies/{id}``           cancel (owner only); the record stays, ``cancelled``
+``GET /v1/studies/{id}/rows.json|csv``  the rows as a document / as CSV
+``GET /v1/studies/{id}/circuits/{i}.qpy|qasm``  a row's compiled circuit (QPY / OpenQASM 3)
+``POST /v1/compile``                  compile-only rows for a few targets, synchronously
+``GET /v1/connectivities|profiles|schema/model``, ``/healthz``, ``/metrics`` (Prometheus text)
+====================================  ==========================================================
+
+Nothing here runs a task: studies go to the executor (worker processes), ``/v1/compile`` to
+one dedicated worker process, so the event loop answers within milliseconds.
+"""
+
+from __future__ import annotations
+
+import collections
+import logging
+import threading
+from contextlib import asynccontextmanager
+
+from fastapi import FastAPI
+
+from toposcout.compiler.version import __version__
+from toposcout.service.api.errors import error, install_error_handlers
+from toposcout.service.api.routers import catalogue, compile as compile_router, operations, studies
+from toposcout.service.execution.factory import make_executor
+from toposcout.service.execution.local import ProcessLane
+from toposcout.service.settings import Settings
+from toposcout.service.store import Store
+from toposcout.service.web import dashboard
+
+__all__ = ["create_app"]
+
+log = logging.getLogger("toposcout.api")
+
+
+class _DeclaredSizeLimit:
+    """Answer 413 (our error shape) when Content-Length already says the body is too large;
+    bodies without a length are cut by FastAPI's own limit while they are read."""
+
+    def __init__(self, app, limit: int):
+        self.app = app
+        self.limit = limit
+
+    async def __call__(self, scope, receive, send):
+        if scope["type"] == "http":
+            for name, value in scope.get("headers", ()):
+                if name == b"content-length":
+                    try:
+                        too_big = int(value) > self.limit
+                    except ValueError:
+                        too_big = False
+                    if too_big:
+                        resp = error(413, f"body: the request body is over this server's limit of {self.limit} "
+                                           "bytes (max_body_bytes)", "body", {"Connection": "close"})
+                        await resp(scope, receive, send)
+                        return
+                    break
+        await self.app(scope, receive, send)
+
+
+class _LRU:
+    """A small thread-safe LRU of bytes."""
+
+    def __init__(self, size: int):
+        self.size = size
+        self._d: "collections.OrderedDict[str, bytes]" = collections.OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, key: str) -> bytes | None:
+        with self._lock:
+            v = self._d.get(key)
+            if v is not None:
+                self._d.move_to_end(key)
+            return v
+
+    def put(self, key: str, value: bytes) -> None:
+        with self._lock:
+            self._d[key] = value
+            self._d.move_to_end(key)
+            while len(self._d) > self.size:
+                self._d.popitem(last=False)
+
+
+class _App(FastAPI):
+    """FastAPI with :class:`_DeclaredSizeLimit` outermost (before FastAPI's own body limit,
+    which answers a declared over-size body in plain text)."""
+
+    def build_middleware_stack(self):
+        return _DeclaredSizeLimit(super().build_middleware_stack(), self.max_body_size)
+
+
+@asynccontextmanager
+async def _lifespan(app: FastAPI):
+    settings: Settings = app.state.settings
+    store = Store(settings.resolved_database_url())
+    executor = make_executor(settings, store)
+    executor.start()
+    lane = ProcessLane(time_limit=settings.compile_time_limit_seconds)
+    lane.start()
+    app.state.store, app.state.executor, app.state.lane = store, executor, lane
+    if settings.recover_on_start:
+        for study_id, pending in store.unfinished():
+            if pending:
+                log.info("resuming study %s: %d tasks", study_id, len(pending))
+                executor.submit(study_id, pending)
+    try:
+        yield
+    finally:
+        executor.shutdown()
+        lane.shutdown()
+        store.close()
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    """The toposcout API for ``settings`` (default: from ``TOPOSCOUT_*`` environment variables)."""
+    settings = settings or Settings()
+    app = _App(title="toposcout", version=__version__, lifespan=_lifespan, max_body_size=settings.max_body_bytes,
+               openapi_url=None, docs_url=None, redoc_url=None,
+               description="Where does a graph-structured circuit fit, and what survives noise? Figures are a "
+                           "simulation under a stated noise model, not a promise about a device.")
+    app.state.settings = settings
+    app.state.tokens = settings.token_table()
+    app.state.finished_cache = _LRU(2048)  # serialised finished studies (they do not change any more)
+    install_error_handlers(app, settings.max_body_bytes)
+    app.openapi = lambda: operations.openapi_document(app)  # type: ignore[method-assign]
+    for router in (studies.router, compile_router.router, catalogue.router, operations.router, dashboard.router):
+        app.include_router(router)
+    return app

@@ -1,0 +1,157 @@
+"""``/v1/studies``: submit, read, list, cancel; rows as JSON or CSV; a row's compiled circuit."""
+
+from __future__ import annotations
+
+import io
+import json
+from typing import Annotated
+
+from fastapi import APIRouter, Header, Query, Request
+from fastapi.responses import JSONResponse, PlainTextResponse, Response
+from qiskit import qasm3
+from starlette.concurrency import run_in_threadpool
+
+from toposcout.compiler.compile import load_qpy
+from toposcout.service.api import schemas as S
+from toposcout.service.api.bodies import FORM_BODY, read_request, validate_request
+from toposcout.service.api.deps import ExecutorDep, FinishedCache, Owner, SettingsDep, StoreDep, StudyId, TaskIndex
+from toposcout.service.api.errors import ERROR_BODY, ERRORS_READ, ERRORS_STUDY, ERRORS_SUBMIT, error
+from toposcout.service.api.planning import prepare
+from toposcout.service.output import write_csv
+from toposcout.service.store import FINISHED_STATES, Store, TooManyActive, best_connectivity
+
+__all__ = ["router"]
+
+router = APIRouter(prefix="/v1/studies", tags=["studies"])
+
+IDEMPOTENCY_KEY = Header(alias="Idempotency-Key", min_length=1, max_length=200, pattern=r"^[\x21-\x7e]+$",
+                         description="retry with the same key to get the same study back")
+
+
+@router.post("", status_code=202, response_model=S.StudyCreated,
+             responses=ERRORS_SUBMIT | {202: {"headers": {"Location": {"schema": {"type": "string"}}}}},
+             openapi_extra=FORM_BODY, summary="Submit a study (JSON body or a model file upload)")
+async def submit_study(request: Request, owner: Owner, settings: SettingsDep, store: StoreDep, executor: ExecutorDep,
+                       idempotency_key: Annotated[str | None, IDEMPOTENCY_KEY] = None):
+    data, filename = await read_request(request, settings)
+    return await run_in_threadpool(_submit, data, filename, owner, idempotency_key, settings, store, executor)
+
+
+def _submit(data: dict, filename: str | None, owner: str, idempotency_key: str | None, settings, store: Store,
+            executor) -> JSONResponse:
+    req = validate_request(data)
+    prep = prepare(req, settings, filename=filename)
+    try:
+        summary, created, pending = store.create_study(
+            owner=owner, request=prep.request, model_name=prep.model.name, tasks=prep.tasks, keys=prep.keys,
+            idempotency_key=idempotency_key, max_active=settings.max_active_studies_per_owner)
+    except TooManyActive as exc:
+        return error(429, f"owner {owner} already has {exc.active} studies queued or running (cap "
+                          f"max_active_studies_per_owner={settings.max_active_studies_per_owner}); wait for one "
+                          "to finish or cancel one, then retry", None, {"Retry-After": "5"})
+    if pending:
+        executor.submit(summary["id"], pending)
+    url = f"/v1/studies/{summary['id']}"
+    body = {"id": summary["id"], "url": url, "status": summary["status"], "progress": summary["progress"]}
+    return JSONResponse(body, status_code=202, headers={"Location": url})
+
+
+@router.get("/{study_id}", response_model=S.Study, responses=ERRORS_STUDY,
+            summary="A study: status, progress, request and rows")
+async def get_study(study_id: StudyId, owner: Owner, store: StoreDep, finished: FinishedCache):
+    cached = finished.get(study_id)
+    if cached is not None:
+        return Response(cached, media_type="application/json")
+    study = await run_in_threadpool(store.get_study, study_id)
+    if study is None:
+        return error(404, f"no study with id {study_id[:64]!r}", "study_id")
+    study["best_connectivity"] = best_connectivity(study["rows"])
+    body = json.dumps(study, separators=(",", ":")).encode()
+    if study["status"] in FINISHED_STATES:
+        finished.put(study_id, body)  # a finished study no longer changes
+    return Response(body, media_type="application/json")
+
+
+@router.get("", response_model=S.StudyList, responses=ERRORS_READ, summary="Studies, newest first")
+def list_studies(owner: Owner, store: StoreDep, status: Annotated[S.StudyStatus | None, Query()] = None,
+                 owner_filter: Annotated[str | None, Query(alias="owner", min_length=1, max_length=64)] = None,
+                 limit: Annotated[int, Query(ge=1, le=100)] = 20,
+                 offset: Annotated[int, Query(ge=0, le=10**9)] = 0):
+    items, total = store.list_studies(status=status, owner=owner_filter, limit=limit, offset=offset)
+    return JSONResponse({"items": items, "total": total, "limit": limit, "offset": offset})
+
+
+@router.delete("/{study_id}", response_model=S.StudySummary,
+               responses=ERRORS_STUDY | {403: ERROR_BODY | {"description": "only the owner may cancel a study"},
+                                         409: ERROR_BODY | {"description": "the study already finished"}},
+               summary="Cancel a study (the record stays, marked cancelled)")
+def cancel_study(study_id: StudyId, owner: Owner, store: StoreDep, executor: ExecutorDep):
+    study_owner = store.study_owner(study_id)
+    if study_owner is None:
+        return error(404, f"no study with id {study_id[:64]!r}", "study_id")
+    if study_owner != owner:
+        return error(403, f"study {study_id} belongs to {study_owner}; only its owner may cancel it", "study_id")
+    summary = store.cancel(study_id)
+    if summary["status"] in ("done", "failed"):
+        return error(409, f"study {study_id} already finished ({summary['status']}); nothing to cancel", "study_id")
+    executor.cancel(study_id)
+    return JSONResponse(summary)
+
+
+def _study_or_404(store: Store, study_id: str) -> dict | JSONResponse:
+    study = store.get_study(study_id)
+    if study is None:
+        return error(404, f"no study with id {study_id[:64]!r}", "study_id")
+    return study
+
+
+@router.get("/{study_id}/rows.json", response_model=S.RowsDocument, responses=ERRORS_STUDY,
+            summary="The rows of a study as a JSON document")
+def rows_json(study_id: StudyId, owner: Owner, store: StoreDep):
+    study = _study_or_404(store, study_id)
+    if isinstance(study, JSONResponse):
+        return study
+    return JSONResponse({"id": study["id"], "model_name": study["model_name"], "status": study["status"],
+                         "rows": study["rows"]})
+
+
+@router.get("/{study_id}/rows.csv",
+            responses=ERRORS_STUDY | {200: {"content": {"text/csv": {"schema": {"type": "string"}}}}},
+            summary="The rows of a study as CSV")
+def rows_csv(study_id: StudyId, owner: Owner, store: StoreDep):
+    study = _study_or_404(store, study_id)
+    if isinstance(study, JSONResponse):
+        return study
+    buf = io.StringIO()
+    write_csv(study["rows"], buf)
+    return Response(buf.getvalue(), media_type="text/csv",
+                    headers={"Content-Disposition": f'attachment; filename="{study["id"]}.csv"'})
+
+
+def _circuit(store: Store, study_id: str, task_index: int) -> bytes | JSONResponse:
+    data = store.circuit(study_id, task_index)
+    if data is None:
+        return error(404, f"study {study_id[:64]!r} has no finished row {task_index} with a circuit", "task_index")
+    return data
+
+
+@router.get("/{study_id}/circuits/{task_index}.qpy", tags=["circuits"],
+            responses=ERRORS_STUDY | {200: {"content": {"application/octet-stream": {
+                "schema": {"type": "string", "format": "binary"}}}}},
+            summary="A row's compiled circuit as QPY")
+def circuit_qpy(study_id: StudyId, task_index: TaskIndex, owner: Owner, store: StoreDep):
+    data = _circuit(store, study_id, task_index)
+    if isinstance(data, JSONResponse):
+        return data
+    return Response(data, media_type="application/octet-stream",
+                    headers={"Content-Disposition": f'attachment; filename="{study_id}-{task_index}.qpy"'})
+
+
+@router.get("/{study_id}/circuits/{task_index}.qasm", tags=["circuits"],
+            responses=ERRORS_STUDY | {200: {"content": {"text/plain": {"schema": {"type": "string"}}}}},
+            summary="A row's compiled circuit as OpenQASM 3")
+def circuit_qasm(study_id: StudyId, task_index: TaskIndex, owner: Owner, store: StoreDep):
+    data = _circuit(store, study_id, task_index)
+    if isinstance(data, JSONResponse):
+        return data
+    return PlainTextResponse(qasm3.dumps(load_qpy(data)))

@@ -1,0 +1,40 @@
+"""The child side of a local worker process: receive tasks over a pipe, answer rows.
+
+Kept apart from :mod:`.local` so that a spawned child imports nothing heavy before it has
+capped its simulator threads.
+"""
+
+from __future__ import annotations
+
+from toposcout.service.execution.base import failure_row
+from toposcout.service.execution.threads import limit_threads
+
+__all__ = ["worker_main"]
+
+
+def worker_main(conn, threads: int = 0) -> None:  # pragma: no cover - runs in the child process
+    """Child process: receive tasks, answer rows, until ``None`` or the pipe closes.
+
+    threads: default 0 (leave as is); else the simulator threads of this process."""
+    if threads:
+        limit_threads(threads)
+    # imported after the thread cap: the simulator's OpenMP runtime reads it when it loads
+    from toposcout.compiler.study import run_task
+
+    conn.send(("ready", None))
+    while True:
+        try:
+            task = conn.recv()
+        except (EOFError, OSError):
+            return
+        if task is None:
+            return
+        try:
+            row = run_task(task)
+        except Exception as exc:  # a bug: the row says so, the worker lives on
+            row = failure_row(task, f"internal error while running the task ({type(exc).__name__}: {exc})",
+                              "executor")
+        try:
+            conn.send(("row", row))
+        except (BrokenPipeError, OSError):
+            return

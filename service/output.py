@@ -1,0 +1,113 @@
+"""Rows written for people and programs: a terminal table, CSV and JSON.
+
+The CLI and the API both write rows through here, so a column means the same in each.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+from typing import IO, Any
+
+from toposcout.compiler.rows import FIELDS, TABLE_COLUMNS, csv_columns
+
+__all__ = ["CAUTION", "CLIFFORD_NOTE", "rows_table", "write_csv", "write_json", "sort_rows"]
+
+CAUTION = "Figures are a simulation under the stated noise model, not a promise about a device."
+#: shown under a table with clifford figures (the label of toposcout.compiler.clifford, shortened).
+CLIFFORD_NOTE = ("F clifford (est.): an estimate from the Clifford twin (angles rounded to multiples of pi/2, "
+                 "Pauli-twirled noise), not the exact state fidelity; '<' marks an upper bound (no shot returned).")
+
+
+def rows_table(rows: list[dict]) -> str:
+    """The terminal table: the compile columns always, the noise columns when a row has them (with the
+    standard error, clique marginals and clifford estimate when present), the method, the requirement."""
+    names: list[str] = list(TABLE_COLUMNS["compile"])
+    if any("state_fidelity" in r or r.get("method") for r in rows):
+        names += [*TABLE_COLUMNS["noise"], "_budget"]
+    if any(r.get("state_fidelity_se") is not None for r in rows):
+        names.insert(names.index("state_fidelity") + 1, "state_fidelity_se")
+    if any(r.get("clique_hellinger_mean") is not None for r in rows):
+        names.append("_clique")
+    if any(r.get("clifford_state_fidelity") is not None for r in rows):
+        names.append("_clifford")
+    if any(r.get("method") for r in rows):
+        names.append("method")
+    if any(r.get("threshold_two_qubit_error") is not None for r in rows):
+        names += TABLE_COLUMNS["requirement"]
+    composite = {"_budget": "loss 2q/1q/idle/ro", "_clique": "F clique mean/min", "_clifford": "F clifford (est.)"}
+    cols = [(composite[k], k) if k in composite else (FIELDS[k].header, k) for k in names]
+
+    def cell(r: dict, key: str) -> str:
+        if key == "_budget":
+            parts = [r.get(k) for k in ("budget_two_qubit", "budget_one_qubit", "budget_idle", "budget_readout")]
+            return "/".join("-" if p is None else f"{p:.3f}" for p in parts) if any(p is not None for p in parts) else ""
+        if key == "_clique":
+            a, b = r.get("clique_hellinger_mean"), r.get("clique_hellinger_min")
+            return "" if a is None else f"{a:.4g}/{b:.4g}"
+        if key == "_clifford":
+            f, se = r.get("clifford_state_fidelity"), r.get("clifford_state_fidelity_se")
+            if f is None:
+                return ""
+            return f"<{f:.3g}" if r.get("clifford_upper_bound") else f"~{f:.3g}±{se or 0:.2g}"
+        v = r.get(key)
+        if v is None:
+            return ""
+        if isinstance(v, float):
+            return f"{v:.4g}"
+        return str(v)
+
+    body = []
+    for r in rows:
+        if r.get("error"):
+            body.append([r.get("connectivity") or "?", "error: " + r["error"]])
+        else:
+            body.append([cell(r, k) for _, k in cols])
+    full = [b for b in body if len(b) == len(cols)]
+    widths = [max([len(h)] + [len(b[i]) for b in full]) for i, (h, _) in enumerate(cols)]
+    lines = ["  ".join(h.ljust(w) for (h, _), w in zip(cols, widths))]
+    notes = []
+    for r, b in zip(rows, body):
+        if len(b) == len(cols):
+            lines.append("  ".join(x.ljust(w) for x, w in zip(b, widths)))
+            if r.get("noise_error"):
+                notes.append(f"{r.get('connectivity')} (scale {r.get('noise_scale')}): no noise figures: "
+                             f"{r['noise_error']}")
+        else:
+            lines.append(f"{b[0]}  {b[1]}")
+    if notes:
+        lines += [""] + notes
+    if any(r.get("clifford_state_fidelity") is not None for r in rows):
+        lines.append(CLIFFORD_NOTE)
+    return "\n".join(lines)
+
+
+def _flatten(row: dict) -> dict:
+    out = {}
+    for k, v in row.items():
+        out[k] = json.dumps(v, sort_keys=True) if isinstance(v, (dict, list)) else v
+    return out
+
+
+def write_csv(rows: list[dict], fh) -> None:
+    """One column per field in the row definition's order (fields it does not know go last)."""
+    w = csv.DictWriter(fh, fieldnames=csv_columns(rows))
+    w.writeheader()
+    for r in rows:
+        w.writerow(_flatten(r))
+
+
+def _sort_key(r: dict):
+    return (r.get("error") is not None, r.get("two_qubit_gates") or 0, r.get("depth") or 0,
+            str(r.get("connectivity")), r.get("noise_scale") or 0)
+
+
+def sort_rows(rows: list[dict]) -> list[dict]:
+    """Rows in the table's order: errors last, then by two-qubit count, depth, connectivity, scale."""
+    return sorted(rows, key=_sort_key)
+
+
+def write_json(model_name: str, rows: list[dict], fh: IO[str], **extra: Any) -> None:
+    """The rows as one JSON document with the model's name and the caution."""
+    json.dump({"model": model_name, "caution": CAUTION, **extra, "rows": rows}, fh, indent=2, default=str)
+    fh.write("\n")
