@@ -60,11 +60,15 @@ def validation_detail(errors: list[dict], *, strip_source: bool) -> tuple[str, s
     # valid string"; the other branch's error says what is really wrong
     e = ([x for x in errors if not str(x.get("type", "")).endswith("_type")] or errors)[0]
     loc = tuple(e.get("loc", ()))
+    header = loc[1] if len(loc) > 1 and loc[0] == "header" and isinstance(loc[1], str) else None
     if strip_source and loc and loc[0] in ("body", "query", "path", "header", "cookie"):
         loc = loc[1:]
-    field = _loc(loc)
+    field = header or _loc(loc)  # a header is named as sent (Idempotency-Key), not folded into "body"
     msg = e.get("msg", "invalid value")
     value = e.get("input")
+    if header and isinstance(value, str) and len(value) > 60:
+        msg += f" (got {len(value)} characters)"
+        value = ...
     if isinstance(value, (str, int, float, bool)) or value is None:
         got = repr(value)
         msg += f" (got {got[:60]}{'...' if len(got) > 60 else ''})"

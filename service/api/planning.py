@@ -17,7 +17,7 @@ from typing import Any, Mapping
 from toposcout.compiler.errors import CapacityError, ModelError, ProfileError, TargetError
 from toposcout.compiler.model import Limits, Model, parse_model
 from toposcout.compiler.study import make_tasks, task_key
-from toposcout.compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, heavy_hex_qubits
+from toposcout.compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, check_edge_list, heavy_hex_qubits
 
 from toposcout.service.api.schemas import CONNECTIVITY_PATTERN, ConnectivitySpec, StudyRequest
 
@@ -85,6 +85,7 @@ def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables:
             raise TargetError(f"{where}.edges: a custom connectivity needs a non-empty edge list", field=f"{where}.edges")
         if any(a < 0 or b < 0 for a, b in d["edges"]):
             raise TargetError(f"{where}.edges: qubit indices must be >= 0", field=f"{where}.edges")
+        check_edge_list(d["edges"], f"{where}.edges")  # self-loops, repeated edges: named
         d["size"] = None
     elif d["edges"] is not None:
         raise TargetError(f"{where}.edges: only a custom connectivity takes edges", field=f"{where}.edges")
