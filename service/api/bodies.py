@@ -7,6 +7,7 @@ import json
 
 from fastapi import Request
 from pydantic import ValidationError
+from starlette.concurrency import run_in_threadpool
 from starlette.exceptions import HTTPException
 
 from toposcout.compiler.errors import ToposcoutError
@@ -74,7 +75,8 @@ def validate_request(data: dict) -> S.StudyRequest:
 async def read_request(request: Request, settings: Settings) -> tuple[dict, str | None]:
     ctype = request.headers.get("content-type", "").split(";")[0].strip().lower()
     if ctype == "application/json" or ctype.endswith("+json"):
-        return parse_json(await request.body()), None
+        # decoding up to max_body_bytes of JSON takes tens of ms: off the event loop, so /healthz stays fast
+        return await run_in_threadpool(parse_json, await request.body()), None
     if ctype != "multipart/form-data":
         raise HTTPException(415, "Content-Type must be application/json or multipart/form-data")
     try:
@@ -82,7 +84,8 @@ async def read_request(request: Request, settings: Settings) -> tuple[dict, str 
     except HTTPException as exc:
         if exc.status_code == 413:
             raise
-        raise ToposcoutError(f"body: malformed multipart form ({exc.detail})", field="body") from None
+        where = "file" if "files" in str(exc.detail) else "body"  # "Too many files": the file field
+        raise ToposcoutError(f"{where}: malformed multipart form ({exc.detail})", field=where) from None
     try:
         fields: dict[str, list[str]] = {}
         upload = None

@@ -99,7 +99,9 @@ def install_error_handlers(app: FastAPI, max_body_bytes: int) -> None:
             return error(413, f"body: the request body is over this server's limit of {max_body_bytes} "
                               "bytes (max_body_bytes)", "body")
         detail = exc.detail if isinstance(exc.detail, str) else json.dumps(exc.detail)
-        return error(exc.status_code, detail, None, getattr(exc, "headers", None))
+        # the header a 401 or 415 is about is the field (the message starts with its name)
+        field = next((h for h in ("Authorization", "Content-Type") if detail.startswith(h)), None)
+        return error(exc.status_code, detail, field, getattr(exc, "headers", None))
 
     @app.exception_handler(Exception)
     async def _unexpected(request: Request, exc: Exception):

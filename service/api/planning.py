@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import re
+import threading
 from dataclasses import dataclass
 from typing import Any, Mapping
 
@@ -106,7 +107,11 @@ def _profile(profile: str | dict | None) -> str | dict | None:
             raise ProfileError(f"profile: unknown profile {profile[:60]!r}; built-in profiles: "
                                f"{', '.join(PROFILE_NAMES)} (or send a profile object)", field="profile")
         return profile
-    return load_profile(dict(profile)).to_dict()
+    try:
+        return load_profile(dict(profile)).to_dict()
+    except ProfileError as exc:  # name the request field: profile.<where in the profile>
+        where = f"profile.{exc.field}" if exc.field and exc.field != "profile" else "profile"
+        raise ProfileError(f"profile: {exc}", field=where) from None
 
 
 def model_order(model: Model) -> int:
@@ -115,9 +120,22 @@ def model_order(model: Model) -> int:
     return min(largest, model.max_order) if model.max_order else largest
 
 
-def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile_only: bool | None = None,
-            max_targets: int | None = None, keep_circuit: bool = True) -> Prepared:
-    """Validate ``req`` against the server's caps and build its tasks (raises ToposcoutError)."""
+#: at most this many requests are parsed and prepared at once (each in a thread of the API's pool):
+#: every step is bounded by a counted cap, and this bounds how many of them share the GIL with the
+#: event loop, so a flood of large requests cannot slow /healthz and the reads
+PREPARE_CONCURRENCY = 2
+_preparing = threading.BoundedSemaphore(PREPARE_CONCURRENCY)
+
+
+def prepare(req: StudyRequest, settings, **kwargs: Any) -> Prepared:
+    """Validate ``req`` against the server's caps and build its tasks (raises ToposcoutError);
+    at most :data:`PREPARE_CONCURRENCY` at a time (see :func:`_prepare` for the keywords)."""
+    with _preparing:
+        return _prepare(req, settings, **kwargs)
+
+
+def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compile_only: bool | None = None,
+             max_targets: int | None = None, keep_circuit: bool = True) -> Prepared:
     limits = Limits(max_variables=settings.max_variables)
     if isinstance(req.model, str) and not req.model.strip():
         raise ModelError("model: the model text is empty", field="model")
