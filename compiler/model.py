@@ -571,12 +571,13 @@ def _uai_to_dict(text: str, limits: Limits | None = None) -> dict:
     scopes: list[list[int]] = []
     for fi in range(m):
         k, sline = take_int(f"the scope size of function {fi}", 1)
-        if k > min(n, limits.max_clique_size):
-            raise CapacityError(
-                f"line {sline}: function {fi} has a scope of {k} variables, more than "
-                + (f"the {n} declared variables" if k > n else f"the cap of {limits.max_clique_size} on a "
-                   f"factor's scope (its table would have 2**{k} entries)"),
-                field="factors")
+        if k > n:
+            raise ModelError(f"line {sline}: function {fi} has a scope of {k} variables, but the file declares "
+                             f"{n} variables", field=f"line {sline}")
+        if k > limits.max_clique_size:
+            raise CapacityError(f"line {sline}: function {fi} has a scope of {k} variables, more than the cap of "
+                                f"{limits.max_clique_size} on a factor's scope (its table would have 2**{k} entries)",
+                                field="factors")
         scope = []
         for _ in range(k):
             v, vline = take_int(f"a variable index of function {fi}", 0)
