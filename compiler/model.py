@@ -164,7 +164,16 @@ def _reject_constant(token: str):
     )
 
 
+#: the most objects and arrays a model text may hold, counted before it is decoded (a node-link
+#: graph at the link cap holds about 20000; 4 MB of ``{}`` would decode to ~160 MB of dicts)
+MAX_JSON_CONTAINERS = 100_000
+
+
 def _loads_json(text: str, what: str = "model") -> Any:
+    containers = text.count("{") + text.count("[")
+    if containers > MAX_JSON_CONTAINERS:
+        raise CapacityError(f"the {what} holds {containers} JSON objects and arrays, more than the cap of "
+                            f"{MAX_JSON_CONTAINERS}", field="body")
     try:
         return json.loads(text, parse_constant=_reject_constant)
     except json.JSONDecodeError as exc:

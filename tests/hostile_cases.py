@@ -188,6 +188,10 @@ CASES: list[Case] = [
     Case("body-not-utf8", raw(b'{"model": "\xff\xfe"}'), 422, "body"),
     Case("body-nested-100000-deep", raw(b'{"model": ' + b"[" * 100000 + b"]" * 100000 + b"}"), 422, "*",
          ("worst",)),
+    Case("body-1.3-million-empty-objects", raw(b'{"model": "x", "x": [' + b",".join([b"{}"] * 1300000) + b"]}"), 422,
+         "body", ("worst",)),
+    Case("upload-1.3-million-empty-objects", {"method": "POST", "path": "/v1/studies", "files": {
+        "file": ("m.json", b"[" + b",".join([b"{}"] * 1300000) + b"]")}}, 422, "model", ("worst",)),
     Case("body-over-4-MiB", raw(b'{"model": "' + b"x" * (4 * 2**20 + 10) + b'"}'), 413, "body", ("worst",)),
     Case("content-type-text", raw(b"{}", "text/plain"), 415, "Content-Type"),
     Case("idempotency-key-300-chars", model(M, headers={"Idempotency-Key": "k" * 300}), 422, "Idempotency-Key"),

@@ -284,3 +284,20 @@ def test_serve_on_a_non_loopback_address_starts_with_allow_remote_or_tokens(clea
                 except subprocess.TimeoutExpired:
                     os.killpg(proc.pid, signal.SIGKILL)
                     proc.wait(10)
+
+
+def test_json_texts_are_counted_before_they_are_decoded():
+    from toposcout.service.api.bodies import MAX_JSON_CONTAINERS, parse_json
+    from toposcout.compiler.errors import ToposcoutError
+
+    text = "[" + ",".join(["{}"] * (MAX_JSON_CONTAINERS + 1)) + "]"
+    err = _bounded(lambda: parse_model(text), seconds=0.5, megabytes=1)
+    assert err.field == "body" and str(MAX_JSON_CONTAINERS) in str(err)
+    tracemalloc.start()
+    try:
+        with pytest.raises(ToposcoutError, match="objects and arrays") as info:
+            parse_json(b'{"model": "x", "x": ' + text.encode() + b"}")
+        assert info.value.field == "body" and tracemalloc.get_traced_memory()[1] < 2**20
+    finally:
+        tracemalloc.stop()
+    assert parse_json(b'{"model": {"variables": ["a"]}}') == {"model": {"variables": ["a"]}}

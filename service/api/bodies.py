@@ -4,6 +4,7 @@ validated against the request schema before any work starts."""
 from __future__ import annotations
 
 import json
+import threading
 
 from fastapi import Request
 from pydantic import ValidationError
@@ -41,7 +42,24 @@ def _reject_constant(token: str):
     raise ValueError(f"{token} is not a number in JSON; give a finite value")
 
 
+#: the most objects and arrays a JSON body may hold (counted on the raw bytes before decoding: each
+#: costs ~100 bytes once decoded, so a 4 MiB body of ``{}`` would otherwise become ~160 MB of dicts);
+#: a node-link graph at its link cap holds about 20000
+MAX_JSON_CONTAINERS = 100_000
+#: bodies decoded at once (each in a thread of the API's pool): bounds the memory of a flood
+_decoding = threading.BoundedSemaphore(2)
+
+
 def parse_json(body: bytes) -> dict:
+    containers = body.count(b"{") + body.count(b"[")
+    if containers > MAX_JSON_CONTAINERS:
+        raise ToposcoutError(f"body: the JSON holds {containers} objects and arrays (nested or side by side), more "
+                             f"than the cap of {MAX_JSON_CONTAINERS}", field="body")
+    with _decoding:
+        return _parse_json(body)
+
+
+def _parse_json(body: bytes) -> dict:
     try:
         text = body.decode("utf-8")
     except UnicodeDecodeError as exc:
