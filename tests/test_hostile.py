@@ -115,3 +115,26 @@ def test_healthz_stays_fast_while_the_worst_case_is_refused(hostile_server):
     p95 = sorted(latencies)[int(0.95 * len(latencies)) - 1]
     assert p95 < 0.100, f"/healthz p95 {p95 * 1000:.0f} ms, median {statistics.median(latencies) * 1000:.0f} ms"
     assert growth < 100 * 2**20, f"the server grew by {growth / 2**20:.0f} MiB"
+
+
+def test_csv_export_of_a_hostile_name_is_neutralised(hostile_server, wait_study):
+    # OWASP "CSV Injection": a text cell beginning with = + - @ gets a leading single quote;
+    # numbers (noise_scale, depth, a negative figure) stay numbers
+    import csv
+    import io
+
+    _, srv = hostile_server
+    name = '=HYPERLINK("http://attacker.invalid","open")'
+    with httpx.Client(base_url=srv.url, headers={"Authorization": ALICE}, timeout=30) as c:
+        r = c.post("/v1/studies", json={"model": {"name": name, "variables": ["a", "b"], "cliques": [["a", "b"]]},
+                                        "compile_only": True, "connectivities": ["line"], "seeds": 1})
+        assert r.status_code == 202, r.text
+        study = wait_study(c, r.json()["id"], timeout=120)
+        assert study["status"] == "done", study
+        text = c.get(f"/v1/studies/{study['id']}/rows.csv").text
+    row = next(csv.DictReader(io.StringIO(text)))
+    assert row["model"] == "'" + name
+    assert row["connectivity"] == "line-2" and float(row["noise_scale"]) == 1.0 and int(row["depth"]) > 0
+    for key, value in row.items():
+        if value.startswith(("=", "+", "-", "@")):
+            float(value)  # only a number may still begin so (ValueError otherwise)
