@@ -2,7 +2,7 @@
 once on SQLite and once on PostgreSQL (one server per store, reused by every case).
 
 Per case (``tests/hostile_cases.py``): the status, the field the error body names, an answer in
-under 5 s, and the one error shape; then, while the slowest of them is sent again and again,
+under 5 s, and the one error shape; then, while the heaviest of them are sent again and again,
 ``/healthz`` answers in under 100 ms and the server's memory grows by less than 100 MB.
 """
 
@@ -19,7 +19,6 @@ import pytest
 from tests.hostile_cases import CASES, TOKENS, Case
 
 ALICE = "Bearer " + TOKENS.split(",")[0].split(":", 1)[1]
-_ANSWER_SECONDS: dict[tuple[str, str], float] = {}
 
 
 @pytest.fixture(scope="module", params=["sqlite", "postgresql"])
@@ -40,15 +39,21 @@ def hostile_server(request, tmp_path_factory, start_server, postgres_database):
                 srv.stop()
 
 
-def send(base_url: str, case: Case, timeout: float = 30.0) -> httpx.Response:
+def build(client: httpx.Client, case: Case) -> httpx.Request:
     req = dict(case.request)
     method, path = req.pop("method"), req.pop("path")
     auth = req.pop("auth", ALICE)
     headers = dict(req.pop("headers", {}))
     if auth:
         headers["Authorization"] = auth
+    request = client.build_request(method, path, headers=headers, **req)
+    request.read()  # the body as bytes: the request can be sent again
+    return request
+
+
+def send(base_url: str, case: Case, timeout: float = 30.0) -> httpx.Response:
     with httpx.Client(base_url=base_url, timeout=timeout) as client:
-        return client.request(method, path, headers=headers, **req)
+        return client.send(build(client, case))
 
 
 def test_the_suite_is_large_and_named():
@@ -63,7 +68,6 @@ def test_hostile_request_is_refused_naming_the_field(hostile_server, case):
     t0 = time.perf_counter()
     r = send(srv.url, case)
     elapsed = time.perf_counter() - t0
-    _ANSWER_SECONDS[(store, case.name)] = elapsed
     body = r.json()
     assert r.status_code == case.status, body
     assert set(body) == {"detail", "field"} and isinstance(body["detail"], str) and body["detail"]
@@ -77,22 +81,23 @@ def test_hostile_request_is_refused_naming_the_field(hostile_server, case):
 
 def test_healthz_stays_fast_while_the_worst_case_is_refused(hostile_server):
     store, srv = hostile_server
-    worst_cases = [c for c in CASES if "worst" in c.tags]
-    # the slowest case measured above on this store (all of them if the cases ran elsewhere)
-    timed = [(t, c) for c in worst_cases if (t := _ANSWER_SECONDS.get((store, c.name))) is not None]
-    worst = max(timed, key=lambda tc: tc[0])[1] if timed else None
-    chosen = [worst] if worst else worst_cases
+    # the heaviest cases (tagged "worst": the explosive parsers, the largest bodies), one after the
+    # other in one client, again and again
+    chosen = [c for c in CASES if "worst" in c.tags]
     proc = psutil.Process(srv.proc.pid)
     rss_before = proc.memory_info().rss
     stop = threading.Event()
     statuses: list[int] = []
 
     def hammer():
-        while not stop.is_set():
-            for case in chosen:
-                statuses.append(send(srv.url, case).status_code)
+        # the requests are encoded once: the probes below share this process's GIL with the hammer
+        with httpx.Client(base_url=srv.url, timeout=30) as client:
+            built = [build(client, case) for case in chosen]
+            while not stop.is_set():
+                for request in built:
+                    statuses.append(client.send(request).status_code)
 
-    threads = [threading.Thread(target=hammer) for _ in range(2)]
+    threads = [threading.Thread(target=hammer)]
     for t in threads:
         t.start()
     latencies = []
@@ -109,11 +114,14 @@ def test_healthz_stays_fast_while_the_worst_case_is_refused(hostile_server):
         for t in threads:
             t.join(30)
     growth = proc.memory_info().rss - rss_before
+    print(f"\n{store}: {len(chosen)} worst cases, {len(statuses)} refusals; /healthz median "
+          f"{statistics.median(latencies) * 1000:.1f} ms max {max(latencies) * 1000:.1f} ms, growth {growth / 2**20:.1f} MiB")
     assert statuses and all(400 <= s < 500 for s in statuses), statuses
-    # /healthz under 100 ms while the worst case is refused (the 95th percentile: one probe may land
-    # on a machine-wide scheduling hiccup of this shared 2-core box; the median is far below)
-    p95 = sorted(latencies)[int(0.95 * len(latencies)) - 1]
-    assert p95 < 0.100, f"/healthz p95 {p95 * 1000:.0f} ms, median {statistics.median(latencies) * 1000:.0f} ms"
+    # /healthz under 100 ms while the worst case is refused: every probe but at most one of 30 (one may
+    # land on a machine-wide scheduling hiccup of a shared 2-core box; the median is far below)
+    second = sorted(latencies)[-2]
+    assert second < 0.100, (f"/healthz: second slowest of {len(latencies)} probes {second * 1000:.0f} ms, median "
+                            f"{statistics.median(latencies) * 1000:.0f} ms")
     assert growth < 100 * 2**20, f"the server grew by {growth / 2**20:.0f} MiB"
 
 
