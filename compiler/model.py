@@ -266,11 +266,23 @@ def _path(parts: tuple) -> str:
     return out or "body"
 
 
+def _schema_view(obj: Mapping[str, Any]) -> Mapping[str, Any]:
+    """``obj`` with each factor's values cut to their first two: the schema says no more about the
+    rest than that they are positive numbers, which :func:`_build` checks entry by entry (naming
+    the entry) far faster than the schema validator."""
+    factors = obj.get("factors")
+    if not isinstance(factors, list):
+        return obj
+    short = [dict(f, values=f["values"][:2]) if isinstance(f, Mapping) and isinstance(f.get("values"), list)
+             and len(f["values"]) > 2 else f for f in factors]
+    return {**obj, "factors": short}
+
+
 def _schema_check(obj: Mapping[str, Any]) -> None:
     import jsonschema
 
     validator = jsonschema.Draft202012Validator(model_schema())
-    errors = sorted(validator.iter_errors(obj), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    errors = sorted(validator.iter_errors(_schema_view(obj)), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
     if errors:
         err = errors[0]
         where = _path(tuple(err.absolute_path))
@@ -298,6 +310,11 @@ def count_terms(clique_sizes: list[int], max_order: int | None) -> int:
     return total
 
 
+#: the most entries in all of a model's cliques, of its factor tables, of its parameters
+#: (each is checked by the schema validator at a few microseconds an entry)
+MAX_ENTRIES = 65536
+
+
 def _precheck(obj: Mapping[str, Any], limits: Limits) -> None:
     """The sizes of a decoded model against the caps, before the schema check and any loop
     over the contents (each list's length is known without walking it)."""
@@ -305,11 +322,20 @@ def _precheck(obj: Mapping[str, Any], limits: Limits) -> None:
     if isinstance(cliques, list) and len(cliques) > limits.max_cliques:
         raise CapacityError(f"the model lists {len(cliques)} cliques, more than the cap of {limits.max_cliques} "
                             "on cliques; merge cliques or split the model", field="cliques")
+    if isinstance(cliques, list):
+        members = sum(len(c) for c in cliques if isinstance(c, list))
+        if members > MAX_ENTRIES:
+            raise CapacityError(f"the model's cliques list {members} variables in all, more than the cap of "
+                                f"{MAX_ENTRIES}", field="cliques")
     factors = obj.get("factors")
     if isinstance(factors, list):
         if len(factors) > limits.max_factors:
             raise CapacityError(f"the model lists {len(factors)} factors, more than the cap of "
                                 f"{limits.max_factors} on factors", field="factors")
+        entries = sum(len(f["values"]) for f in factors if isinstance(f, Mapping) and isinstance(f.get("values"), list))
+        if entries > MAX_ENTRIES:
+            raise CapacityError(f"the model's factor tables hold {entries} entries in all, more than the cap of "
+                                f"{MAX_ENTRIES}", field="factors")
         for fi, f in enumerate(factors):
             if not isinstance(f, Mapping):
                 continue
@@ -334,6 +360,10 @@ def _precheck(obj: Mapping[str, Any], limits: Limits) -> None:
                 raise CapacityError(f"parameters.{table} has {len(t)} entries, more than the cap of {cap}",
                                     field=f"parameters.{table}")
             if isinstance(t, Mapping):
+                numbers = sum(len(v) if isinstance(v, list) else 1 for v in t.values())
+                if numbers > MAX_ENTRIES:
+                    raise CapacityError(f"parameters.{table} holds about {numbers} angles, more than the cap of "
+                                        f"{MAX_ENTRIES}", field=f"parameters.{table}")
                 for key, val in t.items():
                     if isinstance(val, list) and len(val) > 64:
                         raise CapacityError(f"parameters.{table}[{str(key)[:40]!r}] lists {len(val)} layers, more "

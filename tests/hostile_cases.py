@@ -139,6 +139,14 @@ CASES: list[Case] = [
     Case("model-an-integer", study({"model": 5}), 422, "model"),
     Case("model-format-uai-on-json", model('{"variables": ["a"]}', model_format="uai"), 422, "model"),
     Case("model-unknown-key", model({**M, "evil": 1}), 422, "model"),
+    Case("192-tasks-each-carrying-a-600KB-model", study({
+        "model": {"variables": _NAMES17[:12], "cliques": [_NAMES17[:12]],
+                  "factors": [{"scope": _NAMES17[:12], "values": [1.5] * 4096}] * 16},
+        "connectivities": ["line", "ring", "grid", "all-to-all", "heavy-hex"] + [f"line:{q}" for q in range(20, 27)],
+        "noise_scales": [0.5 + 0.1 * i for i in range(16)]}), 422, "model", ("worst",)),
+    Case("clique-members-over-65536", model({"variables": ["a"], "cliques": [["a"] * 70000]}), 422, "model.cliques"),
+    Case("factor-entries-over-65536", model({**M, "factors": [{"scope": ["a", "b"], "values": [1] * 4}] * 17000}), 422,
+         "model.factors"),
     # --- targets
     Case("custom-self-loop", model(M, connectivities=[{"family": "custom", "edges": [[0, 1], [1, 1]]}]), 422,
          "connectivities[0].edges[1]"),

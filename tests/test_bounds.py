@@ -301,3 +301,26 @@ def test_json_texts_are_counted_before_they_are_decoded():
     finally:
         tracemalloc.stop()
     assert parse_json(b'{"model": {"variables": ["a"]}}') == {"model": {"variables": ["a"]}}
+
+
+def test_entries_of_cliques_factors_and_parameters_are_capped_and_values_checked_one_by_one():
+    from toposcout.compiler.model import MAX_ENTRIES
+
+    assert _bounded(lambda: parse_model({"variables": ["a"], "cliques": [["a"] * (MAX_ENTRIES + 1)]})).field == "cliques"
+    m = {"variables": ["a", "b"], "cliques": [["a", "b"]]}
+    many = [{"scope": ["a", "b"], "values": [1, 2, 3, 4]}] * (MAX_ENTRIES // 4 + 1)
+    assert _bounded(lambda: parse_model({**m, "factors": many})).field == "factors"
+    assert parse_model({**m, "parameters": {"terms": {"a,b": 0.1}}}).parameters == {"terms": {"a,b": 0.1}}
+    with pytest.raises(CapacityError):
+        parse_model({**m, "parameters": {"terms": {"a,b": [0.1] * 65}}})
+    # the schema sees only the first two entries of a table; the rest are checked entry by entry
+    names = [f"v{i}" for i in range(12)]
+    values = [1.5] * 4096
+    values[4000] = "x"
+    with pytest.raises(ModelError) as info:
+        parse_model({"variables": names, "cliques": [names], "factors": [{"scope": names, "values": values}]})
+    assert info.value.field == "factors[0].values[4000]"
+    values[4000] = 2.0
+    t0 = time.perf_counter()
+    parse_model({"variables": names, "cliques": [names], "factors": [{"scope": names, "values": values}] * 16})
+    assert time.perf_counter() - t0 < 3

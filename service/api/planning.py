@@ -9,6 +9,7 @@ in the message), connectivity size, targets, noise scales.
 
 from __future__ import annotations
 
+import json
 import math
 import re
 import threading
@@ -120,11 +121,34 @@ def model_order(model: Model) -> int:
     return min(largest, model.max_order) if model.max_order else largest
 
 
+#: the most bytes of model JSON all the tasks of one study may carry (tasks x model size)
+MAX_STUDY_MODEL_BYTES = 8 * 2**20
+
 #: at most this many requests are parsed and prepared at once (each in a thread of the API's pool):
 #: every step is bounded by a counted cap, and this bounds how many of them share the GIL with the
 #: event loop, so a flood of large requests cannot slow /healthz and the reads
 PREPARE_CONCURRENCY = 2
 _preparing = threading.BoundedSemaphore(PREPARE_CONCURRENCY)
+
+
+def _study_size(n_tasks: int, model_bytes: int) -> None:
+    if n_tasks * model_bytes > MAX_STUDY_MODEL_BYTES:
+        raise CapacityError(f"model: {n_tasks} tasks (connectivities x noise_scales) each carrying this "
+                            f"{model_bytes}-byte model make {n_tasks * model_bytes} bytes, over the cap of "
+                            f"{MAX_STUDY_MODEL_BYTES}; send fewer targets or noise scales, or a smaller model",
+                            field="model")
+
+
+def _check_study_size(req: StudyRequest, compile_only: bool | None) -> None:
+    """The tasks x model-size cap estimated from the request as sent (the model's compact JSON,
+    or its text), so an oversized study is refused before its model is parsed."""
+    from toposcout.compiler.targets import BUILTIN_FAMILIES
+
+    only = req.compile_only if compile_only is None else compile_only
+    n_tasks = (len(req.connectivities) if req.connectivities is not None else len(BUILTIN_FAMILIES)) * (
+        1 if only else len(req.noise_scales))
+    raw = req.model if isinstance(req.model, str) else json.dumps(req.model, separators=(",", ":"))
+    _study_size(n_tasks, len(raw))
 
 
 def prepare(req: StudyRequest, settings, **kwargs: Any) -> Prepared:
@@ -139,6 +163,7 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
     limits = Limits(max_variables=settings.max_variables)
     if isinstance(req.model, str) and not req.model.strip():
         raise ModelError("model: the model text is empty", field="model")
+    _check_study_size(req, compile_only)  # an estimate before the parse; exact after it
     try:
         model = parse_model(req.model, req.model_format, limits=limits, filename=filename)
     except (ModelError, CapacityError) as exc:
@@ -192,6 +217,8 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
         if not math.isfinite(s) or s < 0 or s > 1000:
             raise ModelError(f"noise_scales[{i}]: {s!r} must be a finite number from 0 to 1000",
                              field=f"noise_scales[{i}]")
+    # every task carries the model (its key hashes it, the store keeps it): bound tasks x model size
+    _study_size(len(specs) * len(scales), len(json.dumps(model.to_dict(), separators=(",", ":"))))
     profile = None if compile_only else _profile(req.profile)
     options: dict[str, Any] = dict(gate_set=req.gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
                                    layers=req.layers, seed=req.seed, compile_only=compile_only, profile=profile,
