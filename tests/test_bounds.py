@@ -8,6 +8,7 @@ from __future__ import annotations
 import csv
 import io
 import itertools
+import json
 import math
 import random
 import subprocess
@@ -27,6 +28,15 @@ from toposcout.compiler.model import Limits, maximal_cliques, parse_model
 from toposcout.compiler.profiles import MAX_OVERRIDES, load_profile
 from toposcout.compiler.targets import MAX_CUSTOM_EDGES, make_connectivity, parse_edge_list
 from toposcout.service.output import neutralise_cell, write_csv
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _warm():
+    """Load what the readers import lazily (networkx's node-link reader, jsonschema), so the time and
+    memory bounds below measure the reading, not the first import."""
+    parse_model({"nodes": [{"id": 0}], "links": []}, "nodelink")
+    parse_model({"variables": ["a"]})
+    parse_model("MARKOV\n1\n2\n1\n1 0\n2 1 1\n", "uai")
 
 
 def _bounded(fn, *, seconds: float = 1.0, megabytes: float = 20.0):
@@ -324,3 +334,21 @@ def test_entries_of_cliques_factors_and_parameters_are_capped_and_values_checked
     t0 = time.perf_counter()
     parse_model({"variables": names, "cliques": [names], "factors": [{"scope": names, "values": values}] * 16})
     assert time.perf_counter() - t0 < 3
+
+
+@pytest.mark.parametrize("name, text, needle", [
+    ("huge.uai", "MARKOV\n1000000000\n2 2\n1\n1 0\n2 1 1\n", "1000000000 variables"),
+    ("cliques.json", json.dumps(explosive_graph(45)), "max_cliques"),
+    ("angle.json", json.dumps({"variables": ["a", "b"], "cliques": [["a", "b"]],
+                               "parameters": {"terms": {"a,b": 1e308}}}), "parameters.terms"),
+])
+def test_cli_refuses_the_explosive_files_at_once_with_exit_code_2(tmp_path, name, text, needle):
+    from toposcout.service.cli import main
+
+    path = tmp_path / name
+    path.write_text(text)
+    out, err = io.StringIO(), io.StringIO()
+    t0 = time.perf_counter()
+    code = main(["compare", str(path), "-c", "line"], out=out, err=err)
+    assert code == 2 and needle in err.getvalue() and "Traceback" not in err.getvalue()
+    assert time.perf_counter() - t0 < 2
