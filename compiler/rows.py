@@ -252,12 +252,18 @@ DASHBOARD_COLUMNS: tuple[str, ...] = (
     "clique_hellinger_worst", "duration_us", "threshold_noise_scale")
 
 
+#: what a stored row carries besides the row itself (the store's bookkeeping): first in a CSV
+STORE_COLUMNS: tuple[str, ...] = ("task_index", "status", "cached")
+
+
 def csv_columns(rows: list[dict]) -> list[str]:
-    """CSV columns: the defined fields that occur in ``rows``, in definition order, then any others."""
+    """CSV columns: the store's bookkeeping columns, then the defined fields that occur in
+    ``rows`` in definition order, then any others."""
     seen = {k for r in rows for k in r}
+    lead = [k for k in STORE_COLUMNS if k in seen]
     known = [f.name for f in ROW_FIELDS if f.name in seen]
-    extra = sorted(k for k in dict.fromkeys(k for r in rows for k in r) if k not in FIELDS)
-    return known + extra
+    extra = sorted(k for k in seen if k not in FIELDS and k not in STORE_COLUMNS)
+    return lead + known + extra
 
 
 def markdown_table() -> str:

@@ -42,8 +42,25 @@ NOT_COMPARED = {"compile_seconds", "row_seconds", "simulate_seconds", "threshold
 
 # ---------------------------------------------------------------------------------------------- models
 
-@pytest.fixture(params=[p.name for p in EXAMPLE_FILES])
+def _variables(path: Path) -> int:
+    from toposcout.compiler.model import load_model
+
+    return load_model(path).num_variables
+
+
+#: examples small enough for an exact simulation in a test (the large ones are for benchmarks)
+SMALL_EXAMPLE_FILES = [p for p in EXAMPLE_FILES if _variables(p) <= 12]
+
+
+@pytest.fixture(params=[p.name for p in SMALL_EXAMPLE_FILES])
 def example_path(request) -> Path:
+    """Each example model small enough for an exact simulation (at most 12 variables)."""
+    return EXAMPLES / request.param
+
+
+@pytest.fixture(params=[p.name for p in EXAMPLE_FILES])
+def any_example_path(request) -> Path:
+    """Each example model, the large ones included."""
     return EXAMPLES / request.param
 
 
