@@ -328,3 +328,20 @@ def test_bad_options_name_the_option():
         with pytest.raises(C.ToposcoutError) as exc:
             C.clifford_figures(sched, profile, **kw)
         assert exc.value.field == field
+
+
+def test_tallies_of_parts_pool_to_the_estimate_of_one_run():
+    # what a row split across workers does (toposcout.compiler.parts): P tallies with their own
+    # part seeds and rel_se * sqrt(P), added, against one run at rel_se
+    sched, profile = _tri_sched()
+    one = C.clifford_figures(sched, profile, rel_se=0.02, seed=5)
+    parts = [C.clifford_tally(sched, profile, rel_se=0.02 * math.sqrt(3), seed=C.part_seed(5, p)) for p in range(3)]
+    assert C.part_seed(5, 0) == 5 and len({C.part_seed(5, p) for p in range(3)}) == 3
+    total = parts[0] + parts[1] + parts[2]
+    pooled = C.figures_from_tally(total, 0.02)
+    assert total.parts == 3 and pooled["clifford_shots"] == sum(t.shots for t in parts)
+    assert pooled["clifford_state_fidelity_se"] <= 0.02 * 1.25 * pooled["clifford_state_fidelity"]
+    se = math.hypot(one["clifford_state_fidelity_se"], pooled["clifford_state_fidelity_se"])
+    assert abs(one["clifford_state_fidelity"] - pooled["clifford_state_fidelity"]) <= 3 * se
+    # part 0 alone is the unsplit run's sampling stream
+    assert C.clifford_tally(sched, profile, rel_se=0.02, seed=C.part_seed(5, 0)).returns == one["clifford_returns"]
