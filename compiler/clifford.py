@@ -468,14 +468,26 @@ def clifford_figures(sched: Scheduled, profile: DeviceProfile, switches: NoiseSw
 
 def budget_from_figures(base: dict[str, Any], off: dict[str, dict[str, Any]]) -> dict[str, Any]:
     """The ``clifford_budget_*`` fields from the all-on figures and those with each source
-    off (``off[s]`` for s in two_qubit, one_qubit, idle); see :func:`clifford_budget`."""
+    off (``off[s]`` for s in two_qubit, one_qubit, idle); see :func:`clifford_budget`. A
+    difference involving an upper bound (no shot returned) is not a figure: it is None, and
+    ``error_budget_note`` says which sources it concerns."""
     out: dict[str, Any] = {}
+    bounded = []
     for s in ("two_qubit", "one_qubit", "idle"):
+        if base["clifford_upper_bound"] or off[s]["clifford_upper_bound"]:
+            out[f"clifford_budget_state_{s}"] = out[f"clifford_budget_state_{s}_se"] = None
+            bounded.append(s)
+            continue
         out[f"clifford_budget_state_{s}"] = off[s]["clifford_state_fidelity"] - base["clifford_state_fidelity"]
         se_off = off[s]["clifford_state_fidelity_se"] or 0.0
         se_on = base["clifford_state_fidelity_se"] or 0.0
         out[f"clifford_budget_state_{s}_se"] = math.hypot(se_off, se_on)
-    out["clifford_budget_readout"] = base["clifford_state_fidelity"] - base["clifford_read_fidelity"]
+    out["clifford_budget_readout"] = (None if base["clifford_upper_bound"] else
+                                      base["clifford_state_fidelity"] - base["clifford_read_fidelity"])
+    if bounded:
+        out["error_budget_note"] = (f"clifford budget of {', '.join(bounded)} not computed: no shot returned with all "
+                                    "noise on" + ("" if base["clifford_upper_bound"] else " or with that source off")
+                                    + " (only upper bounds; a difference of bounds is not a figure)")
     return out
 
 
