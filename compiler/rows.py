@@ -226,7 +226,10 @@ ROW_FIELDS: tuple[RowField, ...] = (
        group="timing"),
     _F("time_estimate_seconds", "time the chosen method was estimated to take, stated before it ran", "s",
        group="timing"),
-    _F("trajectory_seconds", "wall time of the trajectories (main run)", "s", group="timing"),
+    _F("trajectory_seconds", "wall time of the trajectories (main run; split rows: summed over the parts)", "s",
+       group="timing"),
+    _F("row_parts", "parts the row's trajectories or clifford shots were split into, to run on that many "
+       "workers at once (absent: one)", "parts", "int", group="timing"),
     _F("error", "null, or why this row failed (other rows still complete)", kind="str", group="outcome"),
     _F("error_field", "the input field or option the error is about", kind="str", group="outcome"),
     _F("noise_error", "null, or why the noise figures could not be computed (the compile figures stay), with "
