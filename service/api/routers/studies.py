@@ -14,11 +14,11 @@ from starlette.concurrency import run_in_threadpool
 from toposcout.compiler.compile import load_qpy
 from toposcout.service.api import schemas as S
 from toposcout.service.api.bodies import FORM_BODY, read_request, validate_request
-from toposcout.service.api.deps import ExecutorDep, FinishedCache, Owner, SettingsDep, StoreDep, StudyId, TaskIndex
+from toposcout.service.api.deps import FinishedCache, Owner, SettingsDep, StoreDep, StudyId, TaskIndex
 from toposcout.service.api.errors import ERROR_BODY, ERRORS_READ, ERRORS_STUDY, ERRORS_SUBMIT, error
 from toposcout.service.api.planning import prepare
 from toposcout.service.output import write_csv
-from toposcout.service.store import FINISHED_STATES, Store, TooManyActive, best_connectivity
+from toposcout.service.store import FINISHED_STATES, QueueFull, Store, TooManyActive, best_connectivity
 
 __all__ = ["router"]
 
@@ -31,26 +31,30 @@ IDEMPOTENCY_KEY = Header(alias="Idempotency-Key", min_length=1, max_length=200, 
 @router.post("", status_code=202, response_model=S.StudyCreated,
              responses=ERRORS_SUBMIT | {202: {"headers": {"Location": {"schema": {"type": "string"}}}}},
              openapi_extra=FORM_BODY, summary="Submit a study (JSON body or a model file upload)")
-async def submit_study(request: Request, owner: Owner, settings: SettingsDep, store: StoreDep, executor: ExecutorDep,
+async def submit_study(request: Request, owner: Owner, settings: SettingsDep, store: StoreDep,
                        idempotency_key: Annotated[str | None, IDEMPOTENCY_KEY] = None):
     data, filename = await read_request(request, settings)
-    return await run_in_threadpool(_submit, data, filename, owner, idempotency_key, settings, store, executor)
+    return await run_in_threadpool(_submit, data, filename, owner, idempotency_key, settings, store)
 
 
-def _submit(data: dict, filename: str | None, owner: str, idempotency_key: str | None, settings, store: Store,
-            executor) -> JSONResponse:
+def _submit(data: dict, filename: str | None, owner: str, idempotency_key: str | None, settings,
+            store: Store) -> JSONResponse:
+    """Store the study: its pending rows are the queue the queue workers take tasks from."""
     req = validate_request(data)
     prep = prepare(req, settings, filename=filename)
     try:
         summary, created, pending = store.create_study(
             owner=owner, request=prep.request, model_name=prep.model.name, tasks=prep.tasks, keys=prep.keys,
-            idempotency_key=idempotency_key, max_active=settings.max_active_studies_per_owner)
+            idempotency_key=idempotency_key, max_active=settings.max_active_studies_per_owner,
+            max_queued=settings.max_queued_tasks)
     except TooManyActive as exc:
         return error(429, f"owner {owner} already has {exc.active} studies queued or running (cap "
                           f"max_active_studies_per_owner={settings.max_active_studies_per_owner}); wait for one "
                           "to finish or cancel one, then retry", None, {"Retry-After": "5"})
-    if pending:
-        executor.submit(summary["id"], pending)
+    except QueueFull as exc:
+        return error(429, f"the service already has {exc.queued} tasks queued and this study's "
+                          f"{len(prep.tasks)} would pass its cap (max_queued_tasks={settings.max_queued_tasks}); "
+                          "retry later", None, {"Retry-After": "30"})
     url = f"/v1/studies/{summary['id']}"
     body = {"id": summary["id"], "url": url, "status": summary["status"], "progress": summary["progress"]}
     return JSONResponse(body, status_code=202, headers={"Location": url})
@@ -85,7 +89,7 @@ def list_studies(owner: Owner, store: StoreDep, status: Annotated[S.StudyStatus 
                responses=ERRORS_STUDY | {403: ERROR_BODY | {"description": "only the owner may cancel a study"},
                                          409: ERROR_BODY | {"description": "the study already finished"}},
                summary="Cancel a study (the record stays, marked cancelled)")
-def cancel_study(study_id: StudyId, owner: Owner, store: StoreDep, executor: ExecutorDep):
+def cancel_study(study_id: StudyId, owner: Owner, store: StoreDep):
     study_owner = store.study_owner(study_id)
     if study_owner is None:
         return error(404, f"no study with id {study_id[:64]!r}", "study_id")
@@ -94,7 +98,7 @@ def cancel_study(study_id: StudyId, owner: Owner, store: StoreDep, executor: Exe
     summary = store.cancel(study_id)
     if summary["status"] in ("done", "failed"):
         return error(409, f"study {study_id} already finished ({summary['status']}); nothing to cancel", "study_id")
-    executor.cancel(study_id)
+    # the queue workers holding its tasks see the status and stop them
     return JSONResponse(summary)
 
 
