@@ -239,3 +239,21 @@ def test_sigkill_of_the_server_leaves_no_worker_behind(tmp_path, start_server, k
         assert _session_pids(srv.proc.pid) == set(), "worker processes outlived their server"
     finally:
         srv.stop()  # SIGKILLs whatever is left of the group
+
+
+def test_a_full_queue_answers_429_with_retry_after(tmp_path, small_model, make_model):
+    from fastapi.testclient import TestClient
+
+    from toposcout.service.api.app import create_app
+    from toposcout.service.settings import Settings
+
+    settings = Settings(data_dir=tmp_path, run_workers=False, max_queued_tasks=4)  # nobody takes tasks here
+    with TestClient(create_app(settings)) as c:
+        body = {"model": small_model, "connectivities": ["line", "ring", "grid"], "compile_only": True, "seeds": 1}
+        assert c.post("/v1/studies", json=body).status_code == 202  # 3 tasks queued
+        r = c.post("/v1/studies", json={**body, "seed": 5})  # 3 more would make 6 > 4
+        assert r.status_code == 429 and int(r.headers["retry-after"]) > 0
+        assert "max_queued_tasks=4" in r.json()["detail"]
+        one = {**body, "connectivities": ["line"], "seed": 6}
+        assert c.post("/v1/studies", json=one).status_code == 202  # 4 fits exactly
+        assert "toposcout_queue_length 4" in c.get("/metrics").text

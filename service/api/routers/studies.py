@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import collections
 import io
 import json
+import threading
 from typing import Annotated
 
 from fastapi import APIRouter, Header, Query, Request
@@ -16,7 +18,7 @@ from toposcout.service.api import schemas as S
 from toposcout.service.api.bodies import FORM_BODY, read_request, validate_request
 from toposcout.service.api.deps import FinishedCache, Owner, SettingsDep, StoreDep, StudyId, TaskIndex
 from toposcout.service.api.errors import ERROR_BODY, ERRORS_READ, ERRORS_STUDY, ERRORS_SUBMIT, error
-from toposcout.service.api.planning import prepare
+from toposcout.service.api.planning import Prepared, prepare
 from toposcout.service.output import write_csv
 from toposcout.service.store import FINISHED_STATES, QueueFull, Store, TooManyActive, best_connectivity
 
@@ -37,11 +39,45 @@ async def submit_study(request: Request, owner: Owner, settings: SettingsDep, st
     return await run_in_threadpool(_submit, data, filename, owner, idempotency_key, settings, store)
 
 
+class _PreparedMemo:
+    """The last few prepared requests of this process, by their canonical JSON text: a resubmission
+    (the common case of a cached study) skips validation and task building. Only small bodies
+    (at most ``max_chars``) are kept; a request that failed is never kept."""
+
+    def __init__(self, size: int = 256, max_chars: int = 65536):
+        self.size, self.max_chars = size, max_chars
+        self._d: collections.OrderedDict = collections.OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, data: dict, filename: str | None, settings) -> Prepared:
+        try:
+            key = (json.dumps(data, sort_keys=True, separators=(",", ":")), filename, id(settings))
+        except (TypeError, ValueError, RecursionError):
+            key = None
+        if key is not None and len(key[0]) <= self.max_chars:
+            with self._lock:
+                hit = self._d.get(key)
+                if hit is not None:
+                    self._d.move_to_end(key)
+                    return hit
+        else:
+            key = None
+        prep = prepare(validate_request(data), settings, filename=filename)
+        if key is not None:
+            with self._lock:
+                self._d[key] = prep
+                while len(self._d) > self.size:
+                    self._d.popitem(last=False)
+        return prep
+
+
+_PREPARED = _PreparedMemo()
+
+
 def _submit(data: dict, filename: str | None, owner: str, idempotency_key: str | None, settings,
             store: Store) -> JSONResponse:
     """Store the study: its pending rows are the queue the queue workers take tasks from."""
-    req = validate_request(data)
-    prep = prepare(req, settings, filename=filename)
+    prep = _PREPARED.get(data, filename, settings)
     try:
         summary, created, pending = store.create_study(
             owner=owner, request=prep.request, model_name=prep.model.name, tasks=prep.tasks, keys=prep.keys,
