@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import inspect
 import logging
 import os
 import sys
@@ -72,9 +73,13 @@ def serve(*, host: str | None = None, port: int | None = None, allow_remote: boo
             os.environ.update({"TOPOSCOUT_RUN_WORKERS": "0", "TOPOSCOUT_DATABASE_URL": url,
                                "TOPOSCOUT_HOST": settings.host, "TOPOSCOUT_PORT": str(settings.port),
                                SUPERVISOR_PID_VARIABLE: str(os.getpid())})
+            # an API process imports the simulator stack before it answers uvicorn's health check: on a
+            # busy machine that takes longer than uvicorn's 5 s default, which then kills it in a loop
+            slow_start = ({"timeout_worker_healthcheck": 120}
+                          if "timeout_worker_healthcheck" in inspect.signature(uvicorn.run).parameters else {})
             uvicorn.run("toposcout.service.api.app:app_from_environment", factory=True, host=settings.host,
                         port=settings.port, workers=api_workers, log_config=log_config(), proxy_headers=False,
-                        timeout_keep_alive=30)
+                        timeout_keep_alive=30, **slow_start)
     finally:
         stop_process(worker)
     return 0
