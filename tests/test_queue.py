@@ -80,6 +80,25 @@ def test_renew_keeps_a_lease_and_release_gives_it_back(store):
     assert store.renew_leases("other", 1.0) == set() and store.statuses([sid]) == {sid: "cancelled"}
 
 
+def test_a_dead_local_workers_leases_are_taken_back_at_once(store):
+    import socket
+
+    from toposcout.service.execution.local import LocalExecutor
+    from toposcout.service.execution.queue import QueueWorker
+    from toposcout.service.settings import Settings
+
+    sid = _new(store, 2, "dead")
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    host = socket.gethostname()[:40]
+    store.claim_task(f"{host}-{int(dead.stdout)}-deadbeef", 600)  # that process has exited
+    store.claim_task(f"elsewhere-{os.getpid()}-cafe0000", 600)    # another host: left to its lease
+    qw = QueueWorker(store, lambda leased: LocalExecutor(Settings(), leased, workers=1))
+    qw._reclaim_dead()
+    again = store.claim_task("next", 30)
+    assert (again["study_id"], again["task_index"], again["attempts"]) == (sid, 0, 2)  # the death counts
+    assert store.claim_task("next", 30) is None  # row 1 is still leased to the other host's worker
+
+
 def _fire(url: str, n: int, submit) -> list[str]:
     """``n`` threads, each with its own Store (own engine and connections, as separate API
     processes have), released together; returns each one's outcome."""

@@ -12,7 +12,8 @@ processes of their own: ``toposcout serve`` starts one for the embedded default,
   still holding the lease: a worker that was paused or cut off past its lease cannot overwrite
   the row another worker took over, and a killed worker's task is simply taken again once its
   lease expires. No row is lost, none is written twice.
-* Leases are renewed every ``lease_seconds / 3``; held studies are checked for cancellation
+* Leases are renewed every ``lease_seconds / 3``; leases of dead workers of the same host (their
+  pid is gone: a killed server) are given back at once, other hosts' when they run out; held studies are checked for cancellation
   twice a second (a cancelled study's running task is stopped); a task taken more than
   ``max_attempts`` times (its workers keep dying: out of memory, killed) gets a failure row.
 * :func:`run_queue_worker` is the process's main (``toposcout worker URL``); :func:`spawn_queue_worker`
@@ -33,8 +34,8 @@ import uuid
 from typing import Any, Mapping
 
 from toposcout.service.execution.base import Executor, failure_row
+from toposcout.service.execution.factory import make_executor
 from toposcout.service.execution.lifeline import die_with_parent
-from toposcout.service.execution.local import LocalExecutor
 from toposcout.service.settings import Settings
 from toposcout.service.store import Store
 
@@ -47,6 +48,23 @@ log = logging.getLogger("toposcout.queue")
 def worker_id() -> str:
     """A unique lease-owner name: host, pid and a random part (at most 64 characters)."""
     return f"{socket.gethostname()[:40]}-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+
+
+def _dead_local_worker(owner: str, host: str) -> bool:
+    """``owner`` (a :func:`worker_id`) names a worker of this host whose process no longer exists."""
+    parts = owner.rsplit("-", 2)
+    if len(parts) != 3 or parts[0] != host or not parts[1].isdigit():
+        return False
+    pid = int(parts[1])
+    if pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:  # a live process of another user
+        return False
+    return False
 
 
 def is_database_url(address: str) -> bool:
@@ -177,7 +195,19 @@ class QueueWorker:
             self.executor.submit(sid, [(idx, claim["task"])])
         return took
 
+    def _reclaim_dead(self) -> None:
+        """Give back the leases of workers of this host whose process is gone (a killed server):
+        their tasks are taken again now instead of when the leases run out. A pid reused by
+        another process only means waiting for the lease, as for a worker on another host."""
+        host = socket.gethostname()[:40]
+        for owner in self.store.lease_owners():
+            if owner != self.worker and _dead_local_worker(owner, host):
+                n = self.store.release_leases(owner, count_attempt=True)
+                if n:
+                    log.info("took back %d tasks of the dead worker %s", n, owner)
+
     def _renew(self) -> None:
+        self._reclaim_dead()
         still = self.store.renew_leases(self.worker, self.lease_seconds)
         with self._lock:
             mine = list(self._held)
@@ -199,17 +229,6 @@ class QueueWorker:
                         self._held.pop(k)
 
 
-def _make_executor(settings: Any, slots: int | None):
-    def make(leased: LeasedStore) -> Executor:
-        if getattr(settings, "dask_address", None):
-            # optional heavy dependency: Dask is imported only by workers configured for it
-            from toposcout.service.execution.dask import DaskExecutor
-
-            return DaskExecutor(settings, leased)
-        return LocalExecutor(settings, leased, workers=slots)
-    return make
-
-
 def run_queue_worker(database_url: str, *, slots: int | None = None, parent_pid: int | None = None,
                      settings: Any = None) -> int:
     """``toposcout worker DATABASE_URL``: a queue worker until SIGTERM / SIGINT; returns the exit code.
@@ -219,7 +238,7 @@ def run_queue_worker(database_url: str, *, slots: int | None = None, parent_pid:
     if parent_pid is not None:
         die_with_parent(parent_pid)
     store = Store(database_url)
-    qw = QueueWorker(store, _make_executor(settings, slots), lease_seconds=settings.lease_seconds,
+    qw = QueueWorker(store, lambda leased: make_executor(settings, leased, workers=slots), lease_seconds=settings.lease_seconds,
                      max_attempts=settings.max_task_attempts)
 
     def on_signal(signum, _frame):

@@ -551,9 +551,11 @@ class Store:
             return {(sid, int(i)) for sid, i in s.execute(select(RowRecord.study_id, RowRecord.task_index)
                                                           .where(*mine))}
 
-    def release_leases(self, worker: str, rows: Iterable[tuple[str, int]] | None = None) -> int:
+    def release_leases(self, worker: str, rows: Iterable[tuple[str, int]] | None = None, *,
+                       count_attempt: bool = False) -> int:
         """Give back the leases of ``worker`` (all, or those of ``rows``): the rows can be taken
-        again at once, and the attempt is not counted. Returns how many."""
+        again at once; the attempt is not counted unless ``count_attempt`` (the worker died).
+        Returns how many."""
         cond = [RowRecord.lease_owner == worker, RowRecord.status == "pending"]
         if rows is not None:
             rows = list(rows)
@@ -563,8 +565,15 @@ class Store:
         with self._writing() as s:
             return s.execute(update(RowRecord).where(*cond)
                              .values(lease_owner=None, lease_until=None,
-                                     attempts=case((RowRecord.attempts > 0, RowRecord.attempts - 1), else_=0))
-                             ).rowcount
+                                     attempts=RowRecord.attempts if count_attempt else
+                                     case((RowRecord.attempts > 0, RowRecord.attempts - 1), else_=0))).rowcount
+
+    def lease_owners(self) -> set[str]:
+        """Workers holding a lease on a pending row now or before (expired leases included)."""
+        with self._session() as s:
+            return set(s.scalars(select(RowRecord.lease_owner).where(RowRecord.status == "pending",
+                                                                      RowRecord.lease_owner.is_not(None))
+                                 .distinct()).all())
 
     def statuses(self, study_ids: Iterable[str]) -> dict[str, str]:
         """study id -> status, for the given ids (unknown ids left out)."""
