@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import io
 import os
 import signal
 import subprocess
@@ -276,3 +277,14 @@ def test_a_full_queue_answers_429_with_retry_after(tmp_path, small_model, make_m
         one = {**body, "connectivities": ["line"], "seed": 6}
         assert c.post("/v1/studies", json=one).status_code == 202  # 4 fits exactly
         assert "toposcout_queue_length 4" in c.get("/metrics").text
+
+
+def test_worker_help_names_both_kinds_and_a_bad_count_is_refused(capsys):
+    from toposcout.service.cli import main
+
+    assert main(["worker", "--help"]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert "database URL" in text and "queue worker" in text and "tcp://host:8786" in text
+    err = io.StringIO()
+    assert main(["worker", "sqlite:///x.db", "--nworkers", "0"], err=err) == 2
+    assert "--nworkers must be at least 1" in err.getvalue()
