@@ -279,6 +279,11 @@ class DaskExecutor(Executor):
         with self._lock:
             return sum(1 for s, _ in self._queued if study_id is None or s == study_id)
 
+    def holds(self, study_id: str, task_index: int) -> bool:
+        """The task is queued here or on the cluster (not yet recorded or dropped)."""
+        with self._lock:
+            return (study_id, int(task_index)) in self._queued
+
     def wait_connected(self, timeout: float = 60.0) -> bool:
         """Block until the client is connected (tests and benchmarks)."""
         end = time.monotonic() + timeout
