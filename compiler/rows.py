@@ -226,7 +226,10 @@ ROW_FIELDS: tuple[RowField, ...] = (
        group="timing"),
     _F("time_estimate_seconds", "time the chosen method was estimated to take, stated before it ran", "s",
        group="timing"),
-    _F("trajectory_seconds", "wall time of the trajectories (main run)", "s", group="timing"),
+    _F("trajectory_seconds", "wall time of the trajectories (main run; split rows: summed over the parts)", "s",
+       group="timing"),
+    _F("row_parts", "parts the row's trajectories or clifford shots were split into, to run on that many "
+       "workers at once (absent: one)", "parts", "int", group="timing"),
     _F("error", "null, or why this row failed (other rows still complete)", kind="str", group="outcome"),
     _F("error_field", "the input field or option the error is about", kind="str", group="outcome"),
     _F("noise_error", "null, or why the noise figures could not be computed (the compile figures stay), with "
@@ -252,12 +255,18 @@ DASHBOARD_COLUMNS: tuple[str, ...] = (
     "clique_hellinger_worst", "duration_us", "threshold_noise_scale")
 
 
+#: what a stored row carries besides the row itself (the store's bookkeeping): first in a CSV
+STORE_COLUMNS: tuple[str, ...] = ("task_index", "status", "cached")
+
+
 def csv_columns(rows: list[dict]) -> list[str]:
-    """CSV columns: the defined fields that occur in ``rows``, in definition order, then any others."""
+    """CSV columns: the store's bookkeeping columns, then the defined fields that occur in
+    ``rows`` in definition order, then any others."""
     seen = {k for r in rows for k in r}
+    lead = [k for k in STORE_COLUMNS if k in seen]
     known = [f.name for f in ROW_FIELDS if f.name in seen]
-    extra = sorted(k for k in dict.fromkeys(k for r in rows for k in r) if k not in FIELDS)
-    return known + extra
+    extra = sorted(k for k in seen if k not in FIELDS and k not in STORE_COLUMNS)
+    return lead + known + extra
 
 
 def markdown_table() -> str:

@@ -82,10 +82,22 @@ def _parser() -> argparse.ArgumentParser:
     sv.add_argument("--port", type=int, default=None, help="port (default 8000)")
     sv.add_argument("--allow-remote", action="store_true", default=None,
                     help="listen on a non-loopback address without tokens configured")
+    sv.add_argument("--workers", type=int, default=1, dest="api_workers", metavar="N",
+                    help="uvicorn API processes sharing the store (default 1); the compute worker processes "
+                         "are TOPOSCOUT_WORKERS")
 
-    w = sub.add_parser("worker", help="start Dask worker processes for a toposcout cluster")
-    w.add_argument("scheduler", help="the Dask scheduler, e.g. tcp://host:8786")
-    w.add_argument("--nworkers", type=int, default=1, help="worker processes, one task at a time each (default 1)")
+    w = sub.add_parser("worker", help="start worker processes: queue workers on a database, or Dask workers",
+                       description="With a database URL (sqlite:///..., postgresql+psycopg://...): a queue "
+                                   "worker that takes tasks from that store with a lease and runs them in "
+                                   "--nworkers compute processes (TOPOSCOUT_DASK_ADDRESS set: on that Dask "
+                                   "cluster). With a Dask scheduler address (tcp://host:8786): Dask workers "
+                                   "joining it.")
+    w.add_argument("scheduler", metavar="scheduler",
+                   help="a database URL (queue worker) or a Dask scheduler address tcp://host:8786 (Dask workers)")
+    w.add_argument("--nworkers", type=int, default=None,
+                   help="worker processes, one task at a time each (default: 1 for Dask; TOPOSCOUT_WORKERS "
+                        "for a queue worker)")
+    w.add_argument("--parent-pid", type=int, default=None, help=argparse.SUPPRESS)  # serve's own worker
     w.add_argument("--memory-limit", default="4GiB", help="memory limit per process, e.g. 4GiB (default 4GiB)")
     w.add_argument("--threads", type=int, default=None,
                    help="simulator (OpenMP) threads per process (default: cores / nworkers)")
@@ -227,6 +239,19 @@ def _write_circuits(tasks: list[dict], rows: list[dict], folder: Path) -> None:
         (folder / f"{name}.qpy").write_bytes(raw)
 
 
+def _worker(args) -> int:
+    from toposcout.service.execution.queue import is_database_url, run_queue_worker
+
+    if args.nworkers is not None and args.nworkers < 1:
+        raise ToposcoutError("--nworkers must be at least 1", field="nworkers")
+    if is_database_url(args.scheduler):
+        return run_queue_worker(args.scheduler, slots=args.nworkers, parent_pid=args.parent_pid)
+    from toposcout.service.execution.dask import run_worker
+
+    return run_worker(args.scheduler, nworkers=args.nworkers or 1, memory_limit=args.memory_limit,
+                      threads=args.threads, host=args.host, name=args.name)
+
+
 def _targets(out) -> int:
     from toposcout.compiler.targets import connectivity_catalogue, gate_set_catalogue
 
@@ -267,12 +292,10 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
         if args.command == "serve":
             from toposcout.service.api.server import serve
 
-            return serve(host=args.host, port=args.port, allow_remote=args.allow_remote, err=err)
+            return serve(host=args.host, port=args.port, allow_remote=args.allow_remote,
+                         api_workers=args.api_workers, err=err)
         if args.command == "worker":
-            from toposcout.service.execution.dask import run_worker
-
-            return run_worker(args.scheduler, nworkers=args.nworkers, memory_limit=args.memory_limit,
-                              threads=args.threads, host=args.host, name=args.name)
+            return _worker(args)
     except ToposcoutError as exc:
         where = f" [{exc.field}]" if exc.field else ""
         err.write(f"toposcout: error{where}: {exc}\n")

@@ -25,7 +25,7 @@ ROOT = Path(__file__).resolve().parent.parent
 FOLDERS = {"toposcout": ROOT / "toposcout", "toposcout.compiler": ROOT / "compiler",
            "toposcout.service": ROOT / "service", "toposcout.topologies": ROOT / "topologies"}
 ORDER = ["version", "errors", "rows", "model", "ansatz", "targets", "profiles", "compiled", "synthesis", "compile", "noise",
-         "simulate", "metrics", "study", "bench"]
+         "simulate", "metrics", "trajectories", "clifford", "methods", "study", "parts", "bench"]
 
 
 def _modules() -> dict[str, Path]:
