@@ -237,7 +237,7 @@ def parse_device(d: Mapping[str, Any], *, name: str | None = None) -> Device:
     values.update(defaults)
     missing = [k for k in DEFAULT_KEYS if k not in values]
     if missing:
-        raise _err(f"missing with no default: give it in [defaults] or name a built-in profile in base", 
+        raise _err("missing with no default: give it in [defaults] or name a built-in profile in base", 
                    f"defaults.{missing[0]}")
     if values["t2_us"] > 2 * values["t1_us"]:
         raise _err(f"T2 = {values['t2_us']:g} us exceeds 2*T1 = {2 * values['t1_us']:g} us", "defaults.t2_us")
