@@ -127,7 +127,7 @@ ROW_FIELDS: tuple[RowField, ...] = (
     _F("chip_region_rank", "this row's region by ESP among chip_regions (0 = best)", kind="int", short="rank",
        group="compile"),
     _F("chip_region", "physical qubits this row's region uses", kind="list", group="compile"),
-    _F("chip_region_esp", "ESP of this row's region", group="compile"),
+    _F("chip_region_esp", "ESP of this row's region", short="ESP region", group="compile"),
     _F("chip_region_esp_best", "ESP of the best region", group="compile"),
     _F("chip_region_esp_median", "ESP of the median region", group="compile"),
     _F("chip_region_esp_worst", "ESP of the worst region", group="compile"),

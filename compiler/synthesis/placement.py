@@ -283,17 +283,23 @@ def candidate_placements(supports: Sequence[Sequence[int]], coupling: nx.Graph, 
         if tuple(p) not in seen:
             seen.add(tuple(p))
             found.append((sc.total([sc.index[q] for q in p]), "search", p))
+    if weights is not None:  # greedy placements grown all over the chip: the weighted cost is not local
+        for p in region_placements(supports, coupling, n, 4 * count, weights=weights, seed=seed, scorer=sc):
+            if tuple(p) not in seen:
+                seen.add(tuple(p))
+                found.append((sc.total([sc.index[q] for q in p]), "search", p))
     found.sort(key=lambda x: x[0])
     return [(how, p) for _, how, p in found[:count]]
 
 
 def region_placements(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int, k: int, *,
-                      weights: Weights | None = None, seed: int = 0) -> list[list[int]]:
+                      weights: Weights | None = None, seed: int = 0, scorer: _Scorer | None = None
+                      ) -> list[list[int]]:
     """Up to ``k`` placements on different regions of the chip: greedy placements grown from
     start qubits spread over the chip by farthest-point order (the next start is the qubit
     farthest in hops from every start so far), each polished by a short local search; two
     placements on the same set of qubits count once."""
-    sc = _Scorer(supports, coupling, n, weights)
+    sc = scorer or _Scorer(supports, coupling, n, weights)
     N = len(sc.nodes)
     order = [min(range(N), key=lambda q: (max(sc.dist[q]), q))]
     near = list(sc.dist[order[0]])
