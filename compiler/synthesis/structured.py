@@ -112,8 +112,11 @@ def structured_layers(
     best: tuple[tuple, list[Block], str, str] | None = None
     for how, placement in cands:
         for gi, g in enumerate(graphs):
-            if gi and n > 1 and not any(set(placement) <= c for c in nx.connected_components(g)):
-                continue
+            if gi:  # the pruned graph: only the connected part holding the whole placement
+                part = next((c for c in nx.connected_components(g) if set(placement) <= c), None)
+                if part is None:
+                    continue
+                g = g.subgraph(part)
             region = make_region(g, placement)
             for name, method in methods:
                 blocks: list[Block] = []
