@@ -27,7 +27,7 @@ Example::
     qubits = [1, 2]
     two_qubit_error = 0.03
 
->>> d = parse_device({"name": "ex", "qubits": 3, "edges": [[0, 1], [1, 2]],
+>>> d = parse_device({"name": "ex", "qubits": 3, "edges": [[0, 1], [1, 2]], "base": "superconducting",
 ...                   "coupler": [{"qubits": [1, 2], "two_qubit_error": 0.03}]})
 >>> d.profile.edge(2, 1).two_qubit_error, d.profile.edge(0, 1).two_qubit_error
 (0.03, 0.008)
@@ -237,7 +237,7 @@ def parse_device(d: Mapping[str, Any], *, name: str | None = None) -> Device:
     values.update(defaults)
     missing = [k for k in DEFAULT_KEYS if k not in values]
     if missing:
-        raise _err("missing with no default: give it in [defaults] or name a built-in profile in base", 
+        raise _err("missing with no default: give it in [defaults] or name a built-in profile in base",
                    f"defaults.{missing[0]}")
     if values["t2_us"] > 2 * values["t1_us"]:
         raise _err(f"T2 = {values['t2_us']:g} us exceeds 2*T1 = {2 * values['t1_us']:g} us", "defaults.t2_us")

@@ -311,6 +311,12 @@ def _targets(out) -> int:
     out.write("\nDevice profiles (--profile NAME or a TOML file; typical values from memory, not a real device):\n")
     for name, desc in profile_catalogue().items():
         out.write(f"  {name:<20} {desc}\n")
+    from toposcout.compiler.devices import DEVICE_NAMES, load_device
+
+    out.write("\nExample devices (--device NAME or a device file; invented chips, typical values from memory):\n")
+    for name in DEVICE_NAMES:
+        d = load_device(name)
+        out.write(f"  {name:<20} {d.description} [{d.num_qubits} qubits, {len(d.connectivity.edges)} couplers]\n")
     return EXIT_OK
 
 
