@@ -435,3 +435,25 @@ def test_api_takes_a_device_file_and_names_bad_fields(tmp_path, chain_model):
         assert r.status_code == 422 and "connectivities" in r.text
         r = c.post("/v1/compile", json={"model": chain_model(30), "device": text})
         assert r.status_code == 422 and "30 variables" in r.text
+
+
+def test_dashboard_form_takes_a_device_upload(tmp_path, chain_model):
+    import json
+
+    from fastapi.testclient import TestClient
+
+    from toposcout.service.api.app import create_app
+    from toposcout.service.settings import Settings
+
+    text = (device_dirs()[0] / "birch-36.toml").read_text()
+    with TestClient(create_app(Settings(data_dir=tmp_path, workers=1))) as c:
+        files = {"file": ("m.json", json.dumps(chain_model(4)), "application/json"),
+                 "device_file": ("birch-36.toml", text, "text/plain")}
+        r = c.post("/submit", data={"connectivities": ["line"], "compile_only": "true", "strategy": "structured"},
+                   files=files, follow_redirects=False)
+        assert r.status_code == 303, r.text
+        study = c.get("/v1" + r.headers["location"].replace("/studies", "/studies", 1)).json()
+        assert study["request"]["device"]["name"] == "birch-36" and study["request"]["connectivities"] is None
+        bad = {**files, "device_file": ("bad.toml", 'name = "b"\nqubits = 2\nedges = [[0, 0]]\n', "text/plain")}
+        r = c.post("/submit", data={"compile_only": "true"}, files=bad)
+        assert r.status_code == 422 and "self edge" in r.text

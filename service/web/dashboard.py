@@ -470,6 +470,14 @@ async def submit(request: Request):
     for key in ("profile", "fidelity_target", "gate_set", "strategy", "seeds", "layers"):
         if values[key].strip():
             data[key] = values[key].strip()
+    device = form.get("device_file")
+    if device is not None and hasattr(device, "read") and getattr(device, "filename", ""):
+        try:
+            data["device"] = (await device.read()).decode("utf-8")
+        except UnicodeDecodeError:
+            return again(f"the device file {device.filename!r} is not UTF-8 text", "device")
+        data.pop("connectivities", None)  # a device fixes the connectivity and the figures
+        data.pop("profile", None)
     data["compile_only"] = "true" if values["compile_only"] else "false"
     data = {k: v for k, v in data.items() if v != []}
     resp = await _api(request, "POST", "/v1/studies", data=data,
