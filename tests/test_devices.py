@@ -457,3 +457,18 @@ def test_dashboard_form_takes_a_device_upload(tmp_path, chain_model):
         bad = {**files, "device_file": ("bad.toml", 'name = "b"\nqubits = 2\nedges = [[0, 0]]\n', "text/plain")}
         r = c.post("/submit", data={"compile_only": "true"}, files=bad)
         assert r.status_code == 422 and "self edge" in r.text
+
+
+def test_profile_overrides_on_a_builtin_connectivity_steer_placement_too(chain_model):
+    from toposcout.compiler.profiles import load_profile
+    from toposcout.compiler.study import make_tasks, run_task
+
+    prof = load_profile("superconducting").to_dict()
+    prof["edge"] = [{"qubits": [0, 1], "two_qubit_error": 0.08}, {"qubits": [1, 2], "two_qubit_error": 0.08}]
+    (t,) = make_tasks(chain_model(3), ["ring:8"], profile=prof, compile_only=True, strategy="structured")
+    row = run_task(t)
+    assert row["placement_objective"] == "errors" and row["esp_count_placement"] is not None
+    assert not {0, 1} <= set(row["layout"].values()) or not {1, 2} <= set(row["layout"].values())
+    (t,) = make_tasks(chain_model(3), ["ring:8"], compile_only=True, strategy="structured")
+    plain = run_task(t)
+    assert plain["placement_objective"] == "count" and "esp_count_placement" not in plain
