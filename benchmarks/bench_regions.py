@@ -1,7 +1,7 @@
 """Regions of a chip: `compare --regions 20` on the 27-qubit example device with a 12-variable model.
 
     .venv/bin/python benchmarks/bench_regions.py [--method auto|trajectories|clifford] [--compile-only]
-                                                 [--strategy structured] [--skip-gain]
+                                                 [--strategy structured] [--skip-gain] [--in-process]
 
 Prints the wall time of the whole run (20 placements compiled per strategy and ranked by ESP, the best
 3 of each simulated unless --compile-only), the best / median / worst region, and the distribution of
@@ -46,6 +46,21 @@ def regions(method: str, compile_only: bool, strategy: str | None = None) -> Non
     if rc:
         print(err.getvalue(), file=sys.stderr)
     print(f"toposcout {' '.join(argv[:1] + ['MODEL'] + argv[2:])}: {sec:.1f} s wall (exit {rc})")
+
+
+def in_process() -> None:
+    """The same study in this one process (no worker pool, so the ranking runs once), compile-only and with
+    the best 3 regions simulated (clifford estimate; 200 trajectories), error budget off."""
+    from toposcout.compiler.study import make_tasks, run_task
+
+    for kw in (dict(compile_only=True), dict(method="clifford"), dict(method="trajectories", trajectories=200)):
+        ts = make_tasks(MODEL, None, device="alder-27", strategy="structured", regions=20, error_budget=False, **kw)
+        t = time.perf_counter()
+        rows = [run_task(x) for x in ts]
+        sec = time.perf_counter() - t
+        figs = [(r["chip_region_rank"], round(r["chip_region_esp"], 3),
+                 round(r.get("clifford_state_fidelity") or r.get("state_fidelity") or 0, 3)) for r in rows]
+        print(f"in process, {kw}: rank 20 regions + {len(rows)} rows in {sec:.1f} s; (rank, ESP, F) {figs}")
 
 
 def placement_gain(cases: int = 32) -> None:
@@ -100,7 +115,11 @@ if __name__ == "__main__":
     ap.add_argument("--compile-only", action="store_true")
     ap.add_argument("--strategy", default=None, help="default: one set of rows per generic and structured")
     ap.add_argument("--skip-gain", action="store_true")
+    ap.add_argument("--in-process", action="store_true", help="only the one-process timings")
     a = ap.parse_args()
+    if a.in_process:
+        in_process()
+        raise SystemExit(0)
     regions(a.method, a.compile_only, a.strategy)
     if not a.skip_gain:
         placement_gain()
