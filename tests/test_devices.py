@@ -454,6 +454,15 @@ def test_dashboard_form_takes_a_device_upload(tmp_path, chain_model):
         assert r.status_code == 303, r.text
         study = c.get("/v1" + r.headers["location"].replace("/studies", "/studies", 1)).json()
         assert study["request"]["device"]["name"] == "birch-36" and study["request"]["connectivities"] is None
+        sid = r.headers["location"].rsplit("/", 1)[-1]
+        import time
+
+        for _ in range(600):  # the compile-only row (a worker process); then the chip drawing of the row
+            if c.get(f"/v1/studies/{sid}").json()["status"] in ("done", "failed"):
+                break
+            time.sleep(0.1)
+        svg = c.get(f"/studies/{sid}/drawings/0.svg")
+        assert svg.status_code == 200 and "Device birch-36" in svg.text and "log scale" in svg.text
         bad = {**files, "device_file": ("bad.toml", 'name = "b"\nqubits = 2\nedges = [[0, 0]]\n', "text/plain")}
         r = c.post("/submit", data={"compile_only": "true"}, files=bad)
         assert r.status_code == 422 and "self edge" in r.text

@@ -305,6 +305,12 @@ def connectivity_for_row(row: Mapping[str, Any], request: Mapping[str, Any] | No
     A ``custom`` connectivity is rebuilt from the edge lists in the study's request.
     """
     name = str(row.get("connectivity") or "")
+    if (request or {}).get("device"):  # a device study: the chip of its device file
+        from toposcout.compiler.devices import parse_device
+
+        dev = parse_device(request["device"])
+        if dev.name == name:
+            return dev.connectivity
     family = row.get("connectivity_family") or next(
         (f for f in ("all-to-all", "heavy-hex", "line", "ring", "grid", "custom") if name.startswith(f + "-")), None)
     n = int(row.get("variables") or 1)

@@ -385,8 +385,14 @@ async def drawing(request: Request, study_id: str, name: str, download: bool = F
         if q.status_code == 200:
             active = await run_in_threadpool(_active_qubits, q.content)
         try:
-            conn = charts.connectivity_for_row(row, study.get("request"))
-            body = await run_in_threadpool(lambda: charts.connectivity_chart(row, conn, active=active, fmt=fmt))
+            req = study.get("request") or {}
+            if req.get("device") and fmt == "svg":  # the chip at its coordinates, shaded by error
+                from toposcout.compiler.devices import parse_device
+
+                body = charts.device_svg(parse_device(req["device"]), row).encode("utf-8")
+            else:
+                conn = charts.connectivity_for_row(row, study.get("request"))
+                body = await run_in_threadpool(lambda: charts.connectivity_chart(row, conn, active=active, fmt=fmt))
         except ToposcoutError as exc:
             return _bad(request, str(exc), exc.field or "connectivity")
         _cache.put(key, body)
