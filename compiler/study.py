@@ -11,7 +11,12 @@ A task::
      "compile_only": False, "profile": "NAME" | {profile dict} | None, "noise_scale": 1.0,
      "memory_budget_bytes": None, "error_budget": True, "fidelity_target": None,
      "keep_circuit": False, "method": "auto", "time_budget_seconds": None, "trajectories": None,
-     "precision": None}
+     "precision": None, "device": None | {device dict}, "placement": None | "errors" | "count",
+     "regions": None | K, "region_rank": 0, "jitter": None | sigma, "jitter_samples": 100}
+
+With ``device`` (the normalised content of a device file, ``toposcout.compiler.devices``) the
+chip fixes the connectivity and its figures are the profile; ``placement``, ``regions`` and
+``jitter`` are described in ``toposcout.compiler.regions``.
 
 ``method`` picks how the noise figures are computed (``toposcout.compiler.methods``); when they
 cannot be computed the row keeps its compile figures and says why in ``noise_error``.
@@ -36,7 +41,7 @@ from collections import OrderedDict
 from typing import Any, Iterable, Mapping, Sequence
 
 from toposcout.compiler.ansatz import FAMILIES, build_ansatz
-from toposcout.compiler.compile import STRATEGIES, compile_ansatz
+from toposcout.compiler.compile import STRATEGIES
 from toposcout.compiler.errors import CapacityError, ModelError, TargetError, ToposcoutError
 from toposcout.compiler.model import Limits, Model, parse_model
 from toposcout.compiler.targets import BUILTIN_FAMILIES, make_connectivity, parse_edge_list, get_gate_set, read_edge_list
@@ -62,6 +67,12 @@ TASK_DEFAULTS: dict[str, Any] = {
     "time_budget_seconds": None,
     "trajectories": None,
     "precision": None,
+    "device": None,
+    "placement": None,
+    "regions": None,
+    "region_rank": 0,
+    "jitter": None,
+    "jitter_samples": 100,
 }
 
 
@@ -111,14 +122,26 @@ def make_tasks(
     connectivities: Sequence[str | Mapping[str, Any]] | None = None,
     *,
     noise_scales: Iterable[float] | None = None,
+    regions_simulated: int = 3,
     **options: Any,
 ) -> list[dict]:
     """One task per (connectivity, noise scale); options are task fields.
 
-    connectivities: default None: every built-in family, sized to the model.
+    connectivities: default None: every built-in family, sized to the model (with a
+        ``device`` option: the device's chip, and ``connectivities`` must be None).
     noise_scales: default None: one task per connectivity at ``options["noise_scale"]``.
+    regions_simulated: default 3; with ``regions`` = K, one task per rank 0..min(K, this)-1
+        (the best regions by ESP are the ones simulated).
     """
     m = model if isinstance(model, Model) else parse_model(dict(model), "json")
+    device = None
+    if options.get("device") is not None:
+        from toposcout.compiler.devices import load_device
+
+        device = load_device(options["device"])
+        device.check_fits(m.num_variables)
+        options["device"] = device.to_dict()
+        connectivities = [{"family": "custom", "size": None, "edges": [list(e) for e in device.connectivity.edges]}]
     specs = [connectivity_spec(c) for c in (connectivities or BUILTIN_FAMILIES)]
     scales = list(noise_scales) if noise_scales else [options.pop("noise_scale", 1.0)]
     # check every combination before any expensive work starts
@@ -126,8 +149,9 @@ def make_tasks(
     probe.update(options)
     for s in scales:
         _check_options({**probe, "noise_scale": s})
-    for spec in specs:
-        make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"])
+    if device is None:
+        for spec in specs:
+            make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"])
     get_gate_set(probe["gate_set"])
     if not probe["compile_only"]:
         _profile(probe["profile"], 1.0)
@@ -139,13 +163,17 @@ def make_tasks(
             if est > budget:  # every row needs at least one qubit per variable: no row could run
                 raise CapacityError(f"method density-matrix: {capacity_message(m.num_variables, est, budget)}; "
                                     "or use method auto, trajectories or clifford", field="method")
+    ranks = range(min(options["regions"], max(1, regions_simulated))) if options.get("regions") else [None]
     tasks = []
     for spec in specs:
         for k, s in enumerate(scales):
-            t = {"model": m.to_dict(), "connectivity": spec, **options, "noise_scale": float(s)}
-            if options.get("fidelity_target") is not None and k > 0:
-                t["fidelity_target"] = None  # the threshold is searched once per connectivity
-            tasks.append(t)
+            for r in ranks:
+                t = {"model": m.to_dict(), "connectivity": spec, **options, "noise_scale": float(s)}
+                if r is not None:
+                    t["region_rank"] = r
+                if options.get("fidelity_target") is not None and k > 0:
+                    t["fidelity_target"] = None  # the threshold is searched once per connectivity
+                tasks.append(t)
     return tasks
 
 
@@ -163,6 +191,9 @@ def _check_options(t: Mapping[str, Any]) -> None:
 
     check_method_options(t["method"], precision=t["precision"], trajectories=t["trajectories"],
                          time_budget_seconds=t["time_budget_seconds"])
+    from toposcout.compiler.regions import check_placement_options
+
+    check_placement_options(t)
     ns = t["noise_scale"]
     if not isinstance(ns, (int, float)) or isinstance(ns, bool) or not math.isfinite(ns) or ns < 0:
         raise ModelError(f"noise_scale must be a finite number >= 0, got {ns!r}", field="noise_scale")
@@ -190,12 +221,15 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         row.update(family=t["family"], layers=t["layers"], variables=model.num_variables,
                    terms=st["terms"], lower_bound_two_qubit=st["lower_bound_two_qubit"],
                    logical_cnots=st["cnots"], logical_depth=st["depth"])
-        conn = make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"])
+        conn, device_name = task_connectivity(t, model, spec)
+        if device_name is not None:
+            row["device"] = device_name
         gate_set = get_gate_set(t["gate_set"])
         row["connectivity"] = conn.name
         row["connectivity_family"] = conn.family
-        compiled, reused = _compiled(ansatz, conn, gate_set, t, limits)
+        (compiled, placed), reused = _compiled(ansatz, conn, gate_set, t, limits)
         row["compile_reused"] = reused
+        row.update(placed)
         fig = compiled.figures()
         fig["layout"] = {v: p for v, p in zip(model.variables, compiled.initial_layout)}
         fig["final_layout"] = {v: p for v, p in zip(model.variables, compiled.final_layout)}
@@ -211,6 +245,11 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
             row.update(method=None, method_reason="compile-only: no noise simulation")
         else:
             row.update(_noise_row(compiled, ansatz, t))
+        if t["jitter"] is not None:
+            from toposcout.compiler.regions import jitter_figures
+
+            row.update(jitter_figures(compiled, _profile(t["profile"], t["noise_scale"]), float(t["jitter"]),
+                                      int(t["jitter_samples"]), seed=int(t["seed"])))
     except ToposcoutError as exc:
         row["error"] = str(exc)
         row["error_field"] = exc.field
@@ -225,15 +264,35 @@ _COMPILED: "OrderedDict[str, Any]" = OrderedDict()
 _COMPILED_SIZE = 8
 
 
+def task_connectivity(t: dict[str, Any], model, spec: Mapping[str, Any]):
+    """(connectivity, device name or None) of a task; a device's figures become ``t["profile"]``."""
+    if t.get("device") is None:
+        return make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"]), None
+    from toposcout.compiler.devices import parse_device  # only device tasks need the device reader
+
+    dev = parse_device(t["device"])
+    dev.check_fits(model.num_variables)
+    t["profile"] = dev.profile.to_dict()  # the chip's figures are the row's profile
+    return dev.connectivity, dev.name
+
+
 def _compiled(ansatz, conn, gate_set, t: Mapping[str, Any], limits) -> tuple[Any, bool]:
+    """((compiled, placement fields), reused); see ``toposcout.compiler.regions``."""
+    from toposcout.compiler.regions import has_per_element, placed_compilation
+
+    profile = _profile(t["profile"], t["noise_scale"])
+    # the profile decides the compilation only under error-aware placement or a comparison of both
+    aware = has_per_element(profile) or t["placement"] == "errors"
     key = json.dumps({"model": ansatz.model.to_dict(), "family": t["family"], "layers": t["layers"],
                       "seed": t["seed"], "connectivity": conn.to_dict(), "gate_set": t["gate_set"],
-                      "strategy": t["strategy"], "seeds": t["seeds"], "limits": repr(limits), "version": __version__},
+                      "strategy": t["strategy"], "seeds": t["seeds"], "limits": repr(limits), "version": __version__,
+                      "placement": t["placement"], "profile": profile.to_dict() if aware else None,
+                      "regions": t["regions"], "region_rank": t["region_rank"]},
                      sort_keys=True, default=str)
     if key in _COMPILED:
         _COMPILED.move_to_end(key)
         return _COMPILED[key], True
-    compiled = compile_ansatz(ansatz, conn, gate_set, strategy=t["strategy"], seeds=t["seeds"])
+    compiled = placed_compilation(ansatz, conn, gate_set, t, profile)
     _COMPILED[key] = compiled
     while len(_COMPILED) > _COMPILED_SIZE:
         _COMPILED.popitem(last=False)

@@ -41,8 +41,9 @@ def _parser() -> argparse.ArgumentParser:
                    help=f"repeatable; one of {', '.join(BUILTIN_FAMILIES)}, or custom:EDGEFILE; "
                         f"default: all built-in families")
     c.add_argument("--gate-set", default="cx", choices=GATE_SETS, help="native gate set (default cx)")
-    c.add_argument("--strategy", default="auto", choices=("generic", "structured", "auto"),
-                   help="compilation strategy (default auto: the better of generic and structured)")
+    c.add_argument("--strategy", default=None, choices=("generic", "structured", "auto"),
+                   help="compilation strategy (default auto: the better of generic and structured; with --device "
+                        "one row per generic and structured)")
     c.add_argument("--seeds", type=int, default=5, help="transpiler seeds tried by generic (default 5)")
     c.add_argument("--family", default="clique", choices=("clique", "pairwise"), help="circuit family")
     c.add_argument("--layers", type=int, default=1, help="repetitions of block + rotations (default 1)")
@@ -54,6 +55,19 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--fidelity-target", type=float, default=None,
                    help="with a sweep, find the largest 2q error reaching this state fidelity (default 0.5)")
     c.add_argument("--compile-only", action="store_true", help="skip the noise simulation")
+    c.add_argument("--device", metavar="FILE",
+                   help="a device file (TOML: chip, coordinates, per-qubit and per-coupler figures) or an example "
+                        "device name; fixes the connectivity and the profile")
+    c.add_argument("--placement", choices=("errors", "count"), default=None,
+                   help="placement objective: errors (highest estimated success probability under per-element "
+                        "figures; the default when there are any) or count (fewest two-qubit gates)")
+    c.add_argument("--regions", type=int, metavar="K",
+                   help="compile K placements spread over the chip, rank them by ESP, simulate the best 3")
+    c.add_argument("--jitter", type=float, metavar="SIGMA",
+                   help="redraw every error rate and coherence time log-normally (sigma) and report the ESP spread")
+    c.add_argument("--jitter-samples", type=int, default=100, metavar="N", help="redraws for --jitter (default 100)")
+    c.add_argument("--plot", metavar="FILE.svg",
+                   help="with --device: draw the chip shaded by error, with the best row's placement on top")
     c.add_argument("--method", default="auto", metavar="METHOD",
                    help="how noise figures are computed: auto (default: density-matrix within the memory budget, "
                         "else trajectories within the time budget, else clifford), density-matrix, trajectories, "
@@ -156,7 +170,8 @@ def _compare(args, out, err) -> int:
         d = model.to_dict()
         d["max_order"] = args.max_order
         model = model.from_dict(d, limits=limits)
-    options: dict[str, Any] = dict(gate_set=args.gate_set, strategy=args.strategy, seeds=args.seeds,
+    device = _device_options(args)
+    options: dict[str, Any] = dict(gate_set=args.gate_set, strategy=args.strategy or "auto", seeds=args.seeds,
                                    family=args.family, layers=args.layers, seed=args.seed,
                                    compile_only=args.compile_only, profile=args.profile, method=args.method,
                                    time_budget_seconds=args.time_budget, trajectories=args.trajectories,
@@ -181,7 +196,16 @@ def _compare(args, out, err) -> int:
         options["profile"] = load_profile(args.profile).to_dict()
     if args.qasm_dir:
         options["keep_circuit"] = True  # the rows bring their compiled circuits for the files
-    tasks = make_tasks(model, args.connectivity, noise_scales=scales, **options)
+    if device is not None:
+        options.update(device=device.to_dict(), profile=None)
+        if args.gate_set == "cx" and "--gate-set" not in (args.argv or ()):
+            options["gate_set"] = device.native_gate
+    options.update(placement=args.placement, regions=args.regions, jitter=args.jitter,
+                   jitter_samples=args.jitter_samples)
+    strategies = [options["strategy"]] if args.strategy or device is None else ["generic", "structured"]
+    tasks = [t for st in strategies
+             for t in make_tasks(model, None if device is not None else args.connectivity, noise_scales=scales,
+                                 **{**options, "strategy": st})]
     show_progress = not args.json and hasattr(err, "isatty") and err.isatty()
     if args.server:
         from toposcout.service.client import Client
@@ -199,15 +223,59 @@ def _compare(args, out, err) -> int:
     if args.csv:
         with open(args.csv, "w", newline="", encoding="utf-8") as fh:
             write_csv(rows, fh)
+    if args.plot and device is not None:
+        from toposcout.service.web.charts import device_svg
+
+        best = next((r for r in rows if not r.get("error")), None)
+        Path(args.plot).write_text(device_svg(device, best), encoding="utf-8")
     if args.json:
         write_json(model.name, rows, out)
     else:
-        out.write(f"model {model.name}: {model.num_variables} variables, {len(model.cliques)} cliques\n")
+        out.write(f"model {model.name}: {model.num_variables} variables, {len(model.cliques)} cliques"
+                  + (f"; device {device.name}: {device.num_qubits} qubits, {len(device.connectivity.edges)} couplers"
+                     if device is not None else "") + "\n")
         out.write(rows_table(rows) + "\n")
+        for r in rows:
+            if r.get("chip_regions") and r.get("chip_region_rank") == 0:
+                out.write(f"regions ({r.get('strategy')}): {r['chip_regions']} compiled and ranked by ESP; best "
+                          f"{r['chip_region_esp_best']:.4g} on qubits {r['chip_region_best']}, median "
+                          f"{r['chip_region_esp_median']:.4g} on {r['chip_region_median']}, worst "
+                          f"{r['chip_region_esp_worst']:.4g} on {r['chip_region_worst']}\n")
         if any("state_fidelity" in r or r.get("method") for r in rows):
             out.write(CAUTION + "\n")
     failed = [r for r in rows if r.get("error")]
     return EXIT_FAILED_ROWS if failed and len(failed) == len(rows) else EXIT_OK
+
+
+def _device_options(args):
+    """The device of ``--device`` (None without), after the placement options' checks; every
+    error names its option."""
+    from toposcout.compiler.regions import check_placement_options
+
+    try:
+        check_placement_options({"placement": args.placement, "regions": args.regions, "jitter": args.jitter,
+                                 "jitter_samples": args.jitter_samples})
+    except ToposcoutError as exc:
+        flag = "--" + (exc.field or "").replace("_", "-")
+        raise ToposcoutError(f"{flag}: {exc}", field=flag) from None
+    if args.device is None:
+        if args.plot:
+            raise ToposcoutError("--plot draws a device: give --device FILE", field="--plot")
+        return None
+    if args.connectivity:
+        raise ToposcoutError("--device fixes the connectivity: give either --device or --connectivity",
+                             field="--connectivity")
+    if args.profile:
+        raise ToposcoutError("--device carries its own figures (and base profile): give either --device or "
+                             "--profile", field="--profile")
+    if args.plot and not args.plot.endswith(".svg"):
+        raise ToposcoutError(f"--plot: {args.plot!r} must end in .svg", field="--plot")
+    from toposcout.compiler.devices import load_device
+
+    try:
+        return load_device(args.device)
+    except ToposcoutError as exc:
+        raise ToposcoutError(f"--device {args.device}: {exc}", field=exc.field) from None
 
 
 def _write_circuits(tasks: list[dict], rows: list[dict], folder: Path) -> None:
@@ -268,6 +336,12 @@ def _targets(out) -> int:
     out.write("\nDevice profiles (--profile NAME or a TOML file; typical values from memory, not a real device):\n")
     for name, desc in profile_catalogue().items():
         out.write(f"  {name:<20} {desc}\n")
+    from toposcout.compiler.devices import DEVICE_NAMES, load_device
+
+    out.write("\nExample devices (--device NAME or a device file; invented chips, typical values from memory):\n")
+    for name in DEVICE_NAMES:
+        d = load_device(name)
+        out.write(f"  {name:<20} {d.description} [{d.num_qubits} qubits, {len(d.connectivity.edges)} couplers]\n")
     return EXIT_OK
 
 
@@ -277,6 +351,7 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
     err = err or sys.stderr
     try:
         args = _parser().parse_args(argv)
+        args.argv = list(sys.argv[1:] if argv is None else argv)
     except SystemExit as exc:
         if isinstance(exc.code, str):
             err.write(exc.code + "\n")

@@ -35,7 +35,16 @@ def rows_table(rows: list[dict]) -> str:
         names.append("method")
     if any(r.get("threshold_two_qubit_error") is not None for r in rows):
         names += TABLE_COLUMNS["requirement"]
-    composite = {"_budget": "loss 2q/1q/idle/ro", "_clique": "F clique mean/min", "_clifford": "F clifford (est.)"}
+    if any(r.get("device") or r.get("esp_count_placement") is not None for r in rows):
+        names.append("placement_objective")
+    if any(r.get("esp_count_placement") is not None for r in rows):
+        names += ["esp_count_placement", "esp_error_placement"]
+    if any(r.get("chip_regions") for r in rows):
+        names += ["chip_region_rank", "chip_region_esp"]
+    if any(r.get("esp_jitter_median") is not None for r in rows):
+        names.append("_jitter")
+    composite = {"_budget": "loss 2q/1q/idle/ro", "_clique": "F clique mean/min", "_clifford": "F clifford (est.)",
+                 "_jitter": "ESP drift p10/med/p90"}
     cols = [(composite[k], k) if k in composite else (FIELDS[k].header, k) for k in names]
 
     def cell(r: dict, key: str) -> str:
@@ -45,6 +54,9 @@ def rows_table(rows: list[dict]) -> str:
         if key == "_clique":
             a, b = r.get("clique_hellinger_mean"), r.get("clique_hellinger_min")
             return "" if a is None else f"{a:.4g}/{b:.4g}"
+        if key == "_jitter":
+            a, b, c = (r.get(k) for k in ("esp_jitter_p10", "esp_jitter_median", "esp_jitter_p90"))
+            return "" if b is None else f"{a:.3g}/{b:.3g}/{c:.3g}"
         if key == "_clifford":
             f, se = r.get("clifford_state_fidelity"), r.get("clifford_state_fidelity_se")
             if f is None:

@@ -108,6 +108,32 @@ def _profile(profile: str | dict | None) -> str | dict | None:
     return load_profile(dict(profile)).to_dict()
 
 
+def _device(req: StudyRequest, settings, num_variables: int):
+    """The request's device (None without one); errors name ``device.<field>``."""
+    if req.device is None:
+        return None
+    if req.connectivities is not None:
+        raise TargetError("connectivities: a device fixes the connectivity; send either device or connectivities",
+                          field="connectivities")
+    if req.profile is not None:
+        raise ProfileError("profile: a device carries its own figures (and base profile); send either device or "
+                           "profile", field="profile")
+    from toposcout.compiler.devices import parse_device_text
+    from toposcout.compiler.errors import ToposcoutError
+
+    try:
+        dev = parse_device_text(req.device, name="device")
+        if dev.num_qubits > settings.max_physical_qubits:
+            raise CapacityError(f"qubits: {dev.num_qubits} physical qubits is over this server's cap "
+                                f"max_physical_qubits={settings.max_physical_qubits}", field="qubits")
+        dev.check_fits(num_variables)
+    except ToposcoutError as exc:
+        f = exc.field or ""
+        field = f if f.startswith("device") else f"device.{f}" if f else "device"
+        raise type(exc)(f"device: {exc}", field=field) from None
+    return dev
+
+
 def model_order(model: Model) -> int:
     """The largest term order of the model: its largest clique, cut at ``max_order``."""
     largest = max((len(c) for c in model.cliques), default=1)
@@ -152,6 +178,7 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
                 field="method")
         budget = settings.memory_budget_bytes or default_memory_budget_bytes()
         memory_budget = min(budget, estimate_memory_bytes(cap))
+    device = _device(req, settings, model.num_variables)
     max_targets = max_targets or settings.max_connectivities
     conns = req.connectivities
     if conns is not None and len(conns) > max_targets:
@@ -177,6 +204,10 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
     options: dict[str, Any] = dict(gate_set=req.gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
                                    layers=req.layers, seed=req.seed, compile_only=compile_only, profile=profile,
                                    keep_circuit=keep_circuit)
+    if device is not None:
+        options.update(device=device.to_dict(), profile=None)
+        specs = None
+    options.update(placement=req.placement, regions=req.regions, jitter=req.jitter, jitter_samples=req.jitter_samples)
     if memory_budget is not None:
         options["memory_budget_bytes"] = int(memory_budget)
     if req.fidelity_target is not None and not compile_only:
@@ -191,7 +222,9 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
                   "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
                   "max_order": model.max_order, "fidelity_target": options.get("fidelity_target"),
                   "method": req.method, "time_budget_seconds": req.time_budget_seconds,
-                  "trajectories": req.trajectories, "precision": req.precision}
+                  "trajectories": req.trajectories, "precision": req.precision,
+                  "device": None if device is None else device.to_dict(), "placement": req.placement,
+                  "regions": req.regions, "jitter": req.jitter, "jitter_samples": req.jitter_samples}
     return Prepared(model=model, request=normalised, tasks=tasks, keys=keys)
 
 
@@ -233,21 +266,21 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
         if len(values) != 1:
             raise ModelError(f"{key}: give this form field once", field=key)
         v = values[0].strip()
-        if key in ("seeds", "layers", "seed", "max_order", "trajectories"):
-            if v == "" and key in ("max_order", "trajectories"):
+        if key in ("seeds", "layers", "seed", "max_order", "trajectories", "regions", "jitter_samples"):
+            if v == "" and key in ("max_order", "trajectories", "regions"):
                 continue
             try:
                 out[key] = int(v)
             except ValueError:
                 raise ModelError(f"{key}: {v[:40]!r} is not an integer", field=key) from None
-        elif key in ("fidelity_target", "time_budget_seconds", "precision"):
+        elif key in ("fidelity_target", "time_budget_seconds", "precision", "jitter"):
             if v:
                 out[key] = _form_float(key, v)
         elif key == "compile_only":
             if v.lower() not in ("true", "false", "1", "0", "yes", "no", "on", "off"):
                 raise ModelError(f"{key}: {v[:40]!r} is not true or false", field=key)
             out[key] = v.lower() in ("true", "1", "yes", "on")
-        elif key in ("model_format", "profile") and v == "":
+        elif key in ("model_format", "profile", "device", "placement") and v == "":
             continue
         else:
             out[key] = v

@@ -78,6 +78,16 @@ class StudyRequest(BaseModel):
     precision: float | None = Field(default=None, gt=0, lt=1,
                                     description="trajectories method: stop when the state fidelity's standard "
                                                 "error is below this (null: 0.01)")
+    device: str | None = Field(default=None, max_length=2_000_000,
+                               description="the text of a device file (TOML: chip, coordinates, per-qubit and "
+                                           "per-coupler figures); fixes the connectivity and the profile")
+    placement: Literal["errors", "count"] | None = Field(
+        default=None, description="placement objective; null: errors when there are per-element figures, else count")
+    regions: int | None = Field(default=None, ge=1, le=50,
+                                description="rank this many placements over the chip by ESP; the best 3 are rows")
+    jitter: float | None = Field(default=None, ge=0, le=3,
+                                 description="log-normal sigma of redrawn figures: the ESP spread under drift")
+    jitter_samples: int = Field(default=100, ge=2, le=1000, description="redraws for jitter")
 
 
 class ErrorBody(BaseModel):

@@ -385,8 +385,14 @@ async def drawing(request: Request, study_id: str, name: str, download: bool = F
         if q.status_code == 200:
             active = await run_in_threadpool(_active_qubits, q.content)
         try:
-            conn = charts.connectivity_for_row(row, study.get("request"))
-            body = await run_in_threadpool(lambda: charts.connectivity_chart(row, conn, active=active, fmt=fmt))
+            req = study.get("request") or {}
+            if req.get("device") and fmt == "svg":  # the chip at its coordinates, shaded by error
+                from toposcout.compiler.devices import parse_device
+
+                body = charts.device_svg(parse_device(req["device"]), row).encode("utf-8")
+            else:
+                conn = charts.connectivity_for_row(row, study.get("request"))
+                body = await run_in_threadpool(lambda: charts.connectivity_chart(row, conn, active=active, fmt=fmt))
         except ToposcoutError as exc:
             return _bad(request, str(exc), exc.field or "connectivity")
         _cache.put(key, body)
@@ -470,6 +476,14 @@ async def submit(request: Request):
     for key in ("profile", "fidelity_target", "gate_set", "strategy", "seeds", "layers"):
         if values[key].strip():
             data[key] = values[key].strip()
+    device = form.get("device_file")
+    if device is not None and hasattr(device, "read") and getattr(device, "filename", ""):
+        try:
+            data["device"] = (await device.read()).decode("utf-8")
+        except UnicodeDecodeError:
+            return again(f"the device file {device.filename!r} is not UTF-8 text", "device")
+        data.pop("connectivities", None)  # a device fixes the connectivity and the figures
+        data.pop("profile", None)
     data["compile_only"] = "true" if values["compile_only"] else "false"
     data = {k: v for k, v in data.items() if v != []}
     resp = await _api(request, "POST", "/v1/studies", data=data,
