@@ -13,6 +13,9 @@ A task::
      "keep_circuit": False, "method": "auto", "time_budget_seconds": None, "trajectories": None,
      "precision": None}
 
+and optionally ``"fit": {"loss": "kl" | "mmd", "loss_value": x, "key": KEY}`` when the model's
+parameters were fitted (``toposcout.compiler.fit``); the row then says ``angles_fitted``.
+
 ``method`` picks how the noise figures are computed (``toposcout.compiler.methods``); when they
 cannot be computed the row keeps its compile figures and says why in ``noise_error``.
 
@@ -87,7 +90,7 @@ def connectivity_spec(spec: str | Mapping[str, Any]) -> dict:
 def normalise_task(task: Mapping[str, Any]) -> dict:
     """Fill defaults and normalise the model, so equal work has an equal key."""
     out = dict(TASK_DEFAULTS)
-    unknown = set(task) - set(TASK_DEFAULTS) - {"model", "connectivity"}
+    unknown = set(task) - set(TASK_DEFAULTS) - {"model", "connectivity", "fit"}
     if unknown:
         raise ModelError(f"unknown task fields {sorted(unknown)}", field=sorted(unknown)[0])
     out.update({k: v for k, v in task.items() if k != "model"})
@@ -187,6 +190,9 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         row["model"] = model.name
         ansatz = build_ansatz(model, family=t["family"], layers=t["layers"], seed=t["seed"])
         st = ansatz.stats()
+        fit = t.get("fit") or {}
+        row.update(angles_fitted=bool(fit), fit_loss=fit.get("loss"), fit_loss_value=fit.get("loss_value"),
+                   fit_key=fit.get("key"))
         row.update(family=t["family"], layers=t["layers"], variables=model.num_variables,
                    terms=st["terms"], lower_bound_two_qubit=st["lower_bound_two_qubit"],
                    logical_cnots=st["cnots"], logical_depth=st["depth"])
