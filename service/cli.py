@@ -144,8 +144,8 @@ def _fit_settings(args, model):
                                tol=args.tol, optimizer=args.optimizer, seed=args.seed,
                                bandwidths=tuple(args.kernel_bandwidths or FitSettings.bandwidths),
                                samples=samples)
-        families = args.family if isinstance(args.family, list) else [args.family]
-        for fam in families or ["clique"]:
+        families = (args.family or ["clique"]) if not isinstance(args.family, str) else [args.family]
+        for fam in families:
             settings.check(model, fam)
     except ToposcoutError as exc:
         field = exc.field or ""
