@@ -65,36 +65,49 @@ OPTIMIZERS = ("lbfgs", "adam")
 
 
 # --------------------------------------------------------------------------- transforms
+#: qubits whose 2x2 matrices are merged into one Kronecker product and applied as one matrix product
+#: (one pass over the vector per group instead of one per qubit; 2**5 = 32 keeps the product cheap)
+GROUP = 5
+
+
+def _groups(n: int) -> list[tuple[int, int]]:
+    """(first qubit, qubits) of each group of at most GROUP consecutive qubits."""
+    return [(q0, min(GROUP, n - q0)) for q0 in range(0, n, GROUP)]
+
+
+def _kron_group(mats: Sequence[np.ndarray], q0: int, k: int) -> np.ndarray:
+    """The matrix on the group's sub-index sum_i b_{q0+i} 2^i: kron(m_{q0+k-1}, ..., m_{q0})."""
+    out = mats[q0 + k - 1]
+    for q in range(q0 + k - 2, q0 - 1, -1):
+        out = np.kron(out, mats[q])
+    return out
+
+
+def _apply_group(vec: np.ndarray, mat: np.ndarray, q0: int, k: int) -> np.ndarray:
+    """``mat`` (2^k x 2^k) on qubits q0..q0+k-1 of a little-endian vector (a new array)."""
+    d, low = 1 << k, 1 << q0
+    if low == 1:
+        return (vec.reshape(-1, d) @ mat.T).reshape(-1)
+    return np.matmul(mat, vec.reshape(-1, d, low)).reshape(-1)
+
+
+def apply_product(vec: np.ndarray, mats: Sequence[np.ndarray]) -> np.ndarray:
+    """(⊗_q mats[q]) vec, mats[q] acting on qubit q (bit q of the little-endian index)."""
+    n = len(mats)
+    for q0, k in _groups(n):
+        vec = _apply_group(vec, _kron_group(mats, q0, k), q0, k)
+    return vec
+
+
+_H2 = np.array([[1.0, 1.0], [1.0, -1.0]])
+
+
 def fwht(v: np.ndarray) -> np.ndarray:
     """Unnormalised Walsh-Hadamard transform of a real length-2**n vector (a new array):
     ``out[x] = sum_y v[y] (-1)^{popcount(x & y)}``."""
-    a = np.array(v, dtype=float)
-    size = a.size
-    h = 1
-    while h < size:
-        b = a.reshape(-1, 2, h)
-        x = b[:, 0, :] + b[:, 1, :]
-        b[:, 1, :] = b[:, 0, :] - b[:, 1, :]
-        b[:, 0, :] = x
-        h *= 2
-    return a
-
-
-def _apply_1q(psi: np.ndarray, u: np.ndarray, q: int) -> np.ndarray:
-    """``u`` (2x2) on qubit ``q`` of a little-endian state vector (a new array)."""
-    b = psi.reshape(-1, 2, 1 << q)
-    a0, a1 = b[:, 0, :], b[:, 1, :]
-    out = np.empty_like(b)
-    out[:, 0, :] = u[0, 0] * a0 + u[0, 1] * a1
-    out[:, 1, :] = u[1, 0] * a0 + u[1, 1] * a1
-    return out.reshape(-1)
-
-
-def _env(lam: np.ndarray, psi: np.ndarray, q: int) -> np.ndarray:
-    """M[a, b] = sum over the other qubits of conj(lam[a]) psi[b] on qubit ``q``."""
-    lb = lam.reshape(-1, 2, 1 << q)
-    pb = psi.reshape(-1, 2, 1 << q)
-    return np.einsum("iaj,ibj->ab", lb.conj(), pb)
+    v = np.asarray(v, dtype=float)
+    n = v.size.bit_length() - 1
+    return apply_product(v, [_H2] * n) if n else v.copy()
 
 
 def _kernel_apply(v: np.ndarray, n: int, bandwidths: Sequence[float]) -> np.ndarray:
@@ -102,14 +115,30 @@ def _kernel_apply(v: np.ndarray, n: int, bandwidths: Sequence[float]) -> np.ndar
     out = np.zeros(v.size)
     for s in bandwidths:
         r = math.exp(-1.0 / (2.0 * s * s))
-        a = np.array(v, dtype=float)
-        for q in range(n):
-            b = a.reshape(-1, 2, 1 << q)
-            x = b[:, 0, :] + r * b[:, 1, :]
-            b[:, 1, :] = r * b[:, 0, :] + b[:, 1, :]
-            b[:, 0, :] = x
-        out += a
+        out += apply_product(np.asarray(v, dtype=float), [np.array([[1.0, r], [r, 1.0]])] * n)
     return out / len(bandwidths)
+
+
+def _reduced(lam: np.ndarray, psi: np.ndarray, n: int) -> np.ndarray:
+    """M[q, a, b] = sum over the other qubits of conj(lam[.. a ..]) psi[.. b ..] on qubit q."""
+    out = np.empty((n, 2, 2), dtype=complex)
+    lc = lam.conj()
+    w = lc * psi
+    for q in range(n):
+        lb = lc.reshape(-1, 2, 1 << q)
+        pb = psi.reshape(-1, 2, 1 << q)
+        out[q, 0, 0], out[q, 1, 1] = w.reshape(-1, 2, 1 << q).sum(axis=(0, 2))
+        out[q, 0, 1] = np.einsum("ij,ij->", lb[:, 0, :], pb[:, 1, :])
+        out[q, 1, 0] = np.einsum("ij,ij->", lb[:, 1, :], pb[:, 0, :])
+    return out
+
+
+def _unit_phase(phi: np.ndarray) -> np.ndarray:
+    """exp(i phi) (cos and sin written into one complex array: faster than a complex exp)."""
+    out = np.empty(phi.size, dtype=complex)
+    np.cos(phi, out=out.real)
+    np.sin(phi, out=out.imag)
+    return out
 
 
 def u_matrix(th: float, ph: float, la: float) -> np.ndarray:
@@ -175,7 +204,7 @@ class Evaluator:
     def _phase(self, theta_l: np.ndarray) -> np.ndarray:
         c = np.zeros(1 << self.n)
         np.add.at(c, self.masks, -theta_l)
-        return np.exp(1j * fwht(c))
+        return _unit_phase(fwht(c))
 
     def state(self, x: np.ndarray) -> np.ndarray:
         """The final state vector (little-endian, qiskit's convention)."""
@@ -183,8 +212,7 @@ class Evaluator:
         psi = np.full(1 << self.n, (1 << self.n) ** -0.5, dtype=complex)
         for l in range(self.layers):
             psi = psi * self._phase(theta[l])
-            for q in range(self.n):
-                psi = _apply_1q(psi, u_matrix(*rot[l, q]), q)
+            psi = apply_product(psi, [u_matrix(*rot[l, q]) for q in range(self.n)])
         return psi
 
     def probabilities(self, x: np.ndarray) -> np.ndarray:
@@ -192,7 +220,12 @@ class Evaluator:
         return psi.real ** 2 + psi.imag ** 2
 
     def value_and_grad(self, x: np.ndarray, loss: "Loss") -> tuple[float, np.ndarray]:
-        """The loss and its gradient in every parameter (adjoint method)."""
+        """The loss and its gradient in every parameter (adjoint method).
+
+        For the rotation layer U = ⊗ u_q: dU/dα = (du_q u_q^†)_q U, so every rotation's derivative
+        is 2 Re tr(G^T M_q) with G = du_q u_q^† and M_q the reduced matrix of (costate, state) after
+        the layer on qubit q; the block's derivative in θ_S is the Walsh-Hadamard transform of
+        2 Im(conj(costate) state) at mask_S."""
         x = np.asarray(x, float)
         theta, rot = self.unpack(x)
         psi = self.state(x)
@@ -202,15 +235,15 @@ class Evaluator:
         g_theta = np.zeros_like(theta)
         g_rot = np.zeros_like(rot)
         for l in reversed(range(self.layers)):
-            for q in reversed(range(self.n)):
-                u = u_matrix(*rot[l, q])
-                ud = u.conj().T
-                before = _apply_1q(psi, ud, q)
-                m = _env(lam, before, q)
+            us = [u_matrix(*rot[l, q]) for q in range(self.n)]
+            m = _reduced(lam, psi, self.n)
+            for q in range(self.n):
+                ud = us[q].conj().T
                 for k, d in enumerate(_u_derivatives(*rot[l, q])):
-                    g_rot[l, q, k] = 2.0 * float(np.real(np.sum(m * d)))
-                lam = _apply_1q(lam, ud, q)
-                psi = before
+                    g_rot[l, q, k] = 2.0 * float(np.real(np.sum((d @ ud) * m[q])))
+            uds = [u.conj().T for u in us]
+            psi = apply_product(psi, uds)
+            lam = apply_product(lam, uds)
             w = 2.0 * np.imag(lam.conj() * psi)
             g_theta[l] = fwht(w)[self.masks]
             dconj = self._phase(theta[l]).conj()
