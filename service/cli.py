@@ -301,7 +301,17 @@ def _compare(args, out, err) -> int:
     if args.qasm_dir:
         options["keep_circuit"] = True  # the rows bring their compiled circuits for the files
     families = args.family or ["clique"]
-    if args.fit:
+    if args.fit and args.server:  # the server fits (in its workers): the tasks carry the fit request
+        settings = _fit_settings(args, model)
+        request = {"loss": settings.loss, "restarts": settings.restarts, "max_iter": settings.max_iter,
+                   "tol": settings.tol, "optimizer": settings.optimizer, "seed": settings.seed,
+                   "bandwidths": list(settings.bandwidths),
+                   "samples": None if settings.samples is None else [int(x) for x in settings.samples]}
+        tasks = []
+        for fam in families:
+            tasks += make_tasks(model, args.connectivity, noise_scales=scales,
+                                **{**options, "family": fam, "fit_request": request})
+    elif args.fit:
         from toposcout.service.fitting import FitCache, default_cache_dir, fitted_tasks, format_report
 
         settings = _fit_settings(args, model)
