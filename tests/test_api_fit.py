@@ -93,3 +93,18 @@ def test_request_from_tasks_keeps_families_and_the_fit_block():
     assert body["families"] == ["clique", "pairwise"]
     assert body["fit"]["data"].splitlines() == ["a,b,c", "1,0,0", "0,1,0", "1,1,0", "1,0,1"]
     assert body["fit"]["kernel_bandwidths"] == [1.0] and body["fit"]["optimizer"] == "adam"
+
+
+def test_dashboard_form_fits_and_compares_families(client, wait_study):
+    client.cookies.set("toposcout_token", "dora-secret-1")
+    r = client.post("/submit", files={"file": ("doors.json", json.dumps(MODEL).encode(), "application/json")},
+                    data={"connectivities": ["line"], "compile_only": "true", "seeds": "1", "strategy": "generic",
+                          "noise_scales": "1", "families": ["clique", "pairwise"], "fit": "kl"},
+                    follow_redirects=False)
+    assert r.status_code == 303, r.text
+    study = wait_study(client, r.headers["location"].rsplit("/", 1)[-1])
+    assert sorted(x["family"] for x in study["rows"]) == ["clique", "pairwise"]
+    assert all(x["angles_fitted"] for x in study["rows"])
+    page = client.get("/submit").text
+    assert 'name="families"' in page and 'name="fit"' in page
+    client.cookies.clear()

@@ -275,6 +275,9 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
         if key == "noise_scales":
             out[key] = [_form_float(key, c) for v in values for c in v.split(",") if c.strip()]
             continue
+        if key == "families":
+            out[key] = [c.strip() for v in values for c in v.split(",") if c.strip()]
+            continue
         if len(values) != 1:
             raise ModelError(f"{key}: give this form field once", field=key)
         v = values[0].strip()
@@ -294,6 +297,9 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
             out[key] = v.lower() in ("true", "1", "yes", "on")
         elif key in ("model_format", "profile") and v == "":
             continue
+        elif key == "fit":  # the form's fit field is the loss (kl | mmd); the other fit options keep their defaults
+            if v:
+                out[key] = {"loss": v}
         else:
             out[key] = v
     return out

@@ -428,7 +428,7 @@ def _form_choices() -> dict:
 
 _FORM_DEFAULTS = {"connectivities": ["line", "grid", "all-to-all"], "extra_connectivities": "", "profile": "",
                   "noise_scales": "1", "fidelity_target": "", "compile_only": False, "gate_set": "cx",
-                  "strategy": "auto", "seeds": "5", "layers": "1"}
+                  "strategy": "auto", "seeds": "5", "layers": "1", "families": ["clique"], "fit": False}
 
 
 @router.get("/submit", response_class=HTMLResponse)
@@ -454,6 +454,8 @@ async def submit(request: Request):
         "strategy": str(form.get("strategy") or "auto"),
         "seeds": str(form.get("seeds") or ""),
         "layers": str(form.get("layers") or ""),
+        "families": [str(v) for v in form.getlist("families")],
+        "fit": bool(form.get("fit")),
     }
 
     def again(message: str, field: str | None, status: int = 422) -> Response:
@@ -471,6 +473,10 @@ async def submit(request: Request):
         if values[key].strip():
             data[key] = values[key].strip()
     data["compile_only"] = "true" if values["compile_only"] else "false"
+    if values["families"]:
+        data["families"] = values["families"]
+    if values["fit"]:
+        data["fit"] = "kl"
     data = {k: v for k, v in data.items() if v != []}
     resp = await _api(request, "POST", "/v1/studies", data=data,
                       files={"file": (upload.filename, content, upload.content_type or "application/octet-stream")})
