@@ -268,7 +268,7 @@ def _fitted(model: Model, t: Mapping[str, Any]) -> tuple[Model, dict, dict]:
     req = dict(t["fit_request"])
     samples = None if req.get("samples") is None else np.asarray(req["samples"], dtype=np.int64)
     opts = dict(loss=req.get("loss", "kl"), restarts=req.get("restarts", 3), max_iter=req.get("max_iter", 500),
-                tol=req.get("tol", 1e-12), optimizer=req.get("optimizer", "lbfgs"), seed=req.get("seed", 0),
+                tol=req.get("tol", 1e-10), optimizer=req.get("optimizer", "lbfgs"), seed=req.get("seed", 0),
                 bandwidths=tuple(req.get("bandwidths") or MMD_BANDWIDTHS))
     key = fit_key(model, family=t["family"], layers=t["layers"], samples=samples, **opts)
     hit = key in _FITTED

@@ -120,8 +120,8 @@ def _fit_arguments(p: argparse.ArgumentParser, *, compare: bool) -> None:
                    help=pre + "MMD Gaussian kernel bandwidths over the Hamming distance (default 0.5 1 2)")
     p.add_argument("--restarts", type=int, default=3, help=pre + "seeded random starts (default 3)")
     p.add_argument("--max-iter", type=int, default=500, help=pre + "iterations per restart (default 500)")
-    p.add_argument("--tol", type=float, default=1e-12,
-                   help=pre + "stop a restart when the loss improves by less than tol*max(1,|loss|) (default 1e-12)")
+    p.add_argument("--tol", type=float, default=1e-10,
+                   help=pre + "stop a restart when the loss improves by less than tol*max(1,|loss|) (default 1e-10)")
     p.add_argument("--optimizer", default="lbfgs", choices=("lbfgs", "adam"), help=pre + "default lbfgs (L-BFGS-B)")
     if compare:
         p.add_argument("--fit-cache", metavar="DIR", help="folder of cached fits (default ~/.cache/toposcout/fits)")

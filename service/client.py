@@ -230,7 +230,7 @@ class Client:
         return self._json("POST", "/v1/compile", json_body=body)["rows"]
 
     def fit(self, model: Any, *, family: str = "clique", layers: int = 1, seed: int = 0, loss: str = "kl",
-            data: str | Path | None = None, restarts: int = 3, max_iter: int = 500, tol: float = 1e-12,
+            data: str | Path | None = None, restarts: int = 3, max_iter: int = 500, tol: float = 1e-10,
             optimizer: str = "lbfgs", kernel_bandwidths: Sequence[float] | None = None,
             timeout: float | None = None) -> dict:
         """Fit the model's angles on the server; returns ``{"model", "parameters", "loss", "loss_value",

@@ -32,7 +32,7 @@ class FitSettings:
     layers: int = 1
     restarts: int = 3
     max_iter: int = 500
-    tol: float = 1e-12
+    tol: float = 1e-10
     optimizer: str = "lbfgs"
     seed: int = 0
     bandwidths: tuple[float, ...] = MMD_BANDWIDTHS

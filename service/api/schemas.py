@@ -53,7 +53,7 @@ class FitBlock(BaseModel):
         default=None, min_length=1, max_length=8, description="MMD Gaussian kernel bandwidths (null: 0.5, 1, 2)")
     restarts: int = Field(default=3, ge=1, le=10, description="seeded random starts")
     max_iter: int = Field(default=500, ge=1, le=2000, description="iterations per restart")
-    tol: float = Field(default=1e-12, ge=0, le=1, description="stop when the loss improves by less than this")
+    tol: float = Field(default=1e-10, ge=0, le=1, description="stop when the loss improves by less than this")
     optimizer: Literal["lbfgs", "adam"] = "lbfgs"
 
 
