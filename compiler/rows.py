@@ -72,8 +72,10 @@ ROW_FIELDS: tuple[RowField, ...] = (
     _F("model", "model name", kind="str", group="task"),
     _F("family", "ansatz family (which clique subsets get a rotation)", kind="str", group="task"),
     _F("layers", "repetitions of the rotation block and single-qubit layer", "layers", "int", group="task"),
-    _F("angles_fitted", "true when the angles were fitted to the target (toposcout fit, compare --fit) before "
-       "this row; false when they came from the model file or the seeded generator", kind="bool", short="fitted",
+    _F("angles_fitted", "true when this study fitted the angles to the target first (compare --fit, the API's fit "
+       "block); false otherwise (see angles_source)", kind="bool", short="fitted", group="task"),
+    _F("angles_source", "where the angles came from: fitted (by this study), model (the model file's parameters, "
+       "e.g. written by toposcout fit; seeded where it gives none) or seeded (the seeded generator)", kind="str",
        group="task"),
     _F("fit_loss", "loss the angles were fitted by: kl (exact target) or mmd (samples)", kind="str", group="task"),
     _F("fit_loss_value", "final value of that loss after the fit (KL in nats, or unbiased MMD²)", "", group="task",

@@ -199,7 +199,8 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         st = ansatz.stats()
         fit = t.get("fit") or {}
         row.update(angles_fitted=bool(fit), fit_loss=fit.get("loss"), fit_loss_value=fit.get("loss_value"),
-                   fit_key=fit.get("key"))
+                   fit_key=fit.get("key"),
+                   angles_source="fitted" if fit else "model" if model.parameters else "seeded")
         if fit and "fit_parameters" not in row:
             row["fit_parameters"] = model.parameters
         row.update(family=t["family"], layers=t["layers"], variables=model.num_variables,

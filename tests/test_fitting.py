@@ -149,14 +149,21 @@ def test_compare_fit_caches_and_rows_say_fitted(chain_file, tmp_path):
     rows = json.loads(out)["rows"]
     assert sorted((r["family"], r["connectivity"]) for r in rows) == [
         ("clique", "all-to-all-4"), ("clique", "line-4"), ("pairwise", "all-to-all-4"), ("pairwise", "line-4")]
-    assert all(r["angles_fitted"] and r["fit_loss"] == "kl" and r["fit_loss_value"] >= 0 for r in rows)
+    assert all(r["angles_fitted"] and r["angles_source"] == "fitted" and r["fit_loss"] == "kl"
+               and r["fit_loss_value"] >= 0 for r in rows)
     assert len(list(cache.glob("*.json"))) == 2  # one fit per family
     code, out, err = run(*args)
     assert code == 0 and out.count("(from the cache)") == 2
     # without --fit the rows say the angles were not fitted
     code, out, err = run("compare", chain_file, "-c", "line", "--compile-only", "--strategy", "generic", "--seeds",
                          "1", "--json")
-    assert [r["angles_fitted"] for r in json.loads(out)["rows"]] == [False]
+    assert [(r["angles_fitted"], r["angles_source"]) for r in json.loads(out)["rows"]] == [(False, "seeded")]
+    # a model file written by toposcout fit: its angles are the model's own
+    code, _, err = run("fit", chain_file, "--restarts", "1", "--out", tmp_path / "fitted.json")
+    assert code == 0, err
+    code, out, err = run("compare", tmp_path / "fitted.json", "-c", "line", "--compile-only", "--strategy", "generic",
+                         "--seeds", "1", "--json")
+    assert [(r["angles_fitted"], r["angles_source"]) for r in json.loads(out)["rows"]] == [(False, "model")]
 
 
 def _examples_with_factors() -> list[Path]:
