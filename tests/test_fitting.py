@@ -191,3 +191,20 @@ def test_after_fit_noise_never_brings_the_model_closer_to_its_target(path, tmp_p
         assert r["noise_scale"] == 1.0
         assert r["kl_target_noisy"] >= r["kl_target_ideal"], r["connectivity"]
         assert r["kl_target_ideal"] == pytest.approx(r["fit_loss_value"], abs=1e-6)
+
+
+class _Terminal(io.StringIO):
+    def isatty(self) -> bool:
+        return True
+
+
+def test_fit_shows_a_progress_bar_with_the_loss_on_a_terminal(chain_file, tmp_path, monkeypatch):
+    monkeypatch.delenv("TQDM_DISABLE", raising=False)
+    out, err = io.StringIO(), _Terminal()
+    code = main(["fit", str(chain_file), "--restarts", "1", "--max-iter", "30", "--out", str(tmp_path / "f.json")],
+                out=out, err=err)
+    assert code == 0
+    assert "loss=" in err.getvalue() and "best=" in err.getvalue()
+    code = main(["fit", str(chain_file), "--restarts", "1", "--max-iter", "30", "--out", str(tmp_path / "g.json")],
+                out=io.StringIO(), err=(plain := io.StringIO()))
+    assert code == 0 and "loss=" not in plain.getvalue()  # not a terminal: no bar
