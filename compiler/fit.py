@@ -221,14 +221,21 @@ class Evaluator:
         np.add.at(c, self.masks, -theta_l)
         return _unit_phase(fwht(c))
 
-    def state(self, x: np.ndarray) -> np.ndarray:
-        """The final state vector (little-endian, qiskit's convention)."""
+    def _forward(self, x: np.ndarray) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Per layer: (phase vector D, state after D, state after the rotations)."""
         theta, rot = self.unpack(np.asarray(x, float))
         psi = np.full(1 << self.n, (1 << self.n) ** -0.5, dtype=complex)
+        out = []
         for l in range(self.layers):
-            psi = psi * self._phase(theta[l])
-            psi = apply_product(psi, [u_matrix(*rot[l, q]) for q in range(self.n)])
-        return psi
+            d = self._phase(theta[l])
+            mid = psi * d
+            psi = apply_product(mid, [u_matrix(*rot[l, q]) for q in range(self.n)])
+            out.append((d, mid, psi))
+        return out
+
+    def state(self, x: np.ndarray) -> np.ndarray:
+        """The final state vector (little-endian, qiskit's convention)."""
+        return self._forward(x)[-1][2]
 
     def probabilities(self, x: np.ndarray) -> np.ndarray:
         psi = self.state(x)
@@ -240,30 +247,29 @@ class Evaluator:
         For the rotation layer U = ⊗ u_q: dU/dα = (du_q u_q^†)_q U, so every rotation's derivative
         is 2 Re tr(G^T M_q) with G = du_q u_q^† and M_q the reduced matrix of (costate, state) after
         the layer on qubit q; the block's derivative in θ_S is the Walsh-Hadamard transform of
-        2 Im(conj(costate) state) at mask_S."""
+        2 Im(conj(costate) state) at mask_S. The forward states are kept (a few vectors per layer),
+        so the reverse pass only carries the costate back."""
         x = np.asarray(x, float)
         theta, rot = self.unpack(x)
-        psi = self.state(x)
+        layers = self._forward(x)
+        psi = layers[-1][2]
         p = psi.real ** 2 + psi.imag ** 2
         value, g = loss.value_and_grad_p(p)
         lam = g * psi  # dL/dψ* for L(|ψ|²)
         g_theta = np.zeros_like(theta)
         g_rot = np.zeros_like(rot)
         for l in reversed(range(self.layers)):
+            d, mid, out = layers[l]
             us = [u_matrix(*rot[l, q]) for q in range(self.n)]
-            m = _reduced(lam, psi, self.n)
-            for q in range(self.n):
-                ud = us[q].conj().T
-                for k, d in enumerate(_u_derivatives(*rot[l, q])):
-                    g_rot[l, q, k] = 2.0 * float(np.real(np.sum((d @ ud) * m[q])))
+            m = _reduced(lam, out, self.n)
             uds = [u.conj().T for u in us]
-            psi = apply_product(psi, uds)
+            for q in range(self.n):
+                for k, du in enumerate(_u_derivatives(*rot[l, q])):
+                    g_rot[l, q, k] = 2.0 * float(np.real(np.sum((du @ uds[q]) * m[q])))
             lam = apply_product(lam, uds)
-            w = 2.0 * np.imag(lam.conj() * psi)
+            w = 2.0 * np.imag(lam.conj() * mid)
             g_theta[l] = fwht(w)[self.masks]
-            dconj = self._phase(theta[l]).conj()
-            psi = psi * dconj
-            lam = lam * dconj
+            lam = lam * d.conj()
         return value, self.pack(g_theta, g_rot)
 
 
