@@ -208,3 +208,19 @@ def test_fit_shows_a_progress_bar_with_the_loss_on_a_terminal(chain_file, tmp_pa
     code = main(["fit", str(chain_file), "--restarts", "1", "--max-iter", "30", "--out", str(tmp_path / "g.json")],
                 out=io.StringIO(), err=(plain := io.StringIO()))
     assert code == 0 and "loss=" not in plain.getvalue()  # not a terminal: no bar
+
+
+def test_library_compare_fits_each_family(chain_file):
+    from toposcout.compiler.fit import fit_model
+    from toposcout.service.embedded import compare_rows
+
+    rows = compare_rows(chain_file, ["line"], compile_only=True, strategy="generic", seeds=1, workers=1,
+                        families=["clique", "pairwise"], fit={"restarts": 1})
+    model = load_model(chain_file)
+    for r in rows:
+        ref = fit_model(model, family=r["family"], restarts=1, seed=0)
+        assert r["angles_fitted"] and r["fit_parameters"] == ref.parameters
+    from toposcout.compiler.errors import ModelError
+
+    with pytest.raises(ModelError, match="restarts"):
+        compare_rows(chain_file, ["line"], compile_only=True, fit={"restarts": 0})
