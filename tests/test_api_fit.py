@@ -105,6 +105,9 @@ def test_dashboard_form_fits_and_compares_families(client, wait_study):
     study = wait_study(client, r.headers["location"].rsplit("/", 1)[-1])
     assert sorted(x["family"] for x in study["rows"]) == ["clique", "pairwise"]
     assert all(x["angles_fitted"] for x in study["rows"])
+    study_page = client.get(r.headers["location"]).text
+    assert ">family<" in study_page.replace(" ", "") or "family</th>" in study_page
+    assert "fitted" in study_page and "fit loss" in study_page  # compile-only: no target KLs to show
     page = client.get("/submit").text
     assert 'name="families"' in page and 'name="fit"' in page
     client.cookies.clear()

@@ -262,7 +262,9 @@ def _drawable(study: Mapping[str, Any], actives: Mapping[int, set[int] | None]) 
 _COLUMNS = [("task_index", "#"), *((k, FIELDS[k].title) for k in DASHBOARD_COLUMNS[:1]), ("status", "status"),
             *((k, FIELDS[k].title) for k in DASHBOARD_COLUMNS[1:])]
 #: what each column means, shown as the header's tooltip (from the row definition)
-_MEANINGS = {k: (FIELDS[k].meaning + (f" ({FIELDS[k].unit})" if FIELDS[k].unit else "")) for k in DASHBOARD_COLUMNS}
+_MEANINGS = {k: (FIELDS[k].meaning + (f" ({FIELDS[k].unit})" if FIELDS[k].unit else ""))
+             for k in (*DASHBOARD_COLUMNS, "family", "angles_fitted", "fit_loss_value", "kl_target_ideal",
+                       "kl_target_noisy")}
 
 
 def _study_context(study: dict, actives: Mapping[int, set[int] | None]) -> dict:
@@ -270,6 +272,13 @@ def _study_context(study: dict, actives: Mapping[int, set[int] | None]) -> dict:
     kinds = charts.available_charts(rows)
     cols = [(k, h) for k, h in _COLUMNS if k in ("task_index", "connectivity", "status")
             or any(r.get(k) is not None for r in rows)]
+    if len({r.get("family") for r in rows if r.get("family")}) > 1:  # a family comparison: side by side
+        cols.insert(2, ("family", FIELDS["family"].title))
+        rows = sorted(rows, key=lambda r: (str(r.get("connectivity")), r.get("noise_scale") or 0,
+                                           str(r.get("family"))))
+    if any(r.get("angles_fitted") for r in rows):
+        cols += [(k, FIELDS[k].title) for k in ("angles_fitted", "fit_loss_value", "kl_target_ideal", "kl_target_noisy")
+                 if any(r.get(k) is not None for r in rows)]
     req = study.get("request") or {}
     profile = next((r.get("profile") for r in rows if r.get("profile")), None) or req.get("profile")
     return dict(study=study, rows=rows, columns=cols, meanings=_MEANINGS, kinds=kinds, titles=charts.CHART_TITLES,
