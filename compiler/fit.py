@@ -134,17 +134,33 @@ def _kernel_apply(v: np.ndarray, n: int, bandwidths: Sequence[float]) -> np.ndar
     return out / len(bandwidths)
 
 
+def _group_reduced(lc: np.ndarray, psi: np.ndarray, q0: int, k: int) -> np.ndarray:
+    """R[i, j] = sum over the qubits outside the group of lc[.. i ..] psi[.. j ..] (lc = conj(lam)), i and j
+    the group's sub-index: one matrix product over the vectors."""
+    d, low = 1 << k, 1 << q0
+    if low == 1:
+        l2, p2 = lc.reshape(-1, d), psi.reshape(-1, d)
+        return l2.T @ p2
+    l3, p3 = lc.reshape(-1, d, low), psi.reshape(-1, d, low)
+    if l3.shape[0] == 1:
+        return l3[0] @ p3[0].T
+    return np.matmul(l3, p3.transpose(0, 2, 1)).sum(axis=0)
+
+
 def _reduced(lam: np.ndarray, psi: np.ndarray, n: int) -> np.ndarray:
-    """M[q, a, b] = sum over the other qubits of conj(lam[.. a ..]) psi[.. b ..] on qubit q."""
+    """M[q, a, b] = sum over the other qubits of conj(lam[.. a ..]) psi[.. b ..] on qubit q: per group of
+    qubits one reduced 2^k x 2^k matrix (a matrix product), then a partial trace per qubit of the group."""
     out = np.empty((n, 2, 2), dtype=complex)
     lc = lam.conj()
-    w = lc * psi
-    for q in range(n):
-        lb = lc.reshape(-1, 2, 1 << q)
-        pb = psi.reshape(-1, 2, 1 << q)
-        out[q, 0, 0], out[q, 1, 1] = w.reshape(-1, 2, 1 << q).sum(axis=(0, 2))
-        out[q, 0, 1] = np.einsum("ij,ij->", lb[:, 0, :], pb[:, 1, :])
-        out[q, 1, 0] = np.einsum("ij,ij->", lb[:, 1, :], pb[:, 0, :])
+    letters = "abcdefghij"
+    for q0, k in _groups(n):
+        r = _group_reduced(lc, psi, q0, k).reshape([2] * (2 * k))
+        for t in range(k):
+            # axis k-1-t of each index is bit t of the group; the other bits are traced (same letter twice)
+            rows = [letters[s] for s in range(k)]
+            cols = list(rows)
+            rows[k - 1 - t], cols[k - 1 - t] = "y", "z"
+            out[q0 + t] = np.einsum("".join(rows) + "".join(cols) + "->yz", r)
     return out
 
 

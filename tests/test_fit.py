@@ -242,3 +242,30 @@ def test_every_bitstring_order_matches_the_model_index():
     lines = ["a,b,c"] + [",".join(str(b) for b in bits) for bits in itertools.product("01", repeat=3)]
     idx = parse_samples("\n".join(lines), v)
     assert sorted(idx.tolist()) == list(range(8))
+
+
+def test_state_and_gradient_past_one_group_of_qubits():
+    # 11 variables: three groups of qubits (5 + 5 + 1), so the batched and the single-product paths all run;
+    # reference: qiskit.quantum_info.Statevector, and central finite differences of the loss (step 1e-5)
+    rng = np.random.default_rng(11)
+    m = parse_model(_random_model(rng, 11))
+    a = build_ansatz(m, layers=2, seed=2)
+    ev = Evaluator(a)
+    x = ev.initial()
+    assert np.max(np.abs(ev.state(x) - Statevector(a.circuit(measure=False)).data)) < 1e-10
+    loss = MMDLoss(rng.integers(0, 2 ** 11, size=300), 11)
+    _, grad = ev.value_and_grad(x, loss)
+    h = 1e-5
+    picks = rng.choice(x.size, size=20, replace=False)
+    for i in picks:
+        e = np.zeros_like(x)
+        e[i] = h
+        fd = (ev.value_and_grad(x + e, loss)[0] - ev.value_and_grad(x - e, loss)[0]) / (2 * h)
+        assert abs(grad[i] - fd) < 1e-6
+    kl = KLLoss(target_distribution(m))
+    _, grad = ev.value_and_grad(x, kl)
+    for i in picks:
+        e = np.zeros_like(x)
+        e[i] = h
+        fd = (ev.value_and_grad(x + e, kl)[0] - ev.value_and_grad(x - e, kl)[0]) / (2 * h)
+        assert abs(grad[i] - fd) < 1e-6
