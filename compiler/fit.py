@@ -326,6 +326,8 @@ class MMDLoss(Loss):
         idx = np.asarray(samples, dtype=np.int64)
         if idx.ndim != 1 or idx.size < 2:
             raise ModelError("MMD needs at least two samples", field="data")
+        if idx.min() < 0 or idx.max() >= 1 << n:
+            raise ModelError(f"samples must be bitstring indices from 0 to 2**{n} - 1", field="data")
         self.n = n
         self.m = idx.size
         self.bandwidths = tuple(float(b) for b in bandwidths)
@@ -405,7 +407,8 @@ class RestartResult:
     curve: list[float] = field(default_factory=list)
 
     def to_dict(self) -> dict:
-        return {"restart": self.restart, "loss": self.loss, "iterations": self.iterations,
+        return {"restart": self.restart, "loss": self.loss if math.isfinite(self.loss) else None,
+                "iterations": self.iterations,
                 "evaluations": self.evaluations, "seconds": round(self.seconds, 4), "message": self.message,
                 "curve": self.curve}
 
@@ -430,7 +433,8 @@ class FitResult:
     key: str | None = None
 
     def report(self) -> dict:
-        return {"loss": self.loss_name, "family": self.family, "layers": self.layers, "final_loss": self.loss,
+        return {"loss": self.loss_name, "family": self.family, "layers": self.layers,
+                "final_loss": self.loss if math.isfinite(self.loss) else None,
                 "best_restart": self.best_restart, "seconds": round(self.seconds, 3), "interrupted": self.interrupted,
                 "kl_target": self.kl_target, "mmd_target": self.mmd_target, "mmd_data": self.mmd_data,
                 "key": self.key, "restarts": [r.to_dict() for r in self.restarts]}

@@ -146,7 +146,8 @@ def loss_curve_image(report: Mapping[str, Any], fmt: str = "png") -> bytes:
     for r in report["restarts"]:
         curve = r.get("curve") or []
         values += curve
-        ax.plot(range(1, len(curve) + 1), curve, label=f"restart {r['restart']} (final {r['loss']:.3g})")
+        final = "n/a" if r["loss"] is None else f"{r['loss']:.3g}"
+        ax.plot(range(1, len(curve) + 1), curve, label=f"restart {r['restart']} (final {final})")
     if values and min(values) > 0:
         ax.set_yscale("log")
     unit = "KL(target ‖ model), nats" if report["loss"] == "kl" else "unbiased MMD² to the samples"
@@ -166,7 +167,8 @@ def format_report(report: Mapping[str, Any]) -> str:
              + (" (from the cache)" if report.get("cached") else "")]
     lines.append(f"  {'restart':<8}{'final loss':>14}{'iterations':>12}{'evaluations':>13}{'seconds':>10}  stop")
     for r in report["restarts"]:
-        lines.append(f"  {r['restart']:<8}{r['loss']:>14.6g}{r['iterations']:>12}{r['evaluations']:>13}"
+        loss = "n/a" if r["loss"] is None else f"{r['loss']:.6g}"
+        lines.append(f"  {r['restart']:<8}{loss:>14}{r['iterations']:>12}{r['evaluations']:>13}"
                      f"{r['seconds']:>10.3f}  {r['message']}")
 
     def f(x):

@@ -84,7 +84,8 @@ def test_fit_in_place_and_mmd_from_data(chain_file, tmp_path):
     assert load_model(chain_file).parameters is not None
 
 
-def test_fit_interrupted_leaves_the_input_and_reports_the_best(chain_file, tmp_path, monkeypatch):
+@pytest.mark.parametrize("after", [10, 0])
+def test_fit_interrupted_leaves_the_input_and_reports_the_best(chain_file, tmp_path, monkeypatch, after):
     import toposcout.compiler.fit as fit
 
     calls = {"n": 0}
@@ -92,7 +93,7 @@ def test_fit_interrupted_leaves_the_input_and_reports_the_best(chain_file, tmp_p
 
     def interrupted_after_ten(self, x, loss):
         calls["n"] += 1
-        if calls["n"] > 10:
+        if calls["n"] > after:
             raise KeyboardInterrupt  # what Ctrl-C raises in the main thread
         return real(self, x, loss)
 
