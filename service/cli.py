@@ -222,6 +222,9 @@ def _fit(args, out, err) -> int:
     else:
         out.write(format_report(report) + "\n")
         out.write(f"wrote {dest}\n")
+        if args.family != "clique" or settings.layers != 1:
+            out.write(f"(angles for --family {args.family} --layers {settings.layers}: run compare with the same "
+                      "options)\n")
     return EXIT_OK
 
 
