@@ -85,6 +85,7 @@ ROW_FIELDS: tuple[RowField, ...] = (
     _F("fit_parameters", "the fitted angles in the model format's parameters shape (terms, rotations)",
        kind="object", group="task"),
     _F("fit_restart_losses", "final loss of each restart of the fit, in restart order", kind="list", group="task"),
+    _F("fit_curve", "the fit's loss after each iteration of its best restart", kind="list", group="task"),
     _F("fit_seconds", "wall time of the fit in the worker (0 when memoised from an earlier row)", "s",
        group="timing"),
     _F("seed", "transpiler seed of the kept compilation", kind="int", group="task"),

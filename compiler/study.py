@@ -282,7 +282,9 @@ def _fitted(model: Model, t: Mapping[str, Any]) -> tuple[Model, dict, dict]:
         while len(_FITTED) > _COMPILED_SIZE:
             _FITTED.popitem(last=False)
     fit = {"loss": opts["loss"], "loss_value": result.loss, "key": key}
+    best = next((r for r in result.restarts if r.restart == result.best_restart), None)
     fields = {"fit_parameters": result.parameters, "fit_restart_losses": [r.loss for r in result.restarts],
+              "fit_curve": list(best.curve) if best else [],
               "fit_seconds": 0.0 if hit else round(result.seconds, 4)}
     return with_parameters(model, result.parameters), fit, fields
 

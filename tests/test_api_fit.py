@@ -108,6 +108,9 @@ def test_dashboard_form_fits_and_compares_families(client, wait_study):
     study_page = client.get(r.headers["location"]).text
     assert ">family<" in study_page.replace(" ", "") or "family</th>" in study_page
     assert "fitted" in study_page and "fit loss" in study_page  # compile-only: no target KLs to show
+    assert 'id="chart-fit"' in study_page  # the loss curve of each family's fit
+    svg = client.get(r.headers["location"] + "/charts/fit.svg")
+    assert svg.status_code == 200 and "<svg" in svg.text and "loss per iteration" in svg.text
     page = client.get("/submit").text
     assert 'name="families"' in page and 'name="fit"' in page
     client.cookies.clear()
