@@ -18,6 +18,13 @@ With ``device`` (the normalised content of a device file, ``toposcout.compiler.d
 chip fixes the connectivity and its figures are the profile; ``placement``, ``regions`` and
 ``jitter`` are described in ``toposcout.compiler.regions``.
 
+and optionally ``"fit": {"loss": "kl" | "mmd", "loss_value": x, "key": KEY}`` when the model's
+parameters were fitted before (``toposcout.compiler.fit``; the CLI's ``compare --fit``), or
+``"fit_request": {"loss", "restarts", "max_iter", "tol", "optimizer", "seed", "bandwidths",
+"samples"}`` to fit in the worker before compiling (the API's ``fit`` block; deterministic, so
+every worker finds the same angles; memoised per process). Either way the row says
+``angles_fitted`` and carries the fitted ``fit_parameters``.
+
 ``method`` picks how the noise figures are computed (``toposcout.compiler.methods``); when they
 cannot be computed the row keeps its compile figures and says why in ``noise_error``.
 
@@ -98,7 +105,7 @@ def connectivity_spec(spec: str | Mapping[str, Any]) -> dict:
 def normalise_task(task: Mapping[str, Any]) -> dict:
     """Fill defaults and normalise the model, so equal work has an equal key."""
     out = dict(TASK_DEFAULTS)
-    unknown = set(task) - set(TASK_DEFAULTS) - {"model", "connectivity"}
+    unknown = set(task) - set(TASK_DEFAULTS) - {"model", "connectivity", "fit", "fit_request"}
     if unknown:
         raise ModelError(f"unknown task fields {sorted(unknown)}", field=sorted(unknown)[0])
     out.update({k: v for k, v in task.items() if k != "model"})
@@ -216,8 +223,17 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         _check_options(t)
         model = parse_model(dict(t["model"]), "json", limits=limits)
         row["model"] = model.name
+        if t.get("fit_request"):
+            model, t["fit"], fit_row = _fitted(model, t)
+            row.update(fit_row)
         ansatz = build_ansatz(model, family=t["family"], layers=t["layers"], seed=t["seed"])
         st = ansatz.stats()
+        fit = t.get("fit") or {}
+        row.update(angles_fitted=bool(fit), fit_loss=fit.get("loss"), fit_loss_value=fit.get("loss_value"),
+                   fit_key=fit.get("key"),
+                   angles_source="fitted" if fit else "model" if model.parameters else "seeded")
+        if fit and "fit_parameters" not in row:
+            row["fit_parameters"] = model.parameters
         row.update(family=t["family"], layers=t["layers"], variables=model.num_variables,
                    terms=st["terms"], lower_bound_two_qubit=st["lower_bound_two_qubit"],
                    logical_cnots=st["cnots"], logical_depth=st["depth"])
@@ -297,6 +313,39 @@ def _compiled(ansatz, conn, gate_set, t: Mapping[str, Any], limits) -> tuple[Any
     while len(_COMPILED) > _COMPILED_SIZE:
         _COMPILED.popitem(last=False)
     return compiled, False
+
+
+#: fits of the last tasks run in this process, by fit key (a memo of a deterministic function)
+_FITTED: "OrderedDict[str, Any]" = OrderedDict()
+
+
+def _fitted(model: Model, t: Mapping[str, Any]) -> tuple[Model, dict, dict]:
+    """Fit the task's model (its ``fit_request``) for its family and layers: (fitted model, fit, row fields)."""
+    import numpy as np
+
+    from toposcout.compiler.fit import MMD_BANDWIDTHS, fit_key, fit_model, with_parameters
+
+    req = dict(t["fit_request"])
+    samples = None if req.get("samples") is None else np.asarray(req["samples"], dtype=np.int64)
+    opts = dict(loss=req.get("loss", "kl"), restarts=req.get("restarts", 3), max_iter=req.get("max_iter", 500),
+                tol=req.get("tol", 1e-10), optimizer=req.get("optimizer", "lbfgs"), seed=req.get("seed", 0),
+                bandwidths=tuple(req.get("bandwidths") or MMD_BANDWIDTHS))
+    key = fit_key(model, family=t["family"], layers=t["layers"], samples=samples, **opts)
+    hit = key in _FITTED
+    if hit:
+        _FITTED.move_to_end(key)
+        result = _FITTED[key]
+    else:
+        result = fit_model(model, family=t["family"], layers=t["layers"], samples=samples, **opts)
+        _FITTED[key] = result
+        while len(_FITTED) > _COMPILED_SIZE:
+            _FITTED.popitem(last=False)
+    fit = {"loss": opts["loss"], "loss_value": result.loss, "key": key}
+    best = next((r for r in result.restarts if r.restart == result.best_restart), None)
+    fields = {"fit_parameters": result.parameters, "fit_restart_losses": [r.loss for r in result.restarts],
+              "fit_curve": list(best.curve) if best else [],
+              "fit_seconds": 0.0 if hit else round(result.seconds, 4)}
+    return with_parameters(model, result.parameters), fit, fields
 
 
 def _profile(spec: str | Mapping[str, Any] | None, noise_scale: float):

@@ -31,6 +31,12 @@ def rows_table(rows: list[dict]) -> str:
         names.append("_clique")
     if any(r.get("clifford_state_fidelity") is not None for r in rows):
         names.append("_clifford")
+    if len({r.get("family") for r in rows if r.get("family")}) > 1:  # a family comparison: side by side
+        names.insert(1, "family")
+    if any(r.get("angles_fitted") for r in rows):
+        names += ["angles_fitted", "fit_loss_value"]
+    if any(r.get("kl_target_ideal") is not None for r in rows):
+        names += ["kl_target_ideal", "kl_target_noisy"]
     if any(r.get("method") for r in rows):
         names.append("method")
     if any(r.get("threshold_two_qubit_error") is not None for r in rows):
@@ -115,7 +121,11 @@ def _sort_key(r: dict):
 
 
 def sort_rows(rows: list[dict]) -> list[dict]:
-    """Rows in the table's order: errors last, then by two-qubit count, depth, connectivity, scale."""
+    """Rows in the table's order: errors last, then by two-qubit count, depth, connectivity, scale.
+    With several families (a family comparison), the families of one connectivity sit together."""
+    if len({r.get("family") for r in rows if r.get("family")}) > 1:
+        return sorted(rows, key=lambda r: (r.get("error") is not None, str(r.get("connectivity")),
+                                           r.get("noise_scale") or 0, str(r.get("family"))))
     return sorted(rows, key=_sort_key)
 
 

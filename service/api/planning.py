@@ -215,7 +215,13 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
     if not compile_only:
         options.update(method=req.method, time_budget_seconds=req.time_budget_seconds,
                        trajectories=req.trajectories, precision=req.precision)
-    tasks = make_tasks(model, specs, noise_scales=scales, **options)
+    families = list(dict.fromkeys(req.families or [req.family]))
+    fit_request = _fit_request(req, model, families, settings) if req.fit is not None else None
+    if fit_request is not None:
+        options["fit_request"] = fit_request
+    tasks = []
+    for fam in families:
+        tasks += make_tasks(model, specs, noise_scales=scales, **{**options, "family": fam})
     keys = [task_key({**t, "model": model}) for t in tasks]  # the parsed model: no second parse per task
     normalised = {"model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
                   "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
@@ -225,7 +231,46 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
                   "trajectories": req.trajectories, "precision": req.precision,
                   "device": None if device is None else device.to_dict(), "placement": req.placement,
                   "regions": req.regions, "jitter": req.jitter, "jitter_samples": req.jitter_samples}
+    if req.families:
+        normalised["families"] = families
+    if fit_request is not None:
+        from toposcout.compiler.fit import data_hash
+
+        normalised["fit"] = {**{k: v for k, v in fit_request.items() if k != "samples"},
+                             "data_hash": data_hash(fit_request["samples"]) if fit_request["samples"] else None}
     return Prepared(model=model, request=normalised, tasks=tasks, keys=keys)
+
+
+def _fit_request(req: StudyRequest, model: Model, families: list[str], settings) -> dict:
+    """The ``fit`` block checked against the model and the server's cap, as a task's ``fit_request``."""
+    from toposcout.compiler.fit import MMD_BANDWIDTHS, check_fit_options, parse_samples
+
+    f = req.fit
+    if model.num_variables > settings.max_fit_variables:
+        raise CapacityError(f"fit: the model has {model.num_variables} variables but this server fits at most "
+                            f"max_fit_variables={settings.max_fit_variables} (the fit is exact: 2**n amplitudes)",
+                            field="fit")
+    samples = None
+    if f.data is not None:
+        try:
+            samples = parse_samples(f.data, model.variables)
+        except ModelError as exc:
+            raise ModelError(f"fit.data: {exc}", field="fit.data") from None
+    bandwidths = tuple(f.kernel_bandwidths or MMD_BANDWIDTHS)
+    for fam in families:
+        try:
+            check_fit_options(model, family=fam, layers=req.layers, loss=f.loss, samples=samples,
+                              restarts=f.restarts, max_iter=f.max_iter, optimizer=f.optimizer, tol=f.tol,
+                              bandwidths=bandwidths)
+        except (ModelError, CapacityError) as exc:
+            field = {"factors": "fit.loss", "data": "fit.data"}.get(exc.field or "", f"fit.{exc.field}")
+            raise type(exc)(f"{field}: {exc}", field=field) from None
+    if f.loss == "mmd" and samples is None:
+        raise ModelError("fit.data: loss mmd needs samples: CSV text with one 0/1 column per variable",
+                         field="fit.data")
+    return {"loss": f.loss, "restarts": f.restarts, "max_iter": f.max_iter, "tol": f.tol, "optimizer": f.optimizer,
+            "seed": req.seed, "bandwidths": list(bandwidths),
+            "samples": None if samples is None else [int(x) for x in samples]}
 
 
 _BAD_NAME = re.compile(r"[\x00-\x1f\x7f/\\]")
@@ -263,6 +308,9 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
         if key == "noise_scales":
             out[key] = [_form_float(key, c) for v in values for c in v.split(",") if c.strip()]
             continue
+        if key == "families":
+            out[key] = [c.strip() for v in values for c in v.split(",") if c.strip()]
+            continue
         if len(values) != 1:
             raise ModelError(f"{key}: give this form field once", field=key)
         v = values[0].strip()
@@ -282,6 +330,9 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
             out[key] = v.lower() in ("true", "1", "yes", "on")
         elif key in ("model_format", "profile", "device", "placement") and v == "":
             continue
+        elif key == "fit":  # the form's fit field is the loss (kl | mmd); the other fit options keep their defaults
+            if v:
+                out[key] = {"loss": v}
         else:
             out[key] = v
     return out

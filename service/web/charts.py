@@ -13,7 +13,8 @@ Chart kinds (:data:`CHART_KINDS`):
 * ``fidelity`` state fidelity and Hellinger fidelity per connectivity;
 * ``budget``   the error budget: Hellinger fidelity lost to each noise source, stacked;
 * ``sweep``    state fidelity against noise scale, with the fidelity target and each
-  connectivity's threshold scale marked (needs two or more noise scales).
+  connectivity's threshold scale marked (needs two or more noise scales);
+* ``fit``      the fit's loss per iteration (best restart), one line per family (fitted studies only).
 
 :func:`connectivity_chart` draws one connectivity with the model's variables on their
 physical qubits.
@@ -60,12 +61,13 @@ __all__ = [
     "per_connectivity",
 ]
 
-CHART_KINDS: tuple[str, ...] = ("gates", "fidelity", "budget", "sweep")
+CHART_KINDS: tuple[str, ...] = ("gates", "fidelity", "budget", "sweep", "fit")
 CHART_TITLES: dict[str, str] = {
     "gates": "Two-qubit gates and depth per connectivity",
     "fidelity": "State and Hellinger fidelity per connectivity",
     "budget": "Error budget: Hellinger fidelity lost per noise source",
     "sweep": "State fidelity against noise scale",
+    "fit": "Fit of the angles: loss per iteration (best restart)",
 }
 FORMATS: tuple[str, ...] = ("svg", "png")
 
@@ -131,6 +133,8 @@ def available_charts(rows: Iterable[Mapping[str, Any]]) -> list[str]:
               and r.get("noise_scale") is not None}
     if len(scales) >= 2:
         kinds.append("sweep")
+    if any(r.get("fit_curve") for r in ok):
+        kinds.append("fit")
     return kinds
 
 
@@ -144,6 +148,9 @@ def chart_description(kind: str, rows: Iterable[Mapping[str, Any]]) -> str:
     elif kind == "fidelity":
         body = "; ".join(f"{r['connectivity']}: state fidelity {_fmt(r.get('state_fidelity'))}, "
                          f"Hellinger fidelity {_fmt(r.get('hellinger_fidelity'))}" for r in per)
+    elif kind == "fit":
+        body = "; ".join(f"{fam}: {len(c)} iterations, final {r.get('fit_loss')} loss {_fmt(c[-1])}"
+                         for fam, (r, c) in _fit_curves(ok).items())
     elif kind == "budget":
         body = "; ".join(f"{r['connectivity']}: " + ", ".join(f"{label} {_fmt(r.get(k))}" for k, label, _ in _BUDGET)
                          for r in per)
@@ -177,10 +184,12 @@ def render_chart(kind: str, rows: Iterable[Mapping[str, Any]], *, fmt: str = "sv
     ok = usable_rows(rows)
     if kind not in available_charts(ok):
         need = {"gates": "at least one finished row", "fidelity": "a noise simulation (not compile-only)",
+                "fit": "fitted angles (a fit block)",
                 "budget": "a noise simulation with the error budget",
                 "sweep": "finished noisy rows at two or more noise scales"}[kind]
         raise ToposcoutError(f"the chart {kind!r} needs {need}; this study has none", field="chart")
-    draw = {"gates": _draw_gates, "fidelity": _draw_fidelity, "budget": _draw_budget, "sweep": _draw_sweep}[kind]
+    draw = {"gates": _draw_gates, "fidelity": _draw_fidelity, "budget": _draw_budget, "sweep": _draw_sweep,
+            "fit": _draw_fit}[kind]
     per = per_connectivity(ok)
     width = max(6.4, 1.1 * len(per) + 2.5) if kind != "sweep" else 7.0
     fig = Figure(figsize=(min(width, 14.0), 4.6), layout="constrained")
@@ -197,6 +206,29 @@ def _caption(fig: Figure, text: str) -> None:
 
 def _names(per: Sequence[Mapping[str, Any]]) -> list[str]:
     return [str(r["connectivity"]) for r in per]
+
+
+def _fit_curves(rows) -> dict[str, tuple[Mapping[str, Any], list[float]]]:
+    """One (row, loss curve) per family (every row of a family carries the same fit)."""
+    out: dict[str, tuple[Mapping[str, Any], list[float]]] = {}
+    for r in rows:
+        if r.get("fit_curve") and str(r.get("family")) not in out:
+            out[str(r.get("family"))] = (r, [float(v) for v in r["fit_curve"]])
+    return out
+
+
+def _draw_fit(fig: Figure, rows) -> None:
+    ax = fig.subplots()
+    curves = _fit_curves(rows)
+    values = [v for _, c in curves.values() for v in c]
+    for fam, (r, c) in curves.items():
+        ax.plot(range(1, len(c) + 1), c, label=f"{fam} (final {c[-1]:.3g})")
+    if values and min(values) > 0:
+        ax.set_yscale("log")
+    loss = next((r.get("fit_loss") for r, _ in curves.values()), "kl")
+    ax.set_ylabel("KL(target ‖ model) (nats)" if loss == "kl" else "unbiased MMD² to the samples")
+    ax.set_xlabel("iteration (count)")
+    ax.legend(fontsize=8)
 
 
 def _draw_gates(fig: Figure, rows) -> None:
