@@ -105,7 +105,9 @@ def plan_row(task: Mapping[str, Any], parts: int) -> dict[str, Any]:
         head.update(out)
         return {"row": head, "parts": [], "task": dict(task)}
     if plan.method not in ("trajectories", "clifford"):
-        return {"row": run_task(task), "parts": [], "task": dict(task)}
+        whole = run_task(task)
+        whole["compile_reused"] = head.get("compile_reused")  # our own head compile is not an earlier row's
+        return {"row": whole, "parts": [], "task": dict(task)}
     seed = int(t.get("seed") or 0)
     specs: list[dict[str, Any]] = []
     errs = operation_errors(sched, profile)
