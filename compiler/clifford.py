@@ -301,7 +301,7 @@ def _gate_twirl(profile: DeviceProfile, phys: Sequence[int]):
     twirl of ``toposcout.compiler.noise.gate_error`` (same depolarizing remainder, same
     relaxation over the gate's duration, same clipping)."""
     if len(phys) == 1:
-        r, dur = profile.qubit(phys[0]).one_qubit_error, _ns(profile.one_qubit_ns)
+        r, dur = profile.qubit(phys[0]).one_qubit_error, _ns(profile.qubit(phys[0]).one_qubit_ns)
     else:
         e = profile.edge(*phys)
         r, dur = e.two_qubit_error, _ns(e.two_qubit_ns)

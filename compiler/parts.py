@@ -58,16 +58,16 @@ def _context(task: Mapping[str, Any]):
     """(task with defaults, ansatz, compiled, profile) of a task, compiled through the memo."""
     from toposcout.compiler.ansatz import build_ansatz
     from toposcout.compiler.model import parse_model
-    from toposcout.compiler.study import TASK_DEFAULTS, _compiled, _profile, connectivity_spec
-    from toposcout.compiler.targets import get_gate_set, make_connectivity
+    from toposcout.compiler.study import TASK_DEFAULTS, _compiled, _profile, connectivity_spec, task_connectivity
+    from toposcout.compiler.targets import get_gate_set
 
     t = dict(TASK_DEFAULTS)
     t.update(task)
     spec = connectivity_spec(t["connectivity"])
     model = parse_model(dict(t["model"]), "json")
     ansatz = build_ansatz(model, family=t["family"], layers=t["layers"], seed=t["seed"])
-    conn = make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"])
-    compiled, _reused = _compiled(ansatz, conn, get_gate_set(t["gate_set"]), t, None)
+    conn, _device = task_connectivity(t, model, spec)
+    (compiled, _placed), _reused = _compiled(ansatz, conn, get_gate_set(t["gate_set"]), t, None)
     return t, ansatz, compiled, _profile(t["profile"], t["noise_scale"])
 
 
@@ -105,7 +105,9 @@ def plan_row(task: Mapping[str, Any], parts: int) -> dict[str, Any]:
         head.update(out)
         return {"row": head, "parts": [], "task": dict(task)}
     if plan.method not in ("trajectories", "clifford"):
-        return {"row": run_task(task), "parts": [], "task": dict(task)}
+        whole = run_task(task)
+        whole["compile_reused"] = head.get("compile_reused")  # our own head compile is not an earlier row's
+        return {"row": whole, "parts": [], "task": dict(task)}
     seed = int(t.get("seed") or 0)
     specs: list[dict[str, Any]] = []
     errs = operation_errors(sched, profile)

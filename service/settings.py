@@ -76,6 +76,8 @@ class Settings(BaseSettings):
     max_connectivities: int = Field(default=12, ge=1, description="targets per study")
     max_noise_scales: int = Field(default=16, ge=1, description="noise scales per study")
     max_compile_targets: int = Field(default=6, ge=1, description="targets per POST /v1/compile")
+    max_fit_variables: int = Field(default=16, ge=1, le=20,
+                                   description="largest model a study's fit block may fit (exact, 2**n amplitudes)")
     max_active_studies_per_owner: int = Field(default=8, ge=1,
                                               description="queued+running studies per token (429 above)")
     max_queued_tasks: int = Field(default=2000, ge=1,

@@ -76,7 +76,10 @@ def test_rows_that_cannot_be_split_come_back_whole(chain_model):
     dm = make_tasks(chain_model(4), ["line"], seeds=1, strategy="structured", error_budget=False)[0]
     plan = plan_row(dm, 2)
     assert plan["parts"] == [] and plan["row"]["method"] == "density-matrix"
-    assert plan["row"]["state_fidelity"] == pytest.approx(run_task(dm)["state_fidelity"], abs=1e-12)
+    whole = run_task(dm)
+    assert plan["row"]["state_fidelity"] == pytest.approx(whole["state_fidelity"], abs=1e-12)
+    # the row says what run_task says: its compilation was not reused from an earlier row
+    assert plan_row(dict(dm, seed=7), 2)["row"]["compile_reused"] is False
     bad = dict(dm, connectivity={"family": "line", "size": "2", "edges": None})   # too small for 4 variables
     assert plan_row(bad, 2)["row"]["error_field"] == "connectivity"
     with pytest.raises(ToposcoutError):
