@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from dataclasses import dataclass, field
 from functools import lru_cache
 from importlib import resources
@@ -61,11 +62,27 @@ class Limits:
         (its 2**k - 1 subsets would explode).
     max_terms: default 20000; the number of terms (before de-duplication) after
         ``max_order`` is applied.
+    max_order: default 16; the largest ``max_order`` a model may set (the request's cap).
+    max_cliques: default 4096; cliques of a JSON model, maximal cliques of a node-link graph.
+    max_factors: default 4096; factors of a JSON model, functions of a UAI file.
+    max_links: default 20000; links of a node-link graph.
+    max_angle: default 1e6 rad; the largest |angle| in ``parameters`` (exp(-iθZ_S) has period
+        2π, u(θ, φ, λ) period 2π in each angle up to a global phase; above 1e6 rad the reduction
+        in double precision loses more than 1e-10 rad, and 1e308 overflows 2θ to infinity).
+    max_clique_steps: default 200000; calls of the clique enumeration (a work budget).
+
+    Every cap is checked as the input is read, before anything of its size is allocated.
     """
 
     max_variables: int = 128
     max_clique_size: int = 16
     max_terms: int = 20000
+    max_order: int = 16
+    max_cliques: int = 4096
+    max_factors: int = 4096
+    max_links: int = 20000
+    max_angle: float = 1e6
+    max_clique_steps: int = 200_000
 
 
 @dataclass(frozen=True)
@@ -147,7 +164,16 @@ def _reject_constant(token: str):
     )
 
 
+#: the most objects and arrays a model text may hold, counted before it is decoded (a node-link
+#: graph at the link cap holds about 20000; 4 MB of ``{}`` would decode to ~160 MB of dicts)
+MAX_JSON_CONTAINERS = 100_000
+
+
 def _loads_json(text: str, what: str = "model") -> Any:
+    containers = text.count("{") + text.count("[")
+    if containers > MAX_JSON_CONTAINERS:
+        raise CapacityError(f"the {what} holds {containers} JSON objects and arrays, more than the cap of "
+                            f"{MAX_JSON_CONTAINERS}", field="body")
     try:
         return json.loads(text, parse_constant=_reject_constant)
     except json.JSONDecodeError as exc:
@@ -201,11 +227,11 @@ def parse_model(
     if fmt == "uai":
         if not isinstance(source, str):
             raise ModelError("a UAI model must be given as text", field="body")
-        obj = _uai_to_dict(source)
+        obj = _uai_to_dict(source, limits)
     else:
         obj = _loads_json(source) if isinstance(source, str) else source
         if fmt == "nodelink":
-            obj = _nodelink_to_dict(obj)
+            obj = _nodelink_to_dict(obj, limits)
         elif fmt != "json":
             raise ModelError(f"unknown model format {fmt!r}; use json, uai or nodelink", field="format")
     if not isinstance(obj, Mapping):
@@ -240,11 +266,23 @@ def _path(parts: tuple) -> str:
     return out or "body"
 
 
+def _schema_view(obj: Mapping[str, Any]) -> Mapping[str, Any]:
+    """``obj`` with each factor's values cut to their first two: the schema says no more about the
+    rest than that they are positive numbers, which :func:`_build` checks entry by entry (naming
+    the entry) far faster than the schema validator."""
+    factors = obj.get("factors")
+    if not isinstance(factors, list):
+        return obj
+    short = [dict(f, values=f["values"][:2]) if isinstance(f, Mapping) and isinstance(f.get("values"), list)
+             and len(f["values"]) > 2 else f for f in factors]
+    return {**obj, "factors": short}
+
+
 def _schema_check(obj: Mapping[str, Any]) -> None:
     import jsonschema
 
     validator = jsonschema.Draft202012Validator(model_schema())
-    errors = sorted(validator.iter_errors(obj), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    errors = sorted(validator.iter_errors(_schema_view(obj)), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
     if errors:
         err = errors[0]
         where = _path(tuple(err.absolute_path))
@@ -272,6 +310,84 @@ def count_terms(clique_sizes: list[int], max_order: int | None) -> int:
     return total
 
 
+#: the most entries in all of a model's cliques, of its factor tables, of its parameters
+#: (each is checked by the schema validator at a few microseconds an entry)
+MAX_ENTRIES = 65536
+
+
+def _precheck(obj: Mapping[str, Any], limits: Limits) -> None:
+    """The sizes of a decoded model against the caps, before the schema check and any loop
+    over the contents (each list's length is known without walking it)."""
+    cliques = obj.get("cliques")
+    if isinstance(cliques, list) and len(cliques) > limits.max_cliques:
+        raise CapacityError(f"the model lists {len(cliques)} cliques, more than the cap of {limits.max_cliques} "
+                            "on cliques; merge cliques or split the model", field="cliques")
+    if isinstance(cliques, list):
+        members = sum(len(c) for c in cliques if isinstance(c, list))
+        if members > MAX_ENTRIES:
+            raise CapacityError(f"the model's cliques list {members} variables in all, more than the cap of "
+                                f"{MAX_ENTRIES}", field="cliques")
+    factors = obj.get("factors")
+    if isinstance(factors, list):
+        if len(factors) > limits.max_factors:
+            raise CapacityError(f"the model lists {len(factors)} factors, more than the cap of "
+                                f"{limits.max_factors} on factors", field="factors")
+        entries = sum(len(f["values"]) for f in factors if isinstance(f, Mapping) and isinstance(f.get("values"), list))
+        if entries > MAX_ENTRIES:
+            raise CapacityError(f"the model's factor tables hold {entries} entries in all, more than the cap of "
+                                f"{MAX_ENTRIES}", field="factors")
+        for fi, f in enumerate(factors):
+            if not isinstance(f, Mapping):
+                continue
+            scope, values = f.get("scope"), f.get("values")
+            if isinstance(scope, list) and len(scope) > limits.max_clique_size:
+                raise CapacityError(f"factors[{fi}].scope has {len(scope)} variables, more than the cap of "
+                                    f"{limits.max_clique_size} on a factor's scope (its table would have "
+                                    f"2**{len(scope)} entries)", field=f"factors[{fi}].scope")
+            if isinstance(values, list) and len(values) > 2 ** limits.max_clique_size:
+                raise CapacityError(f"factors[{fi}].values has {len(values)} entries, more than the cap of "
+                                    f"2**{limits.max_clique_size}", field=f"factors[{fi}].values")
+    mo = obj.get("max_order")
+    if isinstance(mo, int) and not isinstance(mo, bool) and mo > limits.max_order:
+        raise CapacityError(f"max_order: the model sets max_order={mo}, more than the cap of {limits.max_order} "
+                            "(the same cap as the request's max_order)", field="max_order")
+    params = obj.get("parameters")
+    if isinstance(params, Mapping):
+        for table in ("terms", "rotations"):
+            t = params.get(table)
+            cap = limits.max_terms if table == "terms" else limits.max_variables
+            if isinstance(t, Mapping) and len(t) > cap:
+                raise CapacityError(f"parameters.{table} has {len(t)} entries, more than the cap of {cap}",
+                                    field=f"parameters.{table}")
+            if isinstance(t, Mapping):
+                numbers = sum(len(v) if isinstance(v, list) else 1 for v in t.values())
+                if numbers > MAX_ENTRIES:
+                    raise CapacityError(f"parameters.{table} holds about {numbers} angles, more than the cap of "
+                                        f"{MAX_ENTRIES}", field=f"parameters.{table}")
+                for key, val in t.items():
+                    if isinstance(val, list) and len(val) > 64:
+                        raise CapacityError(f"parameters.{table}[{str(key)[:40]!r}] lists {len(val)} layers, more "
+                                            "than the cap of 64", field=f"parameters.{table}.{str(key)[:40]}")
+
+
+def _by_variable(sets: list[frozenset]) -> dict[str, list[frozenset]]:
+    """Each variable → the sets that contain it (for subset tests without a pairwise loop)."""
+    out: dict[str, list[frozenset]] = {}
+    for s in sets:
+        for v in s:
+            out.setdefault(v, []).append(s)
+    return out
+
+
+def _inside_some(s: frozenset, index: Mapping[Any, list[frozenset]], *, proper: bool = False) -> bool:
+    """Whether ``s`` is a subset (``proper``: a proper subset) of a set in ``index``; only the
+    sets holding the rarest member of ``s`` are looked at."""
+    if not s:
+        return True
+    bucket = min((index.get(v, ()) for v in s), key=len)
+    return any((s < c) if proper else (s <= c) for c in bucket)
+
+
 def _build(obj: Mapping[str, Any], limits: Limits) -> Model:
     variables = obj.get("variables")
     if variables is None or (isinstance(variables, list) and not variables):
@@ -294,6 +410,7 @@ def _build(obj: Mapping[str, Any], limits: Limits) -> Model:
                 )
             if isinstance(v, str):
                 seen[v] = i
+    _precheck(obj, limits)
     _schema_check(obj)
     names = tuple(variables)
     pos = {v: i for i, v in enumerate(names)}
@@ -335,7 +452,7 @@ def _build(obj: Mapping[str, Any], limits: Limits) -> Model:
             field="max_order" if max_order is not None else "cliques",
         )
 
-    clique_sets = [frozenset(c) for c in cliques]
+    clique_index = _by_variable([frozenset(c) for c in cliques])
     factors: list[Factor] = []
     for fi, f in enumerate(obj.get("factors", [])):
         scope = f["scope"]
@@ -349,7 +466,7 @@ def _build(obj: Mapping[str, Any], limits: Limits) -> Model:
             if v in seen_s:
                 raise ModelError(f"factors[{fi}].scope: variable {v!r} is repeated", field=f"factors[{fi}].scope")
             seen_s.add(v)
-        if not any(seen_s <= c for c in clique_sets):
+        if not _inside_some(frozenset(seen_s), clique_index):
             raise ModelError(
                 f"factors[{fi}].scope {scope} is not inside any clique; add a clique that contains it",
                 field=f"factors[{fi}].scope",
@@ -372,7 +489,7 @@ def _build(obj: Mapping[str, Any], limits: Limits) -> Model:
 
     params = obj.get("parameters")
     if params:
-        _check_parameters(params, pos)
+        _check_parameters(params, pos, limits.max_angle)
     return Model(
         name=str(obj.get("name") or "model"),
         variables=names,
@@ -383,7 +500,13 @@ def _build(obj: Mapping[str, Any], limits: Limits) -> Model:
     )
 
 
-def _check_parameters(params: Mapping[str, Any], pos: Mapping[str, int]) -> None:
+def _angle_bound(x: float, bound: float, what: str, where: str) -> None:
+    if abs(x) > bound:
+        raise ModelError(f"{what}: angle {x!r} rad is over the bound of {bound:g} rad; the rotation has period "
+                         f"2π, so give the angle reduced modulo 2π (math.remainder(x, 2*math.pi))", field=where)
+
+
+def _check_parameters(params: Mapping[str, Any], pos: Mapping[str, int], bound: float = 1e6) -> None:
     for key, val in params.get("terms", {}).items():
         parts = key.split(",")
         for p in parts:
@@ -399,6 +522,7 @@ def _check_parameters(params: Mapping[str, Any], pos: Mapping[str, int]) -> None
             if not _finite(x):
                 raise ModelError(f"parameters.terms[{key!r}]: angle {x!r} is not a finite number",
                                  field=f"parameters.terms.{key}")
+            _angle_bound(x, bound, f"parameters.terms[{key!r}]", f"parameters.terms.{key}")
     for key, val in params.get("rotations", {}).items():
         if key not in pos:
             raise ModelError(f"parameters.rotations[{key!r}]: unknown variable", field=f"parameters.rotations.{key}")
@@ -407,51 +531,70 @@ def _check_parameters(params: Mapping[str, Any], pos: Mapping[str, int]) -> None
             if not _finite(x):
                 raise ModelError(f"parameters.rotations[{key!r}]: angle {x!r} is not a finite number",
                                  field=f"parameters.rotations.{key}")
+            _angle_bound(x, bound, f"parameters.rotations[{key!r}]", f"parameters.rotations.{key}")
 
 
 # --------------------------------------------------------------------------- UAI
 
 
-def _uai_to_dict(text: str) -> dict:
+def _uai_tokens(text: str):
+    """The tokens of a UAI file with their line numbers, one at a time (nothing is listed ahead)."""
+    line, last = 1, 0
+    for m in _TOKEN.finditer(text):
+        line += text.count("\n", last, m.start())
+        last = m.start()
+        yield m.group(), line
+
+
+_TOKEN = re.compile(r"\S+")
+_INT = re.compile(r"[+-]?[0-9]{1,12}")
+
+
+def _uai_to_dict(text: str, limits: Limits | None = None) -> dict:
     """Read a UAI ``MARKOV`` file (binary variables) into our JSON model form.
 
     UAI tables list entries with the last variable of a function's scope changing
     fastest; our factors are little-endian over the scope, so the order is converted.
+    The file is read token by token and every count (variables, functions, scope sizes,
+    table sizes) is checked against ``limits`` as it is read, before anything of that size exists.
     """
-    tokens: list[tuple[str, int]] = []
-    for lineno, line in enumerate(text.splitlines(), start=1):
-        for tok in line.split():
-            tokens.append((tok, lineno))
-    pos = 0
+    limits = limits or Limits()
+    tokens = _uai_tokens(text)
+    last_line = 1
 
     def take(what: str) -> tuple[str, int]:
-        nonlocal pos
-        if pos >= len(tokens):
-            last = tokens[-1][1] if tokens else 1
-            raise ModelError(f"line {last}: the UAI file ends early; expected {what}", field=f"line {last}")
-        tok = tokens[pos]
-        pos += 1
+        nonlocal last_line
+        tok = next(tokens, None)
+        if tok is None:
+            raise ModelError(f"line {last_line}: the UAI file ends early; expected {what}", field=f"line {last_line}")
+        last_line = tok[1]
         return tok
 
     def take_int(what: str, minimum: int = 0) -> tuple[int, int]:
         tok, line = take(what)
-        try:
-            v = int(tok)
-        except ValueError:
-            raise ModelError(f"line {line}: expected {what} (an integer), found {tok!r}", field=f"line {line}") from None
+        if not _INT.fullmatch(tok):
+            raise ModelError(f"line {line}: expected {what} (an integer), found {tok[:40]!r}", field=f"line {line}")
+        v = int(tok)
         if v < minimum:
             raise ModelError(f"line {line}: {what} must be at least {minimum}, found {v}", field=f"line {line}")
         return v, line
 
-    if not tokens:
+    first = next(tokens, None)
+    if first is None:
         raise ModelError("the UAI file is empty", field="line 1")
-    kind, line = take("the preamble MARKOV")
+    kind, line = first
     if kind.upper() != "MARKOV":
         raise ModelError(
-            f"line {line}: the UAI preamble is {kind!r}; toposcout reads Markov networks only (preamble MARKOV)",
+            f"line {line}: the UAI preamble is {kind[:40]!r}; toposcout reads Markov networks only (preamble MARKOV)",
             field=f"line {line}",
         )
     n, line = take_int("the number of variables", 1)
+    if n > limits.max_variables:
+        raise CapacityError(
+            f"line {line}: the UAI file declares {n} variables, more than the cap of {limits.max_variables}; "
+            "split the model or raise the cap on variables",
+            field="variables",
+        )
     names = [f"v{i}" for i in range(n)]
     for i in range(n):
         card, cline = take_int(f"the cardinality of variable {i}", 1)
@@ -461,9 +604,19 @@ def _uai_to_dict(text: str) -> dict:
                 field=f"line {cline}",
             )
     m, line = take_int("the number of functions", 0)
+    if m > limits.max_factors:
+        raise CapacityError(f"line {line}: the UAI file declares {m} functions, more than the cap of "
+                            f"{limits.max_factors} on factors", field="factors")
     scopes: list[list[int]] = []
     for fi in range(m):
         k, sline = take_int(f"the scope size of function {fi}", 1)
+        if k > n:
+            raise ModelError(f"line {sline}: function {fi} has a scope of {k} variables, but the file declares "
+                             f"{n} variables", field=f"line {sline}")
+        if k > limits.max_clique_size:
+            raise CapacityError(f"line {sline}: function {fi} has a scope of {k} variables, more than the cap of "
+                                f"{limits.max_clique_size} on a factor's scope (its table would have 2**{k} entries)",
+                                field="factors")
         scope = []
         for _ in range(k):
             v, vline = take_int(f"a variable index of function {fi}", 0)
@@ -492,11 +645,11 @@ def _uai_to_dict(text: str) -> dict:
             try:
                 x = float(tok)
             except ValueError:
-                raise ModelError(f"line {vline}: table entry {tok!r} of function {fi} is not a number",
+                raise ModelError(f"line {vline}: table entry {tok[:40]!r} of function {fi} is not a number",
                                  field=f"line {vline}") from None
             if not math.isfinite(x) or x <= 0:
                 raise ModelError(
-                    f"line {vline}: table entry {tok} of function {fi} must be finite and positive",
+                    f"line {vline}: table entry {tok[:40]} of function {fi} must be finite and positive",
                     field=f"line {vline}",
                 )
             raw.append(x)
@@ -507,18 +660,22 @@ def _uai_to_dict(text: str) -> dict:
             ours = sum(((u >> (k - 1 - j)) & 1) << j for j in range(k))
             values[ours] = x
         factors.append({"scope": [names[v] for v in scope], "values": values})
-    if pos != len(tokens):
-        tok, line = tokens[pos]
-        raise ModelError(f"line {line}: unexpected extra content {tok!r} after the last table", field=f"line {line}")
-    # The cliques are the function scopes (sub-scopes of a larger scope add no structure).
+    extra = next(tokens, None)
+    if extra is not None:
+        tok, line = extra
+        raise ModelError(f"line {line}: unexpected extra content {tok[:40]!r} after the last table",
+                         field=f"line {line}")
+    # The cliques are the function scopes (sub-scopes of a larger scope add no structure);
+    # a scope is dropped when it repeats an earlier one or lies inside another.
+    sets = [frozenset(sc) for sc in scopes]
+    index = _by_variable(list(dict.fromkeys(sets)))
     cliques: list[list[str]] = []
-    sets = [set(s) for s in scopes]
-    for i, s in enumerate(scopes):
-        if any(i != j and sets[i] < sets[j] for j in range(len(scopes))):
+    seen_sets: set[frozenset] = set()
+    for sc, st in zip(scopes, sets):
+        if st in seen_sets or _inside_some(st, index, proper=True):
             continue
-        if any(sets[i] == sets[j] for j in range(i)):
-            continue
-        cliques.append([names[v] for v in s])
+        seen_sets.add(st)
+        cliques.append([names[v] for v in sc])
     return {"variables": names, "cliques": cliques, "factors": factors}
 
 
@@ -540,27 +697,95 @@ def to_uai(model: Model) -> str:
 # --------------------------------------------------------------------------- node-link
 
 
-def _nodelink_to_dict(obj: Mapping[str, Any]) -> dict:
+def maximal_cliques(adjacency: list[int], *, max_cliques: int, max_steps: int, field: str = "links") -> list[list[int]]:
+    """The maximal cliques of a graph on vertices ``0..n-1`` (``adjacency[v]``: a bit mask of v's
+    neighbours), by Bron–Kerbosch with Tomita's pivot (the choice networkx.find_cliques makes),
+    counted as it goes: more than ``max_cliques`` cliques or ``max_steps`` expansions raise a
+    :class:`CapacityError` naming the cap, so a graph with exponentially many cliques
+    (3^(n/3) for n/3 disjoint triples' complement) costs at most the budget.
+
+    >>> maximal_cliques([0b110, 0b101, 0b011, 0b0000], max_cliques=10, max_steps=100)
+    [[0, 1, 2], [3]]
+    """
+    n = len(adjacency)
+    out: list[list[int]] = []
+    if n == 0:
+        return out
+    stack: list[tuple[tuple[int, ...], int, int]] = [((), (1 << n) - 1, 0)]
+    steps = 0
+    while stack:
+        r, p, x = stack.pop()
+        steps += 1
+        if steps > max_steps:
+            raise CapacityError(f"the graph's clique enumeration took more than {max_steps} steps, the cap "
+                                "max_clique_steps; the graph has too many maximal cliques to be a model "
+                                "(use fewer links or a JSON model with explicit cliques)", field=field)
+        if not p:
+            if not x:
+                out.append(sorted(r))
+                if len(out) > max_cliques:
+                    raise CapacityError(f"the graph has more than {max_cliques} maximal cliques, the cap "
+                                        "max_cliques on cliques; use fewer links or a JSON model with explicit "
+                                        "cliques", field=field)
+            continue
+        px = p | x
+        pivot, best = -1, -1
+        while px:
+            low = px & -px
+            u = low.bit_length() - 1
+            px ^= low
+            c = (p & adjacency[u]).bit_count()
+            if c > best:
+                pivot, best = u, c
+        cand = p & ~adjacency[pivot]
+        children = []
+        while cand:
+            low = cand & -cand
+            v = low.bit_length() - 1
+            cand ^= low
+            children.append((r + (v,), p & adjacency[v], x & adjacency[v]))
+            p &= ~low
+            x |= low
+        stack.extend(reversed(children))
+    return sorted(out)
+
+
+def _nodelink_to_dict(obj: Mapping[str, Any], limits: Limits | None = None) -> dict:
     import networkx as nx
 
+    limits = limits or Limits()
     if not isinstance(obj, Mapping) or not isinstance(obj.get("nodes"), list):
         raise ModelError("a node-link graph needs a 'nodes' list", field="nodes")
     key = "links" if "links" in obj else "edges"
+    if len(obj["nodes"]) > limits.max_variables:
+        raise CapacityError(f"the graph has {len(obj['nodes'])} nodes, more than the cap of {limits.max_variables} "
+                            "on variables (one variable per node)", field="nodes")
+    if not isinstance(obj.get(key), list):
+        raise ModelError(f"a node-link graph needs a '{key}' list", field=key)
+    if len(obj[key]) > limits.max_links:
+        raise CapacityError(f"the graph has {len(obj[key])} {key}, more than the cap of {limits.max_links} "
+                            f"on {key}", field=key)
     try:
         g = nx.node_link_graph(dict(obj), edges=key)
-    except (KeyError, TypeError, nx.NetworkXError) as exc:
-        raise ModelError(f"not a valid node-link graph: {exc}; each node needs an 'id', each link a "
+    except (KeyError, TypeError, ValueError, AttributeError, nx.NetworkXError) as exc:
+        raise ModelError(f"not a valid node-link graph: {str(exc)[:200]}; each node needs an 'id', each link a "
                          f"'source' and a 'target'", field=key) from None
+    if g.number_of_nodes() > limits.max_variables:  # links may name nodes that are not listed
+        raise CapacityError(f"the graph's links name {g.number_of_nodes()} nodes, more than the cap of "
+                            f"{limits.max_variables} on variables", field=key)
     if g.is_directed() or g.is_multigraph():
         g = nx.Graph(g)
     names = [str(v) for v in g.nodes]
     if len(set(names)) != len(names):
         raise ModelError("node ids collide once turned into names", field="nodes")
     order = {v: i for i, v in enumerate(g.nodes)}
-    g.remove_edges_from(nx.selfloop_edges(g))
-    cliques = sorted((sorted(c, key=order.__getitem__) for c in nx.find_cliques(g)),
-                     key=lambda c: [order[v] for v in c])
-    out: dict[str, Any] = {"variables": names, "cliques": [[str(v) for v in c] for c in cliques]}
+    adjacency = [0] * len(names)
+    for a, b in g.edges:
+        if a != b:
+            adjacency[order[a]] |= 1 << order[b]
+            adjacency[order[b]] |= 1 << order[a]
+    cliques = maximal_cliques(adjacency, max_cliques=limits.max_cliques, max_steps=limits.max_clique_steps, field=key)
+    out: dict[str, Any] = {"variables": names, "cliques": [[names[i] for i in c] for c in cliques]}
     gname = obj.get("graph", {}).get("name") if isinstance(obj.get("graph"), Mapping) else None
     if gname:
         out["name"] = str(gname)

@@ -237,6 +237,10 @@ def _required(t: Mapping[str, Any], table: str, key: str) -> float:
     return _number(t[key], f"{table}.{key}")
 
 
+#: the most entries of a profile's [[qubit]] or [[edge]] table, and the largest qubit index in one
+MAX_OVERRIDES = 4096
+MAX_OVERRIDE_QUBIT = 9999
+
 _KNOWN_TOP = {"name", "description", "intended_connectivity", "gates", "readout", "coherence",
               "qubit", "edge", "noise_scale"}
 
@@ -250,14 +254,25 @@ def parse_profile(d: Mapping[str, Any], *, noise_scale: float | None = None, nam
         raise ProfileError(f"{unknown[0]}: unknown profile key (known: {', '.join(sorted(_KNOWN_TOP))})",
                            field=unknown[0])
     gates, readout, coh = _table(d, "gates"), _table(d, "readout"), _table(d, "coherence")
+    for key in ("qubit", "edge"):  # the override tables, counted before they are walked
+        entries = d.get(key)
+        if entries is None:
+            continue
+        if not isinstance(entries, (list, tuple)):
+            raise ProfileError(f"{key}: expected a list of override tables ([[{key}]] in TOML), got "
+                               f"{type(entries).__name__}", field=key)
+        if len(entries) > MAX_OVERRIDES:
+            raise ProfileError(f"{key}: {len(entries)} overrides is over the cap of {MAX_OVERRIDES} per table",
+                               field=key)
     qov: list[tuple[int, tuple[tuple[str, float], ...]]] = []
     for k, entry in enumerate(d.get("qubit") or ()):
         where = f"qubit[{k}]"
         if not isinstance(entry, Mapping) or "index" not in entry:
             raise ProfileError(f"{where}: an override needs 'index'", field=where)
         idx = entry["index"]
-        if isinstance(idx, bool) or not isinstance(idx, int) or idx < 0:
-            raise ProfileError(f"{where}.index: expected a non-negative integer, got {idx!r}", field=f"{where}.index")
+        if isinstance(idx, bool) or not isinstance(idx, int) or idx < 0 or idx > MAX_OVERRIDE_QUBIT:
+            raise ProfileError(f"{where}.index: expected an integer from 0 to {MAX_OVERRIDE_QUBIT}, got {idx!r}",
+                               field=f"{where}.index")
         items = []
         for key, val in entry.items():
             if key == "index":
@@ -272,7 +287,8 @@ def parse_profile(d: Mapping[str, Any], *, noise_scale: float | None = None, nam
         where = f"edge[{k}]"
         pair = entry.get("qubits") if isinstance(entry, Mapping) else None
         if (not isinstance(pair, (list, tuple)) or len(pair) != 2
-                or not all(isinstance(x, int) and not isinstance(x, bool) and x >= 0 for x in pair)
+                or not all(isinstance(x, int) and not isinstance(x, bool) and 0 <= x <= MAX_OVERRIDE_QUBIT
+                           for x in pair)
                 or pair[0] == pair[1]):
             raise ProfileError(f"{where}.qubits: expected two distinct non-negative integers, got {pair!r}",
                                field=f"{where}.qubits")

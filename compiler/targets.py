@@ -49,6 +49,7 @@ __all__ = [
     "Connectivity",
     "GateSet",
     "make_connectivity",
+    "check_edge_list",
     "parse_connectivity",
     "get_gate_set",
     "build_target",
@@ -170,8 +171,48 @@ def read_edge_list(path: str | Path) -> list[tuple[int, int]]:
     return parse_edge_list(text, str(p))
 
 
+#: the most edges and the largest qubit index of a custom coupling graph (checked as read)
+MAX_CUSTOM_EDGES = 20000
+MAX_CUSTOM_QUBIT = 9999
+
+
+def check_edge_list(edges: Sequence[Sequence[int]], where: str = "edges") -> list[tuple[int, int]]:
+    """A custom coupling graph's edges as given, refused (naming the edge) when an edge is a
+    self-loop, repeats an earlier edge (in either direction), or names a qubit past
+    :data:`MAX_CUSTOM_QUBIT`; at most :data:`MAX_CUSTOM_EDGES` edges.
+
+    >>> check_edge_list([[0, 1], [1, 0]])
+    Traceback (most recent call last):
+    ...
+    toposcout.compiler.errors.TargetError: edges[1]: the edge [1, 0] repeats edges[0] (an edge is undirected); list each coupler once
+    """
+    if len(edges) > MAX_CUSTOM_EDGES:
+        raise TargetError(f"{where}: {len(edges)} edges is over the cap of {MAX_CUSTOM_EDGES} edges of a custom "
+                          "coupling graph", field=where)
+    first: dict[tuple[int, int], int] = {}
+    out = []
+    for k, pair in enumerate(edges):
+        if len(pair) != 2:
+            raise TargetError(f"{where}[{k}]: an edge is two qubit indices [a, b]", field=f"{where}[{k}]")
+        a, b = (int(x) for x in pair)
+        if a < 0 or b < 0 or a > MAX_CUSTOM_QUBIT or b > MAX_CUSTOM_QUBIT:
+            raise TargetError(f"{where}[{k}]: qubit indices must be from 0 to {MAX_CUSTOM_QUBIT}, got [{a}, {b}]",
+                              field=f"{where}[{k}]")
+        if a == b:
+            raise TargetError(f"{where}[{k}]: the edge [{a}, {b}] joins qubit {a} to itself; a coupler joins two "
+                              "different qubits", field=f"{where}[{k}]")
+        key = (min(a, b), max(a, b))
+        if key in first:
+            raise TargetError(f"{where}[{k}]: the edge [{a}, {b}] repeats {where}[{first[key]}] (an edge is "
+                              "undirected); list each coupler once", field=f"{where}[{k}]")
+        first[key] = k
+        out.append((a, b))
+    return out
+
+
 def parse_edge_list(text: str, where: str = "edge list") -> list[tuple[int, int]]:
     edges = []
+    first: dict[tuple[int, int], int] = {}
     for lineno, line in enumerate(text.splitlines(), start=1):
         line = line.split("#", 1)[0].strip()
         if not line:
@@ -183,7 +224,17 @@ def parse_edge_list(text: str, where: str = "edge list") -> list[tuple[int, int]
         a, b = int(parts[0]), int(parts[1])
         if a == b:
             raise TargetError(f"{where} line {lineno}: an edge from qubit {a} to itself", field=f"line {lineno}")
+        if len(parts[0]) > 6 or len(parts[1]) > 6 or max(a, b) > MAX_CUSTOM_QUBIT:
+            raise TargetError(f"{where} line {lineno}: qubit indices must be from 0 to {MAX_CUSTOM_QUBIT}",
+                              field=f"line {lineno}")
+        key = (min(a, b), max(a, b))
+        if key in first:
+            raise TargetError(f"{where} line {lineno}: the edge {a} {b} repeats line {first[key]} (an edge is "
+                              "undirected); list each coupler once", field=f"line {lineno}")
+        first[key] = lineno
         edges.append((a, b))
+        if len(edges) > MAX_CUSTOM_EDGES:
+            raise TargetError(f"{where}: more than the cap of {MAX_CUSTOM_EDGES} edges", field=f"line {lineno}")
     if not edges:
         raise TargetError(f"{where} has no edges", field="connectivity")
     return edges
@@ -257,7 +308,7 @@ def make_connectivity(
     else:  # custom
         if edges is None:
             raise TargetError("a custom connectivity needs an edge list (custom:FILE)", field="connectivity")
-        e = _undirected(tuple(int(x) for x in pair) for pair in edges)
+        e = _undirected(check_edge_list(edges))
         q = max(max(p) for p in e) + 1
         g = nx.Graph(e)
         g.add_nodes_from(range(q))

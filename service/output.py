@@ -11,7 +11,7 @@ from typing import IO, Any
 
 from toposcout.compiler.rows import FIELDS, TABLE_COLUMNS, csv_columns
 
-__all__ = ["CAUTION", "CLIFFORD_NOTE", "rows_table", "write_csv", "write_json", "sort_rows"]
+__all__ = ["CAUTION", "CLIFFORD_NOTE", "rows_table", "write_csv", "write_json", "neutralise_cell", "sort_rows"]
 
 CAUTION = "Figures are a simulation under the stated noise model, not a promise about a device."
 #: shown under a table with clifford figures (the label of toposcout.compiler.clifford, shortened).
@@ -107,12 +107,31 @@ def _flatten(row: dict) -> dict:
     return out
 
 
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutralise_cell(value: Any) -> Any:
+    """A CSV cell that a spreadsheet will not run as a formula: a *string* beginning with
+    = + - @, a tab or a carriage return gets a leading single quote (OWASP, "CSV Injection":
+    prefix such cells with '). Numbers are left as they are, so -0.5 stays a number.
+
+    >>> neutralise_cell("=HYPERLINK(1)"), neutralise_cell("-x"), neutralise_cell(-0.5), neutralise_cell("line-4")
+    ("'=HYPERLINK(1)", "'-x", -0.5, 'line-4')
+    """
+    if isinstance(value, str) and value.startswith(_FORMULA_START):
+        return "'" + value
+    return value
+
+
 def write_csv(rows: list[dict], fh) -> None:
-    """One column per field in the row definition's order (fields it does not know go last)."""
-    w = csv.DictWriter(fh, fieldnames=csv_columns(rows))
-    w.writeheader()
+    """One column per field in the row definition's order (fields it does not know go last);
+    every text cell goes through :func:`neutralise_cell` (names and messages can come from a client)."""
+    columns = csv_columns(rows)
+    w = csv.writer(fh)
+    w.writerow([neutralise_cell(c) for c in columns])
     for r in rows:
-        w.writerow(_flatten(r))
+        flat = _flatten(r)
+        w.writerow([neutralise_cell(flat.get(c, "")) for c in columns])
 
 
 def _sort_key(r: dict):

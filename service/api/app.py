@@ -107,6 +107,26 @@ class _App(FastAPI):
         return _DeclaredSizeLimit(super().build_middleware_stack(), self.max_body_size)
 
 
+def _freeze_startup_heap() -> None:
+    """Load what the request path imports lazily, then move every object alive now out of the
+    collector's reach (``gc.freeze``): a full collection, which stops every thread and the event
+    loop with it, then walks only what requests allocated, not the few hundred thousand objects of
+    qiskit, SQLAlchemy and friends (measured: a full collection under load went from ~0.6-0.9 s to
+    ~10 ms; /healthz stops stalling while large requests are parsed)."""
+    import gc
+    import importlib
+
+    import jsonschema  # model validation
+
+    from toposcout.compiler.model import model_schema
+
+    importlib.import_module("networkx")  # node-link models, connectivities
+
+    jsonschema.Draft202012Validator(model_schema())
+    gc.collect()
+    gc.freeze()
+
+
 @asynccontextmanager
 async def _lifespan(app: FastAPI):
     settings: Settings = app.state.settings
@@ -116,6 +136,7 @@ async def _lifespan(app: FastAPI):
     lane = ProcessLane(time_limit=settings.compile_time_limit_seconds)
     lane.start()
     app.state.store, app.state.lane = store, lane
+    _freeze_startup_heap()
     try:
         yield
     finally:

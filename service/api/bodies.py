@@ -4,9 +4,11 @@ validated against the request schema before any work starts."""
 from __future__ import annotations
 
 import json
+import threading
 
 from fastapi import Request
 from pydantic import ValidationError
+from starlette.concurrency import run_in_threadpool
 from starlette.exceptions import HTTPException
 
 from toposcout.compiler.errors import ToposcoutError
@@ -40,7 +42,24 @@ def _reject_constant(token: str):
     raise ValueError(f"{token} is not a number in JSON; give a finite value")
 
 
+#: the most objects and arrays a JSON body may hold (counted on the raw bytes before decoding: each
+#: costs ~100 bytes once decoded, so a 4 MiB body of ``{}`` would otherwise become ~160 MB of dicts);
+#: a node-link graph at its link cap holds about 20000
+MAX_JSON_CONTAINERS = 100_000
+#: bodies decoded at once (each in a thread of the API's pool): bounds the memory of a flood
+_decoding = threading.BoundedSemaphore(2)
+
+
 def parse_json(body: bytes) -> dict:
+    containers = body.count(b"{") + body.count(b"[")
+    if containers > MAX_JSON_CONTAINERS:
+        raise ToposcoutError(f"body: the JSON holds {containers} objects and arrays (nested or side by side), more "
+                             f"than the cap of {MAX_JSON_CONTAINERS}", field="body")
+    with _decoding:
+        return _parse_json(body)
+
+
+def _parse_json(body: bytes) -> dict:
     try:
         text = body.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -74,7 +93,8 @@ def validate_request(data: dict) -> S.StudyRequest:
 async def read_request(request: Request, settings: Settings) -> tuple[dict, str | None]:
     ctype = request.headers.get("content-type", "").split(";")[0].strip().lower()
     if ctype == "application/json" or ctype.endswith("+json"):
-        return parse_json(await request.body()), None
+        # decoding up to max_body_bytes of JSON takes tens of ms: off the event loop, so /healthz stays fast
+        return await run_in_threadpool(parse_json, await request.body()), None
     if ctype != "multipart/form-data":
         raise HTTPException(415, "Content-Type must be application/json or multipart/form-data")
     try:
@@ -82,7 +102,8 @@ async def read_request(request: Request, settings: Settings) -> tuple[dict, str 
     except HTTPException as exc:
         if exc.status_code == 413:
             raise
-        raise ToposcoutError(f"body: malformed multipart form ({exc.detail})", field="body") from None
+        where = "file" if "files" in str(exc.detail) else "body"  # "Too many files": the file field
+        raise ToposcoutError(f"{where}: malformed multipart form ({exc.detail})", field=where) from None
     try:
         fields: dict[str, list[str]] = {}
         upload = None

@@ -61,11 +61,15 @@ def validation_detail(errors: list[dict], *, strip_source: bool) -> tuple[str, s
     # valid string"; the other branch's error says what is really wrong
     e = ([x for x in errors if not str(x.get("type", "")).endswith("_type")] or errors)[0]
     loc = tuple(e.get("loc", ()))
+    header = loc[1] if len(loc) > 1 and loc[0] == "header" and isinstance(loc[1], str) else None
     if strip_source and loc and loc[0] in ("body", "query", "path", "header", "cookie"):
         loc = loc[1:]
-    field = _loc(loc)
+    field = header or _loc(loc)  # a header is named as sent (Idempotency-Key), not folded into "body"
     msg = e.get("msg", "invalid value")
     value = e.get("input")
+    if header and isinstance(value, str) and len(value) > 60:
+        msg += f" (got {len(value)} characters)"
+        value = ...
     if isinstance(value, (str, int, float, bool)) or value is None:
         got = repr(value)
         msg += f" (got {got[:60]}{'...' if len(got) > 60 else ''})"
@@ -96,7 +100,9 @@ def install_error_handlers(app: FastAPI, max_body_bytes: int) -> None:
             return error(413, f"body: the request body is over this server's limit of {max_body_bytes} "
                               "bytes (max_body_bytes)", "body")
         detail = exc.detail if isinstance(exc.detail, str) else json.dumps(exc.detail)
-        return error(exc.status_code, detail, None, getattr(exc, "headers", None))
+        # the header a 401 or 415 is about is the field (the message starts with its name)
+        field = next((h for h in ("Authorization", "Content-Type") if detail.startswith(h)), None)
+        return error(exc.status_code, detail, field, getattr(exc, "headers", None))
 
     @app.exception_handler(Exception)
     async def _unexpected(request: Request, exc: Exception):

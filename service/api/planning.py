@@ -9,15 +9,17 @@ in the message), connectivity size, targets, noise scales.
 
 from __future__ import annotations
 
+import json
 import math
 import re
+import threading
 from dataclasses import dataclass
 from typing import Any, Mapping
 
 from toposcout.compiler.errors import CapacityError, ModelError, ProfileError, TargetError
 from toposcout.compiler.model import Limits, Model, parse_model
 from toposcout.compiler.study import make_tasks, task_key
-from toposcout.compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, heavy_hex_qubits
+from toposcout.compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, check_edge_list, heavy_hex_qubits
 
 from toposcout.service.api.schemas import CONNECTIVITY_PATTERN, ConnectivitySpec, StudyRequest
 
@@ -85,6 +87,7 @@ def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables:
             raise TargetError(f"{where}.edges: a custom connectivity needs a non-empty edge list", field=f"{where}.edges")
         if any(a < 0 or b < 0 for a, b in d["edges"]):
             raise TargetError(f"{where}.edges: qubit indices must be >= 0", field=f"{where}.edges")
+        check_edge_list(d["edges"], f"{where}.edges")  # self-loops, repeated edges: named
         d["size"] = None
     elif d["edges"] is not None:
         raise TargetError(f"{where}.edges: only a custom connectivity takes edges", field=f"{where}.edges")
@@ -105,7 +108,11 @@ def _profile(profile: str | dict | None) -> str | dict | None:
             raise ProfileError(f"profile: unknown profile {profile[:60]!r}; built-in profiles: "
                                f"{', '.join(PROFILE_NAMES)} (or send a profile object)", field="profile")
         return profile
-    return load_profile(dict(profile)).to_dict()
+    try:
+        return load_profile(dict(profile)).to_dict()
+    except ProfileError as exc:  # name the request field: profile.<where in the profile>
+        where = f"profile.{exc.field}" if exc.field and exc.field != "profile" else "profile"
+        raise ProfileError(f"profile: {exc}", field=where) from None
 
 
 def _device(req: StudyRequest, settings, num_variables: int):
@@ -140,12 +147,49 @@ def model_order(model: Model) -> int:
     return min(largest, model.max_order) if model.max_order else largest
 
 
-def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile_only: bool | None = None,
-            max_targets: int | None = None, keep_circuit: bool = True) -> Prepared:
-    """Validate ``req`` against the server's caps and build its tasks (raises ToposcoutError)."""
+#: the most bytes of model JSON all the tasks of one study may carry (tasks x model size)
+MAX_STUDY_MODEL_BYTES = 8 * 2**20
+
+#: at most this many requests are parsed and prepared at once (each in a thread of the API's pool):
+#: every step is bounded by a counted cap, and this bounds how many of them share the GIL with the
+#: event loop, so a flood of large requests cannot slow /healthz and the reads
+PREPARE_CONCURRENCY = 2
+_preparing = threading.BoundedSemaphore(PREPARE_CONCURRENCY)
+
+
+def _study_size(n_tasks: int, model_bytes: int) -> None:
+    if n_tasks * model_bytes > MAX_STUDY_MODEL_BYTES:
+        raise CapacityError(f"model: {n_tasks} tasks (connectivities x noise_scales) each carrying this "
+                            f"{model_bytes}-byte model make {n_tasks * model_bytes} bytes, over the cap of "
+                            f"{MAX_STUDY_MODEL_BYTES}; send fewer targets or noise scales, or a smaller model",
+                            field="model")
+
+
+def _check_study_size(req: StudyRequest, compile_only: bool | None) -> None:
+    """The tasks x model-size cap estimated from the request as sent (the model's compact JSON,
+    or its text), so an oversized study is refused before its model is parsed."""
+    from toposcout.compiler.targets import BUILTIN_FAMILIES
+
+    only = req.compile_only if compile_only is None else compile_only
+    n_tasks = (len(req.connectivities) if req.connectivities is not None else len(BUILTIN_FAMILIES)) * (
+        1 if only else len(req.noise_scales))
+    raw = req.model if isinstance(req.model, str) else json.dumps(req.model, separators=(",", ":"))
+    _study_size(n_tasks, len(raw))
+
+
+def prepare(req: StudyRequest, settings, **kwargs: Any) -> Prepared:
+    """Validate ``req`` against the server's caps and build its tasks (raises ToposcoutError);
+    at most :data:`PREPARE_CONCURRENCY` at a time (see :func:`_prepare` for the keywords)."""
+    with _preparing:
+        return _prepare(req, settings, **kwargs)
+
+
+def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compile_only: bool | None = None,
+             max_targets: int | None = None, keep_circuit: bool = True) -> Prepared:
     limits = Limits(max_variables=settings.max_variables)
     if isinstance(req.model, str) and not req.model.strip():
         raise ModelError("model: the model text is empty", field="model")
+    _check_study_size(req, compile_only)  # an estimate before the parse; exact after it
     try:
         model = parse_model(req.model, req.model_format, limits=limits, filename=filename)
     except (ModelError, CapacityError) as exc:
@@ -200,6 +244,8 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
         if not math.isfinite(s) or s < 0 or s > 1000:
             raise ModelError(f"noise_scales[{i}]: {s!r} must be a finite number from 0 to 1000",
                              field=f"noise_scales[{i}]")
+    # every task carries the model (its key hashes it, the store keeps it): bound tasks x model size
+    _study_size(len(specs) * len(scales), len(json.dumps(model.to_dict(), separators=(",", ":"))))
     profile = None if compile_only else _profile(req.profile)
     options: dict[str, Any] = dict(gate_set=req.gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
                                    layers=req.layers, seed=req.seed, compile_only=compile_only, profile=profile,

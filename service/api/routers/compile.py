@@ -26,12 +26,12 @@ async def compile_now(request: Request, owner: Owner, settings: SettingsDep, sto
     ctype = request.headers.get("content-type", "").split(";")[0].strip().lower()
     if ctype != "application/json":
         raise HTTPException(415, "Content-Type must be application/json")
-    data = parse_json(await request.body())
-    return await run_in_threadpool(_compile, data, settings, store, request.app.state.lane)
+    body = await request.body()
+    return await run_in_threadpool(_compile, body, settings, store, request.app.state.lane)
 
 
-def _compile(data: dict, settings, store, lane) -> JSONResponse:
-    req = validate_request(data)
+def _compile(body: bytes, settings, store, lane) -> JSONResponse:
+    req = validate_request(parse_json(body))  # decoded here, off the event loop
     prep = prepare(req, settings, compile_only=True, max_targets=settings.max_compile_targets, keep_circuit=False)
     rows: list[dict | None] = [store.cached_row(k) for k in prep.keys]
     cached = [r is not None for r in rows]

@@ -1,0 +1,150 @@
+"""The two explosive requests of issue 16 against a live server: answer time and the API
+process's memory growth (RSS, sampled every 10 ms while the request is in flight), and /healthz
+latency while they are refused.
+
+  * a 46-byte UAI text that declares 1,000,000,000 variables,
+  * a 45-node node-link graph (every pair joined except within groups of three) with 3^15
+    maximal cliques.
+
+By default it starts its own ``toposcout serve`` on 127.0.0.1 (a free port, a temporary data
+folder, SQLite, one worker) and stops it afterwards.
+
+    .venv/bin/python benchmarks/bench_hostile.py                 # 5 rounds of each request
+    .venv/bin/python benchmarks/bench_hostile.py --rounds 20
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import signal
+import socket
+import statistics
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import httpx
+import psutil
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from tests.hostile_cases import EXPLOSIVE  # noqa: E402  (the suite's own data: one definition)
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def start_server(folder: Path) -> tuple[subprocess.Popen, str]:
+    port = _free_port()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("TOPOSCOUT_")}
+    env.update(TOPOSCOUT_DATA_DIR=str(folder), TOPOSCOUT_WORKERS="1")
+    log = open(folder / "server.log", "wb")
+    proc = subprocess.Popen([sys.executable, "-m", "toposcout.service.cli", "serve", "--port", str(port)],
+                            env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
+    url = f"http://127.0.0.1:{port}"
+    end = time.monotonic() + 90
+    while time.monotonic() < end:
+        if proc.poll() is not None:
+            raise SystemExit(f"the server exited: {(folder / 'server.log').read_text()[-2000:]}")
+        try:
+            if httpx.get(url + "/healthz", timeout=2).status_code == 200:
+                return proc, url
+        except httpx.HTTPError:
+            time.sleep(0.1)
+    proc.kill()
+    raise SystemExit("the server did not answer within 90 s")
+
+
+def one(client: httpx.Client, proc: psutil.Process, body: dict) -> dict:
+    """Send ``body``; the answer's status, seconds, and the peak RSS growth while in flight."""
+    base = proc.memory_info().rss
+    peak = [base]
+    done = threading.Event()
+
+    def sample():
+        while not done.is_set():
+            peak[0] = max(peak[0], proc.memory_info().rss)
+            time.sleep(0.01)
+
+    t = threading.Thread(target=sample)
+    t.start()
+    t0 = time.perf_counter()
+    r = client.post("/v1/studies", json=body)
+    elapsed = time.perf_counter() - t0
+    done.set()
+    t.join()
+    peak[0] = max(peak[0], proc.memory_info().rss)
+    return {"status": r.status_code, "field": r.json().get("field"), "seconds": elapsed,
+            "rss_growth_mb": (peak[0] - base) / 2**20}
+
+
+def healthz_during(url: str, body: dict, probes: int = 40) -> list[float]:
+    stop = threading.Event()
+
+    def hammer():
+        with httpx.Client(base_url=url, timeout=120) as c:
+            while not stop.is_set():
+                c.post("/v1/studies", json=body)
+
+    threads = [threading.Thread(target=hammer) for _ in range(2)]
+    for t in threads:
+        t.start()
+    time.sleep(0.2)
+    lat = []
+    with httpx.Client(base_url=url, timeout=10) as c:
+        for _ in range(probes):
+            t0 = time.perf_counter()
+            c.get("/healthz")
+            lat.append(time.perf_counter() - t0)
+            time.sleep(0.02)
+    stop.set()
+    for t in threads:
+        t.join()
+    return lat
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--rounds", type=int, default=5, help="times each request is sent (default 5)")
+    args = p.parse_args(argv)
+    folder = Path(tempfile.mkdtemp(prefix="toposcout-hostile-"))
+    server, url = start_server(folder)
+    try:
+        proc = psutil.Process(server.pid)
+        rss0 = proc.memory_info().rss
+        print(f"toposcout hostile benchmark: {url}, API process RSS at start {rss0 / 2**20:.0f} MiB")
+        for name, model in EXPLOSIVE.items():
+            body = {"model": model, "compile_only": True, "connectivities": ["line"]}
+            size = len(model) if isinstance(model, str) else len(json.dumps(model))
+            with httpx.Client(base_url=url, timeout=120) as client:
+                runs = [one(client, proc, body) for _ in range(args.rounds + 1)]
+            cold, runs = runs[0], runs[1:]  # the first request of a kind pays the lazy imports
+            secs = [r["seconds"] for r in runs]
+            lat = healthz_during(url, body)
+            print(f"{name:<32} model {size:>6} bytes  -> {runs[0]['status']} field {runs[0]['field']!r}  "
+                  f"answer first {cold['seconds'] * 1000:6.1f} ms, then median {statistics.median(secs) * 1000:6.1f} ms  "
+                  f"max {max(secs) * 1000:6.1f} ms  "
+                  f"RSS growth max {max(r['rss_growth_mb'] for r in [cold, *runs]):5.1f} MiB  "
+                  f"/healthz meanwhile median {statistics.median(lat) * 1000:5.1f} ms  max {max(lat) * 1000:5.1f} ms")
+        print(f"API process RSS at the end {proc.memory_info().rss / 2**20:.0f} MiB "
+              f"(growth {(proc.memory_info().rss - rss0) / 2**20:.1f} MiB)")
+    finally:
+        os.killpg(server.pid, signal.SIGINT)  # the server and its workers (its own process group)
+        try:
+            server.wait(20)
+        except subprocess.TimeoutExpired:
+            os.killpg(server.pid, signal.SIGKILL)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
