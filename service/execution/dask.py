@@ -122,7 +122,8 @@ def executing_keys(dask_worker) -> list[str]:
 
 
 @dataclass
-class _Item:
+class _DaskTask:
+    """A task submitted to the Dask cluster, with its future, attempts and timing."""
     study_id: str
     task_index: int
     task: dict
@@ -179,8 +180,8 @@ class DaskExecutor(Executor):
         self.time_limit = float(limit) if limit else None
         self._watcher: threading.Thread | None = None
         self._lock = threading.Condition()
-        self._backlog: collections.deque[_Item] = collections.deque()
-        self._running: dict[str, _Item] = {}          # key -> item on the cluster
+        self._backlog: collections.deque[_DaskTask] = collections.deque()
+        self._running: dict[str, _DaskTask] = {}          # key -> item on the cluster
         self._done: queue.SimpleQueue = queue.SimpleQueue()
         self._recorded: set[tuple[str, int]] = set()
         self._queued: set[tuple[str, int]] = set()    # (study, index) in backlog or on the cluster
@@ -237,7 +238,7 @@ class DaskExecutor(Executor):
                 if k in self._queued or k in self._recorded:
                     continue
                 self._queued.add(k)
-                self._backlog.append(_Item(study_id, int(index), dict(task), keys.get(int(index))))
+                self._backlog.append(_DaskTask(study_id, int(index), dict(task), keys.get(int(index))))
             self._lock.notify_all()
 
     def cancel(self, study_id: str) -> None:
@@ -370,7 +371,7 @@ class DaskExecutor(Executor):
             return
         running = self.client.run(executing_keys, workers=hosts, on_error="ignore")
         now = time.monotonic()
-        overdue: list[_Item] = []
+        overdue: list[_DaskTask] = []
         with self._lock:
             for addr, keys in (running or {}).items():
                 for k in keys if isinstance(keys, list) else ():
@@ -439,7 +440,7 @@ class DaskExecutor(Executor):
                     self._backlog.appendleft(item)
                 raise
 
-    def _from_cache(self, item: _Item) -> bool:
+    def _from_cache(self, item: _DaskTask) -> bool:
         """Record the row another study computed meanwhile (same task key) instead of running it."""
         if item.key is None or not hasattr(self.store, "cached_row"):
             return False
@@ -450,7 +451,7 @@ class DaskExecutor(Executor):
         self._record(item, row, cached=True)
         return True
 
-    def _send(self, item: _Item, task: dict) -> None:
+    def _send(self, item: _DaskTask, task: dict) -> None:
         key = task_key_for(item.study_id, item.task_index, item.attempt)
         item.submitted_at = time.monotonic()
         parts = self._parts(task)
@@ -493,7 +494,7 @@ class DaskExecutor(Executor):
                 continue
             self._finish(item)
 
-    def _finish(self, item: _Item) -> None:
+    def _finish(self, item: _DaskTask) -> None:
         fut = item.future
         status = fut.status
         if item.study_id in self._cancelled:
@@ -521,7 +522,7 @@ class DaskExecutor(Executor):
         fut.release()
         self._again(item, exc if exc is not None else RuntimeError(f"task {status} on the cluster"))
 
-    def _again(self, item: _Item, exc: BaseException) -> None:
+    def _again(self, item: _DaskTask, exc: BaseException) -> None:
         item.causes.append(f"{type(exc).__name__}: {exc}")
         if type(exc).__name__ == "KilledWorker":
             self.stats["worker_deaths"] += 1
@@ -537,7 +538,7 @@ class DaskExecutor(Executor):
         with self._lock:
             self._backlog.appendleft(item)
 
-    def _record(self, item: _Item, row: dict, *, cached: bool = False) -> None:
+    def _record(self, item: _DaskTask, row: dict, *, cached: bool = False) -> None:
         k = (item.study_id, item.task_index)
         with self._lock:
             if k in self._recorded:

@@ -124,12 +124,13 @@ class _Worker:
 
 
 @dataclass
-class _Item:
+class _QueuedTask:
+    """A task waiting for or running in a local worker process (identical tasks follow one)."""
     study_id: str
     task_index: int
     task: dict
     key: str
-    followers: list["_Item"] = field(default_factory=list)
+    followers: list["_QueuedTask"] = field(default_factory=list)
 
 
 class LocalExecutor(Executor):
@@ -143,9 +144,9 @@ class LocalExecutor(Executor):
         self.workers = int(workers or getattr(settings, "workers", 2))
         self.time_limit = float(time_limit or getattr(settings, "task_time_limit_seconds", 900.0))
         self._cv = threading.Condition()
-        self._queue: collections.deque[_Item] = collections.deque()
+        self._queue: collections.deque[_QueuedTask] = collections.deque()
         self._queued: set[tuple[str, int]] = set()
-        self._running: dict[str, _Item] = {}        # task key -> leader item being computed
+        self._running: dict[str, _QueuedTask] = {}        # task key -> leader item being computed
         self._cancelled: set[str] = set()
         self._stop = threading.Event()
         self._threads: list[threading.Thread] = []
@@ -171,7 +172,7 @@ class LocalExecutor(Executor):
                 if (study_id, i) in self._queued:
                     continue
                 self._queued.add((study_id, i))
-                self._queue.append(_Item(study_id, int(i), dict(task), keys.get(int(i)) or task_key(task)))
+                self._queue.append(_QueuedTask(study_id, int(i), dict(task), keys.get(int(i)) or task_key(task)))
             self._cv.notify_all()
 
     def cancel(self, study_id: str) -> None:
@@ -221,7 +222,7 @@ class LocalExecutor(Executor):
         return False
 
     # --- the slots ------------------------------------------------------------------
-    def _take(self) -> _Item | None:
+    def _take(self) -> _QueuedTask | None:
         with self._cv:
             while not self._stop.is_set():
                 while self._queue:
@@ -254,7 +255,7 @@ class LocalExecutor(Executor):
                 log.error("recording study %s row %s failed: %s", item.study_id, item.task_index, exc)
                 self._finish(item, None)
 
-    def _run_item(self, worker: _Worker, item: _Item) -> None:
+    def _run_item(self, worker: _Worker, item: _QueuedTask) -> None:
         cached = self.store.cached_row(item.key)
         if cached is not None:
             self.store.record_row(item.study_id, item.task_index, cached, cached.get("row_seconds"), cached=True)
@@ -289,11 +290,11 @@ class LocalExecutor(Executor):
         self.stats["computed"] += 1
         self._finish(item, row)
 
-    def _all_cancelled(self, item: _Item) -> bool:
+    def _all_cancelled(self, item: _QueuedTask) -> bool:
         with self._cv:
             return item.study_id in self._cancelled and all(f.study_id in self._cancelled for f in item.followers)
 
-    def _finish(self, item: _Item, row: dict | None, shared: bool = False) -> None:
+    def _finish(self, item: _QueuedTask, row: dict | None, shared: bool = False) -> None:
         with self._cv:
             self._running.pop(item.key, None)
             self._queued.discard((item.study_id, item.task_index))
