@@ -546,6 +546,17 @@ def _nodelink_to_dict(obj: Mapping[str, Any]) -> dict:
     if not isinstance(obj, Mapping) or not isinstance(obj.get("nodes"), list):
         raise ModelError("a node-link graph needs a 'nodes' list", field="nodes")
     key = "links" if "links" in obj else "edges"
+    # networkx adds a node for a link end it has not seen; a model's variables are its declared nodes
+    declared = {n.get("id") if isinstance(n, Mapping) else None for n in obj["nodes"]}
+    links = obj.get(key)
+    for i, link in enumerate(links if isinstance(links, list) else []):
+        if not isinstance(link, Mapping):
+            continue
+        for end in ("source", "target"):
+            v = link.get(end)
+            if end in link and _hashable(v) and v not in declared:
+                raise ModelError(f"{key}[{i}].{end}: node {v!r} is not declared in 'nodes'",
+                                 field=f"{key}[{i}].{end}")
     try:
         g = nx.node_link_graph(dict(obj), edges=key)
     except (KeyError, TypeError, nx.NetworkXError) as exc:
@@ -565,6 +576,14 @@ def _nodelink_to_dict(obj: Mapping[str, Any]) -> dict:
     if gname:
         out["name"] = str(gname)
     return out
+
+
+def _hashable(v: Any) -> bool:
+    try:
+        hash(v)
+    except TypeError:
+        return False
+    return True
 
 
 # --------------------------------------------------------------------------- distribution

@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 import time
 from collections import OrderedDict
 from typing import Any, Iterable, Mapping, Sequence
@@ -39,6 +38,7 @@ from toposcout.compiler.ansatz import FAMILIES, build_ansatz
 from toposcout.compiler.compile import STRATEGIES, compile_ansatz
 from toposcout.compiler.errors import CapacityError, ModelError, TargetError, ToposcoutError
 from toposcout.compiler.model import Limits, Model, parse_model
+from toposcout.compiler.options import LIMITS, requirement_target
 from toposcout.compiler.targets import BUILTIN_FAMILIES, make_connectivity, parse_edge_list, get_gate_set, read_edge_list
 from toposcout.compiler.version import __version__
 
@@ -124,13 +124,19 @@ def make_tasks(
     # check every combination before any expensive work starts
     probe = dict(TASK_DEFAULTS)
     probe.update(options)
+    if probe["fidelity_target"] is not None:  # a bad target is refused even where it would not be used
+        LIMITS["fidelity_target"].check(probe["fidelity_target"])
+    target = requirement_target(probe["fidelity_target"], scales, probe["compile_only"])
+    if target is not None or "fidelity_target" in options:
+        options["fidelity_target"] = probe["fidelity_target"] = target
     for s in scales:
         _check_options({**probe, "noise_scale": s})
     for spec in specs:
         make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"])
     get_gate_set(probe["gate_set"])
+    if probe["profile"] is not None or not probe["compile_only"]:
+        _profile(probe["profile"], 1.0)  # an unknown profile is refused with compile_only too
     if not probe["compile_only"]:
-        _profile(probe["profile"], 1.0)
         if probe["method"] == "density-matrix":
             from toposcout.compiler.simulate import capacity_message, default_memory_budget_bytes, estimate_memory_bytes
 
@@ -155,17 +161,15 @@ def _check_options(t: Mapping[str, Any]) -> None:
                          field="strategy")
     if t["family"] not in FAMILIES:
         raise ModelError(f"unknown family {t['family']!r}; choose one of {', '.join(FAMILIES)}", field="family")
-    for name in ("seeds", "layers"):
-        v = t[name]
-        if not isinstance(v, int) or isinstance(v, bool) or v < 1 or v > 64:
-            raise ModelError(f"{name} must be an integer from 1 to 64, got {v!r}", field=name)
+    for name in ("seeds", "layers", "seed"):
+        LIMITS[name].check(t[name])
+    if t.get("fidelity_target") is not None:
+        LIMITS["fidelity_target"].check(t["fidelity_target"])
     from toposcout.compiler.methods import check_method_options
 
     check_method_options(t["method"], precision=t["precision"], trajectories=t["trajectories"],
                          time_budget_seconds=t["time_budget_seconds"])
-    ns = t["noise_scale"]
-    if not isinstance(ns, (int, float)) or isinstance(ns, bool) or not math.isfinite(ns) or ns < 0:
-        raise ModelError(f"noise_scale must be a finite number >= 0, got {ns!r}", field="noise_scale")
+    LIMITS["noise_scale"].check(t["noise_scale"])
 
 
 def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:

@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any, Sequence
 
 from toposcout.compiler.errors import ToposcoutError
+from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
 from toposcout.compiler.targets import BUILTIN_FAMILIES, GATE_SETS
 from toposcout.service.output import CAUTION, rows_table, sort_rows, write_csv, write_json
 
@@ -43,16 +44,20 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--gate-set", default="cx", choices=GATE_SETS, help="native gate set (default cx)")
     c.add_argument("--strategy", default="auto", choices=("generic", "structured", "auto"),
                    help="compilation strategy (default auto: the better of generic and structured)")
-    c.add_argument("--seeds", type=int, default=5, help="transpiler seeds tried by generic (default 5)")
+    c.add_argument("--seeds", type=int, default=5,
+                   help=f"transpiler seeds tried by generic, {LIMITS['seeds'].describe()} (default 5)")
     c.add_argument("--family", default="clique", choices=("clique", "pairwise"), help="circuit family")
-    c.add_argument("--layers", type=int, default=1, help="repetitions of block + rotations (default 1)")
+    c.add_argument("--layers", type=int, default=1,
+                   help=f"repetitions of block + rotations, {LIMITS['layers'].describe()} (default 1)")
     c.add_argument("--seed", type=int, default=0, help="seed of the random angles (default 0)")
     c.add_argument("--max-order", type=int, help="keep only terms of at most this order")
     c.add_argument("--profile", help="device profile name or TOML file (default: the superconducting-like class)")
     c.add_argument("--noise-scale", type=float, action="append", metavar="X",
                    help="multiply every error rate by X; repeat for a sweep (default 1)")
     c.add_argument("--fidelity-target", type=float, default=None,
-                   help="with a sweep, find the largest 2q error reaching this state fidelity (default 0.5)")
+                   help="find the largest 2q error reaching this state fidelity, "
+                        f"{LIMITS['fidelity_target'].describe()} (default {DEFAULT_FIDELITY_TARGET} with a sweep "
+                        "of two or more noise scales, else none)")
     c.add_argument("--compile-only", action="store_true", help="skip the noise simulation")
     c.add_argument("--method", default="auto", metavar="METHOD",
                    help="how noise figures are computed: auto (default: density-matrix within the memory budget, "
@@ -161,15 +166,28 @@ def _compare(args, out, err) -> int:
     if args.memory_budget is not None:
         options["memory_budget_bytes"] = int(args.memory_budget * 2**30)
     scales = args.noise_scale or [1.0]
-    if len(scales) > 1 or args.fidelity_target is not None:
-        options["fidelity_target"] = 0.5 if args.fidelity_target is None else args.fidelity_target
+    if args.fidelity_target is not None:  # else make_tasks applies the one default (compiler.options)
+        options["fidelity_target"] = args.fidelity_target
     if args.profile and Path(args.profile).suffix == ".toml":
         from toposcout.compiler.profiles import load_profile
 
         options["profile"] = load_profile(args.profile).to_dict()
     if args.qasm_dir:
         options["keep_circuit"] = True  # the rows bring their compiled circuits for the files
-    tasks = make_tasks(model, args.connectivity, noise_scales=scales, **options)
+    try:
+        tasks = make_tasks(model, args.connectivity, noise_scales=scales, **options)
+    except ToposcoutError as exc:  # name the command-line option, not the task field
+        flag = _FLAGS.get(exc.field or "")
+        if flag is None:
+            raise
+        text = str(exc)
+        if text.startswith(f"{exc.field}: "):
+            text = f"{flag}: {text[len(exc.field) + 2:]}"
+        elif text.startswith(f"{exc.field} "):
+            text = flag + text[len(exc.field):]
+        else:
+            text = f"{flag}: {text}"
+        raise type(exc)(text, field=flag) from None
     show_progress = not args.json and hasattr(err, "isatty") and err.isatty()
     if args.server:
         from toposcout.service.client import Client
@@ -196,6 +214,13 @@ def _compare(args, out, err) -> int:
             out.write(CAUTION + "\n")
     failed = [r for r in rows if r.get("error")]
     return EXIT_FAILED_ROWS if failed and len(failed) == len(rows) else EXIT_OK
+
+
+#: task fields → the ``compare`` option that sets them (errors name the option the user typed)
+_FLAGS = {"seeds": "--seeds", "layers": "--layers", "seed": "--seed", "fidelity_target": "--fidelity-target",
+          "noise_scale": "--noise-scale", "profile": "--profile", "strategy": "--strategy", "family": "--family",
+          "gate_set": "--gate-set", "method": "--method", "precision": "--precision", "trajectories": "--trajectories",
+          "time_budget_seconds": "--time-budget", "connectivity": "--connectivity"}
 
 
 def _write_circuits(tasks: list[dict], rows: list[dict], folder: Path) -> None:

@@ -204,3 +204,43 @@ def test_custom_connectivity_from_the_example_edge_list():
     (row,) = json.loads(out)["rows"]
     assert row["connectivity"] == "custom-10" and row["physical_qubits"] == 10
     assert set(row["layout"].values()) <= set(range(10))
+
+
+@pytest.mark.parametrize("extra, needle", [
+    (("--fidelity-target", "1.5"), "--fidelity-target"),
+    (("--fidelity-target", "1.5", "--compile-only"), "--fidelity-target"),
+    (("--profile", "quantum-toaster", "--compile-only"), "--profile"),
+    (("--layers", "9"), "--layers"),
+    (("--seeds", "17"), "--seeds"),
+])
+def test_bad_options_refused_before_any_work(tmp_path, monkeypatch, extra, needle):
+    # Validation before work: the study must not start (no task runs), exit 2, the option named.
+    import toposcout.service.execution.runner as runner
+
+    def no_work(*a, **k):
+        raise AssertionError("a task ran before the options were checked")
+
+    monkeypatch.setattr(runner, "run_tasks", no_work)
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", *extra)
+    assert code == 2, err
+    assert needle in err and "Traceback" not in err
+
+
+def test_one_fidelity_target_default_for_a_sweep(tmp_path, monkeypatch):
+    # The CLI takes its default from compiler.options, as make_tasks does for the API and client.
+    from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET
+    import toposcout.service.execution.runner as runner
+
+    seen = {}
+
+    def capture(tasks, **k):
+        seen["tasks"] = tasks
+        return [{"connectivity": "line", "error": "not run"} for _ in tasks]
+
+    monkeypatch.setattr(runner, "run_tasks", capture)
+    path = write(tmp_path, "m.json", SMALL)
+    run("compare", path, "-c", "line", "--noise-scale", "1", "--noise-scale", "2", "--json")
+    assert seen["tasks"][0]["fidelity_target"] == DEFAULT_FIDELITY_TARGET
+    run("compare", path, "-c", "line", "--json")
+    assert seen["tasks"][0].get("fidelity_target") is None

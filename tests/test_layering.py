@@ -24,8 +24,8 @@ import toposcout.compiler as compiler
 ROOT = Path(__file__).resolve().parent.parent
 FOLDERS = {"toposcout": ROOT / "toposcout", "toposcout.compiler": ROOT / "compiler",
            "toposcout.service": ROOT / "service", "toposcout.topologies": ROOT / "topologies"}
-ORDER = ["version", "errors", "rows", "model", "ansatz", "targets", "profiles", "compiled", "synthesis", "compile", "noise",
-         "simulate", "metrics", "study", "bench"]
+ORDER = ["version", "errors", "options", "rows", "model", "ansatz", "targets", "profiles", "compiled", "synthesis", "compile", "noise",
+         "simulate", "metrics", "clifford", "trajectories", "methods", "study", "bench"]
 
 
 def _modules() -> dict[str, Path]:

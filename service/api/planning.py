@@ -16,6 +16,7 @@ from typing import Any, Mapping
 
 from toposcout.compiler.errors import CapacityError, ModelError, ProfileError, TargetError
 from toposcout.compiler.model import Limits, Model, parse_model
+from toposcout.compiler.options import LIMITS
 from toposcout.compiler.study import make_tasks, task_key
 from toposcout.compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, heavy_hex_qubits
 
@@ -170,9 +171,7 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
         raise CapacityError(f"noise_scales: {len(scales)} scales is over this server's cap of "
                             f"{settings.max_noise_scales}", field="noise_scales")
     for i, s in enumerate(scales):
-        if not math.isfinite(s) or s < 0 or s > 1000:
-            raise ModelError(f"noise_scales[{i}]: {s!r} must be a finite number from 0 to 1000",
-                             field=f"noise_scales[{i}]")
+        LIMITS["noise_scale"].check(s, field=f"noise_scales[{i}]")
     profile = None if compile_only else _profile(req.profile)
     options: dict[str, Any] = dict(gate_set=req.gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
                                    layers=req.layers, seed=req.seed, compile_only=compile_only, profile=profile,
@@ -189,7 +188,8 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
     normalised = {"model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
                   "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
                   "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
-                  "max_order": model.max_order, "fidelity_target": options.get("fidelity_target"),
+                  "max_order": model.max_order,
+                  "fidelity_target": tasks[0].get("fidelity_target") if tasks else None,  # after the one default
                   "method": req.method, "time_budget_seconds": req.time_budget_seconds,
                   "trajectories": req.trajectories, "precision": req.precision}
     return Prepared(model=model, request=normalised, tasks=tasks, keys=keys)

@@ -14,6 +14,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from toposcout.compiler.ansatz import FAMILIES
 from toposcout.compiler.compile import STRATEGIES
+from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
 from toposcout.compiler.rows import ROW_FIELDS
 from toposcout.service.store import ROW_STATES, STUDY_STATES
 
@@ -60,22 +61,24 @@ class StudyRequest(BaseModel):
     noise_scales: list[float] = Field(default_factory=lambda: [1.0], min_length=1, max_length=64,
                                       description="one row per connectivity and scale; every error rate x scale")
     compile_only: bool = Field(default=False, description="skip the noise simulation")
-    seeds: int = Field(default=5, ge=1, le=16, description="transpiler seeds tried by the generic strategy")
+    seeds: int = Field(default=5, **LIMITS["seeds"].pydantic(), description="transpiler seeds tried by the generic strategy")
     family: Literal[FAMILIES] = "clique"
-    layers: int = Field(default=1, ge=1, le=8)
-    seed: int = Field(default=0, ge=0, le=2**31 - 1, description="seed of the random angles")
-    max_order: int | None = Field(default=None, ge=1, le=16, description="keep only terms of at most this order")
-    fidelity_target: float | None = Field(default=None, gt=0, lt=1,
-                                          description="also find the largest 2q error reaching this state fidelity")
+    layers: int = Field(default=1, **LIMITS["layers"].pydantic(), description=LIMITS["layers"].meaning)
+    seed: int = Field(default=0, **LIMITS["seed"].pydantic(), description="seed of the random angles")
+    max_order: int | None = Field(default=None, **LIMITS["max_order"].pydantic(), description="keep only terms of at most this order")
+    fidelity_target: float | None = Field(default=None, **LIMITS["fidelity_target"].pydantic(),
+                                          description="also find the largest 2q error reaching this state fidelity "
+                                                      f"(null: {DEFAULT_FIDELITY_TARGET} with two or more noise "
+                                                      "scales, else no requirement)")
     method: Literal["auto", "density-matrix", "trajectories", "clifford"] = Field(
         default="auto", description="how noise figures are computed; auto: density-matrix within the memory budget, "
                                     "else trajectories within time_budget_seconds, else clifford (an estimate)")
-    time_budget_seconds: float | None = Field(default=None, gt=0, le=3600,
+    time_budget_seconds: float | None = Field(default=None, **LIMITS["time_budget_seconds"].pydantic(),
                                               description="wall time the noise figures of one row may take "
                                                           "(null: 300)")
-    trajectories: int | None = Field(default=None, ge=1, le=20000,
+    trajectories: int | None = Field(default=None, **LIMITS["trajectories"].pydantic(),
                                      description="trajectories method: run exactly this many trajectories")
-    precision: float | None = Field(default=None, gt=0, lt=1,
+    precision: float | None = Field(default=None, **LIMITS["precision"].pydantic(),
                                     description="trajectories method: stop when the state fidelity's standard "
                                                 "error is below this (null: 0.01)")
 

@@ -420,8 +420,11 @@ def _form_choices() -> dict:
         profiles = profile_catalogue()
     except ImportError:  # pragma: no cover - profiles ship with the package
         DEFAULT_PROFILE, profiles = None, {}
+    from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
+
     cat = connectivity_catalogue()
-    return dict(families=[(f, cat[f]["description"]) for f in BUILTIN_FAMILIES], gate_sets=GATE_SETS,
+    return dict(limits=LIMITS, default_fidelity_target=DEFAULT_FIDELITY_TARGET,
+                families=[(f, cat[f]["description"]) for f in BUILTIN_FAMILIES], gate_sets=GATE_SETS,
                 profiles=profiles, default_profile=DEFAULT_PROFILE,
                 strategies=("auto", "generic", "structured"))
 
