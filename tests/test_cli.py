@@ -244,3 +244,23 @@ def test_one_fidelity_target_default_for_a_sweep(tmp_path, monkeypatch):
     assert seen["tasks"][0]["fidelity_target"] == DEFAULT_FIDELITY_TARGET
     run("compare", path, "-c", "line", "--json")
     assert seen["tasks"][0].get("fidelity_target") is None
+
+
+@pytest.mark.parametrize("strategy", ["generic", "structured"])
+def test_qasm_dir_qpy_keeps_the_layout_of_either_strategy(tmp_path, strategy):
+    # Reference library: qiskit's QPY reader and TranspileLayout; the layout read back must be the
+    # row's layout (variable -> physical qubit at the start and at the end).
+    from qiskit import qpy
+
+    qdir = tmp_path / "circuits"
+    code, out, err = run("compare", "examples/orchard-frost.json", "--compile-only", "--strategy", strategy,
+                         "--seeds", "1", "-c", "line", "--qasm-dir", str(qdir), "--json")
+    assert code == 0, err
+    (row,) = json.loads(out)["rows"]
+    assert row["strategy"] == strategy
+    with open(qdir / "line-8.qpy", "rb") as fh:
+        (circuit,) = qpy.load(fh)
+    assert circuit.layout is not None
+    variables = list(row["layout"])
+    assert circuit.layout.initial_index_layout(filter_ancillas=True) == [row["layout"][v] for v in variables]
+    assert circuit.layout.final_index_layout() == [row["final_layout"][v] for v in variables]
