@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import time
 from collections import OrderedDict
 from typing import Any, Iterable, Mapping, Sequence
@@ -39,7 +40,8 @@ from toposcout.compiler.compile import STRATEGIES, compile_ansatz
 from toposcout.compiler.errors import CapacityError, ModelError, TargetError, ToposcoutError
 from toposcout.compiler.model import Limits, Model, parse_model
 from toposcout.compiler.options import LIMITS, requirement_target
-from toposcout.compiler.targets import BUILTIN_FAMILIES, make_connectivity, parse_edge_list, get_gate_set, read_edge_list
+from toposcout.compiler.targets import (BUILTIN_FAMILIES, NAME_PATTERN, get_gate_set, make_connectivity, name_from_path,
+                                        parse_edge_list, read_edge_list)
 from toposcout.compiler.version import __version__
 
 __all__ = ["TASK_DEFAULTS", "normalise_task", "task_key", "make_tasks", "run_task", "connectivity_spec"]
@@ -66,22 +68,64 @@ TASK_DEFAULTS: dict[str, Any] = {
 
 
 def connectivity_spec(spec: str | Mapping[str, Any]) -> dict:
-    """Turn ``"grid:3x4"``, ``"custom:FILE"`` or a dict into ``{"family", "size", "edges"}``."""
+    """Turn ``"grid:3x4"``, ``"custom:FILE"``, ``"custom:NAME=FILE"`` or a dict into
+    ``{"family", "size", "edges"}`` (and ``"name"`` for a custom one: NAME, else the file's stem)."""
     if isinstance(spec, Mapping):
         d = {"family": spec.get("family"), "size": spec.get("size"), "edges": spec.get("edges")}
+        if spec.get("name") is not None:
+            d["name"] = str(spec["name"])
     else:
         family, _, size = str(spec).partition(":")
         d = {"family": family.strip(), "size": size or None, "edges": None}
         if d["family"] == "custom":
             if not size:
-                raise TargetError("custom needs an edge-list file: custom:PATH", field="connectivity")
-            d["edges"] = [list(e) for e in read_edge_list(size)]
+                raise TargetError("custom needs an edge-list file: custom:PATH or custom:NAME=PATH",
+                                  field="connectivity")
+            name, path = _custom_name(size)
+            d["edges"] = [list(e) for e in read_edge_list(path)]
             d["size"] = None
+            d["name"] = name or name_from_path(path)
     if isinstance(d["edges"], str):
         d["edges"] = [list(e) for e in parse_edge_list(d["edges"])]
     if d["size"] is not None:
         d["size"] = str(d["size"])
     return d
+
+
+def _custom_name(text: str) -> tuple[str | None, str]:
+    """``NAME=PATH`` → (NAME, PATH); a plain path → (None, PATH)."""
+    name, eq, path = text.partition("=")
+    if eq and re.fullmatch(NAME_PATTERN, name) and path:
+        return name, path
+    return None, text
+
+
+def _explicit_name(spec: str | Mapping[str, Any]) -> bool:
+    if isinstance(spec, Mapping):
+        return spec.get("name") is not None
+    family, _, size = str(spec).partition(":")
+    return family.strip() == "custom" and _custom_name(size)[0] is not None
+
+
+def _unique_names(specs: list[dict], conns: list, explicit: list[bool]) -> None:
+    """One row name per coupling graph: a derived custom name that another graph of the study
+    already has gets ``-2``, ``-3``, ...; a NAME given twice for different graphs is refused."""
+    graphs: dict[str, tuple] = {}
+    for i, (spec, conn) in enumerate(zip(specs, conns)):
+        graph = (conn.num_qubits, tuple(conn.edges))
+        name = conn.name
+        if graphs.get(name, graph) == graph:
+            graphs[name] = graph
+            continue
+        if explicit[i] or spec["family"] != "custom":
+            other = "a built-in connectivity" if spec["family"] != "custom" else "another coupling graph"
+            raise TargetError(f"connectivity name {name!r} is taken by {other} of this study; give each custom "
+                              "graph its own name (custom:NAME=FILE)", field="connectivity")
+        k = 2
+        while f"{name}-{k}" in graphs and graphs[f"{name}-{k}"] != graph:
+            k += 1
+        spec["name"] = f"{name}-{k}"
+        graphs[spec["name"]] = graph
 
 
 def normalise_task(task: Mapping[str, Any]) -> dict:
@@ -119,7 +163,8 @@ def make_tasks(
     noise_scales: default None: one task per connectivity at ``options["noise_scale"]``.
     """
     m = model if isinstance(model, Model) else parse_model(dict(model), "json")
-    specs = [connectivity_spec(c) for c in (connectivities or BUILTIN_FAMILIES)]
+    given = list(connectivities or BUILTIN_FAMILIES)
+    specs = [connectivity_spec(c) for c in given]
     scales = list(noise_scales) if noise_scales else [options.pop("noise_scale", 1.0)]
     # check every combination before any expensive work starts
     probe = dict(TASK_DEFAULTS)
@@ -131,8 +176,9 @@ def make_tasks(
         options["fidelity_target"] = probe["fidelity_target"] = target
     for s in scales:
         _check_options({**probe, "noise_scale": s})
-    for spec in specs:
-        make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"])
+    conns = [make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"],
+                               name=spec.get("name")) for spec in specs]
+    _unique_names(specs, conns, [_explicit_name(c) for c in given])
     get_gate_set(probe["gate_set"])
     if probe["profile"] is not None or not probe["compile_only"]:
         _profile(probe["profile"], 1.0)  # an unknown profile is refused with compile_only too
@@ -194,7 +240,8 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         row.update(family=t["family"], layers=t["layers"], variables=model.num_variables,
                    terms=st["terms"], lower_bound_two_qubit=st["lower_bound_two_qubit"],
                    logical_cnots=st["cnots"], logical_depth=st["depth"])
-        conn = make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"])
+        conn = make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"],
+                                 name=spec.get("name"))
         gate_set = get_gate_set(t["gate_set"])
         row["connectivity"] = conn.name
         row["connectivity_family"] = conn.family

@@ -18,6 +18,7 @@ Examples:
 from __future__ import annotations
 
 import math
+import re
 import tomllib
 from dataclasses import dataclass
 from functools import lru_cache
@@ -159,6 +160,20 @@ def _positive_int(size, family: str) -> int:
     return v
 
 
+#: a custom connectivity's name (its row name and its --qasm-dir file name)
+NAME_PATTERN = r"[A-Za-z0-9][A-Za-z0-9._-]{0,47}"
+
+
+def name_from_path(path: str | Path) -> str:
+    """A custom connectivity's default name: the file's stem, other characters turned into '-'.
+
+    >>> name_from_path("chips/lab ladder (v2).txt")
+    'lab-ladder-v2'
+    """
+    stem = re.sub(r"[^A-Za-z0-9._-]+", "-", Path(path).stem).strip("-._")[:48]
+    return stem or "custom"
+
+
 def read_edge_list(path: str | Path) -> list[tuple[int, int]]:
     """Read a custom coupling graph: one ``a b`` pair of qubit indices per line."""
     p = Path(path)
@@ -195,6 +210,7 @@ def make_connectivity(
     *,
     size: int | str | Sequence[int] | None = None,
     edges: Sequence[Sequence[int]] | None = None,
+    name: str | None = None,
 ) -> Connectivity:
     """The connectivity of ``family`` sized for ``num_variables`` (or to ``size``).
 
@@ -202,6 +218,7 @@ def make_connectivity(
         number of qubits; grid: ``"RxC"``, ``(R, C)`` or one number for a square; heavy-hex:
         the odd code distance.
     edges: the edge list of a ``custom`` connectivity.
+    name: a ``custom`` connectivity's row name (:data:`NAME_PATTERN`); default ``custom-Q``.
     """
     n = num_variables
     if family not in CONNECTIVITY_FAMILIES:
@@ -265,7 +282,10 @@ def make_connectivity(
             parts = nx.number_connected_components(g)
             raise TargetError(f"the custom coupling graph has {parts} disconnected parts; every qubit must be "
                               f"reachable from every other", field="connectivity")
-        c = Connectivity(f"custom-{q}", family, q, e, None)
+        if name is not None and not re.fullmatch(NAME_PATTERN, str(name)):
+            raise TargetError(f"custom connectivity name {str(name)[:60]!r}: use letters, digits, '.', '_' and '-' "
+                              "(at most 48, starting with a letter or digit)", field="connectivity")
+        c = Connectivity(str(name) if name else f"custom-{q}", family, q, e, None)
     if c.num_qubits < n:
         raise _too_small(n, c.name, c.num_qubits)
     return c
@@ -278,7 +298,10 @@ def parse_connectivity(spec: str, num_variables: int) -> Connectivity:
     if family == "custom":
         if not size:
             raise TargetError("custom needs an edge-list file: custom:PATH", field="connectivity")
-        return make_connectivity("custom", num_variables, edges=read_edge_list(size))
+        name, eq, path = size.partition("=")
+        if eq and re.fullmatch(NAME_PATTERN, name) and path:
+            return make_connectivity("custom", num_variables, edges=read_edge_list(path), name=name)
+        return make_connectivity("custom", num_variables, edges=read_edge_list(size), name=name_from_path(size))
     return make_connectivity(family, num_variables, size=size or None)
 
 

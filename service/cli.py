@@ -39,7 +39,8 @@ def _parser() -> argparse.ArgumentParser:
     c = sub.add_parser("compare", help="compile (and simulate) a model on several connectivities")
     c.add_argument("model", help="model file: our JSON format, UAI (.uai) or networkx node-link JSON")
     c.add_argument("--connectivity", "-c", action="append", metavar="NAME[:SIZE]",
-                   help=f"repeatable; one of {', '.join(BUILTIN_FAMILIES)}, or custom:EDGEFILE; "
+                   help=f"repeatable; one of {', '.join(BUILTIN_FAMILIES)}, or custom:EDGEFILE (named by its stem) or "
+                        f"custom:NAME=EDGEFILE; "
                         f"default: all built-in families")
     c.add_argument("--gate-set", default="cx", choices=GATE_SETS, help="native gate set (default cx)")
     c.add_argument("--strategy", default="auto", choices=("generic", "structured", "auto"),

@@ -202,7 +202,7 @@ def test_custom_connectivity_from_the_example_edge_list():
                          "--compile-only", "--json")
     assert code == 0, err
     (row,) = json.loads(out)["rows"]
-    assert row["connectivity"] == "custom-10" and row["physical_qubits"] == 10
+    assert row["connectivity"] == "ladder-chip" and row["physical_qubits"] == 10  # named by the file's stem
     assert set(row["layout"].values()) <= set(range(10))
 
 
@@ -264,3 +264,25 @@ def test_qasm_dir_qpy_keeps_the_layout_of_either_strategy(tmp_path, strategy):
     variables = list(row["layout"])
     assert circuit.layout.initial_index_layout(filter_ancillas=True) == [row["layout"][v] for v in variables]
     assert circuit.layout.final_index_layout() == [row["final_layout"][v] for v in variables]
+
+
+def test_two_custom_graphs_of_one_size_keep_apart_names_and_files(tmp_path):
+    # Two different 10-qubit graphs used to share the name custom-10: one .qpy overwrote the other.
+    a = tmp_path / "a"
+    b = tmp_path / "b"
+    a.mkdir()
+    b.mkdir()
+    (a / "chip.edges").write_text((ROOT / "examples" / "ladder-chip.edges").read_text())
+    (b / "chip.edges").write_text("\n".join(f"{i} {i + 1}" for i in range(9)))  # a 10-qubit line
+    qdir = tmp_path / "circuits"
+    code, out, err = run("compare", "examples/orchard-frost.json", "-c", f"custom:{a / 'chip.edges'}",
+                         "-c", f"custom:{b / 'chip.edges'}", "-c", f"custom:lab={b / 'chip.edges'}",
+                         "--compile-only", "--strategy", "generic", "--seeds", "1", "--json", "--qasm-dir", str(qdir))
+    assert code == 0, err
+    names = sorted(r["connectivity"] for r in json.loads(out)["rows"])
+    assert names == ["chip", "chip-2", "lab"]
+    assert sorted(p.name for p in qdir.glob("*.qpy")) == ["chip-2.qpy", "chip.qpy", "lab.qpy"]
+    # an explicit name given to two different graphs is refused, before any work
+    code, out, err = run("compare", "examples/orchard-frost.json", "-c", f"custom:lab={a / 'chip.edges'}",
+                         "-c", f"custom:lab={b / 'chip.edges'}", "--compile-only")
+    assert code == 2 and "'lab'" in err and "custom:NAME=FILE" in err

@@ -75,6 +75,10 @@ def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables:
     else:
         d = {"family": spec.family, "size": None if spec.size is None else str(spec.size),
              "edges": [list(e) for e in spec.edges] if spec.edges is not None else None}
+        if spec.name is not None:
+            if spec.family != "custom":
+                raise TargetError(f"{where}.name: only a custom connectivity takes a name", field=f"{where}.name")
+            d["name"] = spec.name
         if d["size"] is not None and not re.match(r"^[0-9]{1,4}(x[0-9]{1,4})?$", d["size"]):
             raise TargetError(f"{where}.size: {d['size'][:40]!r} is not a size (e.g. 12, '3x4')", field=f"{where}.size")
     family = d["family"]

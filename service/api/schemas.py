@@ -16,6 +16,7 @@ from toposcout.compiler.ansatz import FAMILIES
 from toposcout.compiler.compile import STRATEGIES
 from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
 from toposcout.compiler.rows import ROW_FIELDS
+from toposcout.compiler.targets import NAME_PATTERN
 from toposcout.service.store import ROW_STATES, STUDY_STATES
 
 __all__ = ["ConnectivitySpec", "StudyRequest", "ErrorBody", "Progress", "StudySummary", "StudyCreated",
@@ -40,6 +41,9 @@ class ConnectivitySpec(BaseModel):
     size: str | int | None = Field(default=None, description="e.g. 12 (line), '3x4' (grid), 5 (heavy-hex)")
     edges: list[Annotated[list[int], Field(min_length=2, max_length=2)]] | None = Field(
         default=None, max_length=5000, description="custom only: undirected edges [a, b] of qubit indices")
+    name: str | None = Field(default=None, pattern=f"^{NAME_PATTERN}$",
+                             description="custom only: the row name (default custom-Q; two graphs of one size get "
+                                         "custom-Q and custom-Q-2); one name for two graphs is refused")
 
 
 class StudyRequest(BaseModel):
