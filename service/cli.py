@@ -194,7 +194,11 @@ def _compare(args, out, err) -> int:
         from toposcout.service.client import Client
 
         client = Client(args.server, token=args.token or os.environ.get("TOPOSCOUT_TOKEN"))
-        rows = client.run_tasks(model, tasks, progress=show_progress)
+        def announce(h) -> None:  # on stderr, so --json output stays one document
+            err.write(f"study {h.id}: {h.dashboard_url}\n")
+            err.flush()
+
+        rows = client.run_tasks(model, tasks, progress=show_progress, on_submit=announce)
     else:
         from toposcout.service.execution.runner import run_tasks
 

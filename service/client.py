@@ -230,17 +230,20 @@ class Client:
         return self._json("POST", "/v1/compile", json_body=body)["rows"]
 
     def run_tasks(self, model: Any, tasks: Sequence[Mapping[str, Any]], *, progress: bool = False,
-                  timeout: float | None = None) -> list[dict]:
+                  timeout: float | None = None, on_submit: Any = None) -> list[dict]:
         """Run the study that ``toposcout.compiler.study.make_tasks`` built as ``tasks`` on the server.
 
         This is what ``toposcout compare --server URL`` calls. The tasks are turned back into
         one request (their connectivities, noise scales and shared options); the rows come
-        back in task order as plain dicts without the API-only columns.
+        back in task order as plain dicts without the API-only columns. ``on_submit``, when given,
+        is called with the :class:`StudyHandle` as soon as the server has accepted the study.
         """
         if not tasks:
             return []
         body = request_from_tasks(tasks)
         h = self.submit(model, body.pop("connectivities"), **body)
+        if on_submit is not None:
+            on_submit(h)
         h.wait(progress=progress, timeout=timeout)
         rows = sorted(h.row_dicts(), key=lambda r: r.get("task_index", 0))
         return [{k: v for k, v in r.items() if k not in API_ONLY_COLUMNS} for r in rows]
@@ -255,6 +258,8 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
         spec = dict(t["connectivity"])
         if spec.get("edges"):
             c: Any = {"family": spec["family"], "edges": spec["edges"]}
+            if spec.get("name"):
+                c["name"] = spec["name"]
         else:
             c = spec["family"] + (f":{spec['size']}" if spec.get("size") else "")
         if c not in conns:
@@ -262,11 +267,9 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
         s = float(t.get("noise_scale", 1.0))
         if s not in scales:
             scales.append(s)
-    profile = first.get("profile")
+    profile = first.get("profile")  # a name, or a profile read from a local file: sent as its content
     if isinstance(profile, Mapping):
-        raise ToposcoutClientError(
-            "a profile read from a local file cannot be sent to a server; name one of the server's profiles "
-            "(GET /v1/profiles lists them) or run without --server", field="profile")
+        profile = dict(profile)
     body: dict[str, Any] = {"connectivities": conns, "noise_scales": scales}
     for key in ("gate_set", "strategy", "seeds", "family", "layers", "seed", "compile_only", "fidelity_target",
                 "method", "time_budget_seconds", "trajectories", "precision"):
@@ -309,6 +312,11 @@ class StudyHandle:
 
     def __repr__(self) -> str:
         return f"StudyHandle(id={self.id!r}, status={self._data.get('status')!r})"
+
+    @property
+    def dashboard_url(self) -> str:
+        """The study's page on the server's dashboard."""
+        return f"{self.client.url}/studies/{self.id}"
 
     def refresh(self) -> dict:
         """Fetch the study (summary, progress and rows) and return it."""

@@ -5,6 +5,8 @@ from __future__ import annotations
 import io
 import json
 import math
+import re
+from pathlib import Path
 
 import httpx
 import networkx as nx
@@ -178,3 +180,23 @@ def test_cli_compare_on_a_server_with_a_wrong_token_is_a_clean_error(server, tmp
     assert "401" in err.getvalue() and "token" in err.getvalue()
     assert "Traceback" not in err.getvalue()
 
+
+
+def test_cli_compare_on_a_server_names_the_study_and_sends_a_local_profile(server, tmp_path, small_model):
+    # The study id and its dashboard page are printed; a profile file is sent as its content.
+    path = tmp_path / "kite.json"
+    path.write_text(json.dumps(small_model))
+    src = (Path(__file__).resolve().parent.parent / "topologies" / "profiles" / "superconducting.toml").read_text()
+    prof = tmp_path / "lab.toml"
+    prof.write_text(src.replace('name = "superconducting"', 'name = "lab-chip"'))
+    out, err = io.StringIO(), io.StringIO()
+    code = cli.main(["compare", str(path), "-c", "line", "--strategy", "generic", "--seeds", "1", "--profile",
+                     str(prof), "--json", "--server", server.url, "--token", TOKEN], out=out, err=err)
+    assert code == 0, err.getvalue()
+    m = re.search(r"study (\S+): (\S+)", err.getvalue())
+    assert m and m.group(2) == f"{server.url}/studies/{m.group(1)}"
+    study = _api_study(server, m.group(1))
+    assert study["request"]["profile"]["name"] == "lab-chip"
+    assert {r["profile"] for r in json.loads(out.getvalue())["rows"]} == {"lab-chip"}
+    page = httpx.get(m.group(2), headers={"Authorization": f"Bearer {TOKEN}"})
+    assert page.status_code == 200 and m.group(1) in page.text
