@@ -11,6 +11,7 @@ import io
 import json
 import os
 import re
+import sys
 from pathlib import Path
 from urllib.parse import urlparse
 
@@ -27,6 +28,10 @@ MODEL = {"name": "pond-sensors", "variables": ["inlet", "reeds", "dock", "outlet
 KINDS = ("gates", "fidelity", "budget", "sweep")
 
 
+#: what the browser tests need, as one line (the skip reason and the README say it)
+INSTALL = "sudo apt-get install chromium"
+
+
 def _require_browser():
     required = os.environ.get("TOPOSCOUT_REQUIRE_BROWSER") == "1"
     try:
@@ -34,11 +39,11 @@ def _require_browser():
     except ImportError:
         if required:
             pytest.fail("TOPOSCOUT_REQUIRE_BROWSER=1 but the python package playwright is not installed")
-        pytest.skip("playwright is not installed")
+        pytest.skip("browser tests need the playwright package: pip install -e '.[test]'")
     if not Path(CHROMIUM).exists():
         if required:
-            pytest.fail(f"TOPOSCOUT_REQUIRE_BROWSER=1 but {CHROMIUM} is missing (apt-get install chromium)")
-        pytest.skip(f"{CHROMIUM} is missing")
+            pytest.fail(f"TOPOSCOUT_REQUIRE_BROWSER=1 but {CHROMIUM} is missing (install it: {INSTALL})")
+        pytest.skip(f"browser tests need Chromium at {CHROMIUM}; install it with: {INSTALL}")
 
 
 @pytest.fixture(scope="module")
@@ -315,3 +320,19 @@ def test_no_external_requests(requests_seen, server, submitted):
     host = urlparse(server.url).netloc
     outside = [u for u in requests_seen if not u.startswith("data:") and urlparse(u).netloc != host]
     assert not outside, f"requests left 127.0.0.1: {outside}"
+
+
+def test_the_skip_reason_and_the_readme_say_how_to_install_chromium(monkeypatch):
+    # On a fresh machine without Chromium the browser tests skip; the reason must name the fix.
+    pytest.importorskip("playwright")
+    monkeypatch.setenv("TOPOSCOUT_REQUIRE_BROWSER", "0")
+    monkeypatch.setattr(sys.modules[__name__], "CHROMIUM", "/nonexistent/chromium")
+    try:
+        _require_browser()
+    except pytest.skip.Exception as exc:
+        assert INSTALL in str(exc)
+    else:
+        raise AssertionError("no skip without Chromium")
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text(encoding="utf-8")
+    after_command = readme.split("# (b) set up and run the tests", 1)[1][:900]
+    assert INSTALL in after_command
