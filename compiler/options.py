@@ -24,7 +24,11 @@ from typing import Any, Sequence
 
 from toposcout.compiler.errors import ModelError
 
-__all__ = ["Limit", "LIMITS", "DEFAULT_FIDELITY_TARGET", "requirement_target", "limits_markdown"]
+__all__ = ["Limit", "LIMITS", "DEFAULT_FIDELITY_TARGET", "DEFAULT_REQUIREMENT_TOLERANCE", "requirement_target", "limits_markdown"]
+
+#: relative width of the requirement bisection's final bracket, (upper - lower) / upper, when a
+#: study names none: the requirement is the bracket's lower end, at most this far below the threshold.
+DEFAULT_REQUIREMENT_TOLERANCE = 0.001
 
 #: the state fidelity the requirement (the largest two-qubit error reaching it) must reach when a
 #: study sweeps two or more noise scales and names no target: the same in the CLI, API and client.

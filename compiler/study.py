@@ -11,7 +11,7 @@ A task::
      "compile_only": False, "profile": "NAME" | {profile dict} | None, "noise_scale": 1.0,
      "memory_budget_bytes": None, "error_budget": True, "fidelity_target": None,
      "keep_circuit": False, "method": "auto", "time_budget_seconds": None, "trajectories": None,
-     "precision": None}
+     "precision": None, "requirement_tolerance": None}
 
 ``method`` picks how the noise figures are computed (``toposcout.compiler.methods``); when they
 cannot be computed the row keeps its compile figures and says why in ``noise_error``.
@@ -64,6 +64,7 @@ TASK_DEFAULTS: dict[str, Any] = {
     "time_budget_seconds": None,
     "trajectories": None,
     "precision": None,
+    "requirement_tolerance": None,
 }
 
 
@@ -209,8 +210,9 @@ def _check_options(t: Mapping[str, Any]) -> None:
         raise ModelError(f"unknown family {t['family']!r}; choose one of {', '.join(FAMILIES)}", field="family")
     for name in ("seeds", "layers", "seed"):
         LIMITS[name].check(t[name])
-    if t.get("fidelity_target") is not None:
-        LIMITS["fidelity_target"].check(t["fidelity_target"])
+    for name in ("fidelity_target", "requirement_tolerance"):
+        if t.get(name) is not None:
+            LIMITS[name].check(t[name])
     from toposcout.compiler.methods import check_method_options
 
     check_method_options(t["method"], precision=t["precision"], trajectories=t["trajectories"],

@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any, Sequence
 
 from toposcout.compiler.errors import ToposcoutError
-from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
+from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, DEFAULT_REQUIREMENT_TOLERANCE, LIMITS
 from toposcout.compiler.targets import BUILTIN_FAMILIES, GATE_SETS
 from toposcout.service.output import CAUTION, rows_table, sort_rows, write_csv, write_json
 
@@ -59,6 +59,9 @@ def _parser() -> argparse.ArgumentParser:
                    help="find the largest 2q error reaching this state fidelity, "
                         f"{LIMITS['fidelity_target'].describe()} (default {DEFAULT_FIDELITY_TARGET} with a sweep "
                         "of two or more noise scales, else none)")
+    c.add_argument("--requirement-tolerance", type=float, metavar="FRACTION",
+                   help="the requirement's bisection stops when its bracket (upper - lower) / upper is below this "
+                        f"(default {DEFAULT_REQUIREMENT_TOLERANCE}); rows report the bracket")
     c.add_argument("--compile-only", action="store_true", help="skip the noise simulation")
     c.add_argument("--method", default="auto", metavar="METHOD",
                    help="how noise figures are computed: auto (default: density-matrix within the memory budget, "
@@ -169,6 +172,8 @@ def _compare(args, out, err) -> int:
     scales = args.noise_scale or [1.0]
     if args.fidelity_target is not None:  # else make_tasks applies the one default (compiler.options)
         options["fidelity_target"] = args.fidelity_target
+    if args.requirement_tolerance is not None:
+        options["requirement_tolerance"] = args.requirement_tolerance
     if args.profile and Path(args.profile).suffix == ".toml":
         from toposcout.compiler.profiles import load_profile
 
@@ -223,6 +228,7 @@ def _compare(args, out, err) -> int:
 
 #: task fields → the ``compare`` option that sets them (errors name the option the user typed)
 _FLAGS = {"seeds": "--seeds", "layers": "--layers", "seed": "--seed", "fidelity_target": "--fidelity-target",
+          "requirement_tolerance": "--requirement-tolerance",
           "noise_scale": "--noise-scale", "profile": "--profile", "strategy": "--strategy", "family": "--family",
           "gate_set": "--gate-set", "method": "--method", "precision": "--precision", "trajectories": "--trajectories",
           "time_budget_seconds": "--time-budget", "connectivity": "--connectivity"}

@@ -272,7 +272,7 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
         profile = dict(profile)
     body: dict[str, Any] = {"connectivities": conns, "noise_scales": scales}
     for key in ("gate_set", "strategy", "seeds", "family", "layers", "seed", "compile_only", "fidelity_target",
-                "method", "time_budget_seconds", "trajectories", "precision"):
+                "requirement_tolerance", "method", "time_budget_seconds", "trajectories", "precision"):
         if key in first:
             body[key] = first[key]
     if profile is not None:

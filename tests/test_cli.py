@@ -212,6 +212,7 @@ def test_custom_connectivity_from_the_example_edge_list():
     (("--profile", "quantum-toaster", "--compile-only"), "--profile"),
     (("--layers", "9"), "--layers"),
     (("--seeds", "17"), "--seeds"),
+    (("--requirement-tolerance", "0", "--fidelity-target", "0.8"), "--requirement-tolerance"),
 ])
 def test_bad_options_refused_before_any_work(tmp_path, monkeypatch, extra, needle):
     # Validation before work: the study must not start (no task runs), exit 2, the option named.

@@ -28,7 +28,7 @@ def test_the_readme_carries_the_table_of_limits():
 def test_the_api_schema_has_the_same_bounds():
     schema = StudyRequest.model_json_schema()["properties"]
     for name in ("seeds", "layers", "seed", "max_order", "fidelity_target", "trajectories", "precision",
-                 "time_budget_seconds"):
+                 "time_budget_seconds", "requirement_tolerance"):
         L = LIMITS[name]
         prop = schema[name]
         prop = next((p for p in prop.get("anyOf", [prop]) if p.get("type") != "null"), prop)

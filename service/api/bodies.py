@@ -26,7 +26,7 @@ FORM_SCHEMA = {
         "noise_scales": {"type": "array", "items": {"type": "string"}},
         **{k: {"type": "string"} for k in ("model_format", "gate_set", "strategy", "profile", "compile_only", "seeds",
                                            "family", "layers", "seed", "max_order", "fidelity_target",
-                                           "method", "time_budget_seconds", "trajectories", "precision")},
+                                           "requirement_tolerance", "method", "time_budget_seconds", "trajectories", "precision")},
     },
 }
 FORM_BODY = {"requestBody": {"required": True, "content": {

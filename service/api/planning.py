@@ -184,6 +184,8 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
         options["memory_budget_bytes"] = int(memory_budget)
     if req.fidelity_target is not None and not compile_only:
         options["fidelity_target"] = req.fidelity_target
+    if req.requirement_tolerance is not None and not compile_only:
+        options["requirement_tolerance"] = req.requirement_tolerance
     if not compile_only:
         options.update(method=req.method, time_budget_seconds=req.time_budget_seconds,
                        trajectories=req.trajectories, precision=req.precision)
@@ -194,6 +196,7 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
                   "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
                   "max_order": model.max_order,
                   "fidelity_target": tasks[0].get("fidelity_target") if tasks else None,  # after the one default
+                  "requirement_tolerance": req.requirement_tolerance,
                   "method": req.method, "time_budget_seconds": req.time_budget_seconds,
                   "trajectories": req.trajectories, "precision": req.precision}
     return Prepared(model=model, request=normalised, tasks=tasks, keys=keys)
@@ -244,7 +247,7 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
                 out[key] = int(v)
             except ValueError:
                 raise ModelError(f"{key}: {v[:40]!r} is not an integer", field=key) from None
-        elif key in ("fidelity_target", "time_budget_seconds", "precision"):
+        elif key in ("fidelity_target", "requirement_tolerance", "time_budget_seconds", "precision"):
             if v:
                 out[key] = _form_float(key, v)
         elif key == "compile_only":

@@ -14,7 +14,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from toposcout.compiler.ansatz import FAMILIES
 from toposcout.compiler.compile import STRATEGIES
-from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
+from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, DEFAULT_REQUIREMENT_TOLERANCE, LIMITS
 from toposcout.compiler.rows import ROW_FIELDS
 from toposcout.compiler.targets import NAME_PATTERN
 from toposcout.service.store import ROW_STATES, STUDY_STATES
@@ -74,6 +74,10 @@ class StudyRequest(BaseModel):
                                           description="also find the largest 2q error reaching this state fidelity "
                                                       f"(null: {DEFAULT_FIDELITY_TARGET} with two or more noise "
                                                       "scales, else no requirement)")
+    requirement_tolerance: float | None = Field(
+        default=None, **LIMITS["requirement_tolerance"].pydantic(),
+        description="relative width (upper - lower) / upper at which the requirement's bisection stops "
+                    f"(null: {DEFAULT_REQUIREMENT_TOLERANCE}); the row reports the bracket")
     method: Literal["auto", "density-matrix", "trajectories", "clifford"] = Field(
         default="auto", description="how noise figures are computed; auto: density-matrix within the memory budget, "
                                     "else trajectories within time_budget_seconds, else clifford (an estimate)")
