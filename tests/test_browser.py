@@ -315,6 +315,36 @@ def test_pages_need_the_token(browser, server):
     ctx.close()
 
 
+def test_api_docs_work_with_the_network_blocked(browser, server):
+    # Every request that does not go to the server is aborted, as on a machine with no internet:
+    # /docs must still render the API's operations from the assets the package ships.
+    host = urlparse(server.url).netloc
+    blocked: list[str] = []
+    ctx = browser.new_context(viewport={"width": 1200, "height": 900})
+
+    def gate(route):
+        if urlparse(route.request.url).netloc == host or route.request.url.startswith("data:"):
+            route.continue_()
+        else:
+            blocked.append(route.request.url)
+            route.abort()
+
+    ctx.route("**/*", gate)
+    try:
+        p = ctx.new_page()
+        p.goto(f"{server.url}/?token={TOKEN}")
+        p.goto(f"{server.url}/docs")
+        p.wait_for_selector(".swagger-ui .opblock", timeout=30000)
+        title = p.locator(".swagger-ui .info .title").inner_text()
+        assert "toposcout" in title and "OAS 3.1" in title
+        assert p.locator(".swagger-ui .opblock").count() >= 10
+        SHOTS.mkdir(parents=True, exist_ok=True)
+        p.screenshot(path=str(SHOTS / "api-docs-offline.png"))
+    finally:
+        ctx.close()
+    assert not blocked, f"/docs asked for outside resources: {blocked}"
+
+
 def test_no_external_requests(requests_seen, server, submitted):
     assert requests_seen, "no requests were recorded"
     host = urlparse(server.url).netloc

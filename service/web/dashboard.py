@@ -45,7 +45,13 @@ __all__ = ["router", "COOKIE", "PAGE_SIZE"]
 COOKIE = "toposcout_token"
 PAGE_SIZE = 20
 _HERE = Path(__file__).resolve().parent
-_STATIC = {"dashboard.js": "text/javascript; charset=utf-8", "dashboard.css": "text/css; charset=utf-8"}
+_STATIC = {"dashboard.js": "text/javascript; charset=utf-8", "dashboard.css": "text/css; charset=utf-8",
+           "favicon.svg": "image/svg+xml",
+           # Swagger UI for /docs, shipped in the package (see static/swagger-ui.README.txt)
+           "swagger-ui-bundle.js": "text/javascript; charset=utf-8", "swagger-ui.css": "text/css; charset=utf-8",
+           "swagger-ui.LICENSE": "text/plain; charset=utf-8", "swagger-ui.NOTICE": "text/plain; charset=utf-8",
+           "swagger-ui-bundle.js.LICENSE.txt": "text/plain; charset=utf-8",
+           "swagger-ui.README.txt": "text/plain; charset=utf-8"}
 _CSP = ("default-src 'self'; img-src 'self' data:; style-src 'self'; script-src 'self'; connect-src 'self'; "
         "font-src 'self'; form-action 'self'; frame-ancestors 'none'; base-uri 'self'")
 _FINAL = ("done", "failed", "cancelled")
