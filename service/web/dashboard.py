@@ -20,6 +20,8 @@ HTTP-only cookie that the API also accepts, and the token is removed from the ad
 
 from __future__ import annotations
 
+import base64
+import binascii
 import datetime as dt
 import io
 import json
@@ -135,8 +137,10 @@ def _page(request: Request, template: str, code: int = 200, **ctx: Any) -> HTMLR
 def _problem(request: Request, resp: httpx.Response) -> Response:
     """The page for an API error: sign-in on 401, else the message with the API's status."""
     msg, field = _detail(resp)
-    if resp.status_code == 401:
-        return _page(request, "signin.html", 401, message=msg, next=str(request.url.path))
+    if resp.status_code == 401:  # an error box only when a token was tried; a visitor is not signed in
+        tried = _token_of(request) is not None
+        return _page(request, "signin.html", 401, message=f"the token was not accepted: {msg}" if tried else None,
+                     next=str(request.url.path), signed_in=False)
     return _page(request, "error.html", resp.status_code, status=resp.status_code, message=msg, field=field)
 
 
@@ -445,7 +449,59 @@ async def submit_form(request: Request):
     redirect = _with_token_cookie(request)
     if redirect:
         return redirect
-    return _page(request, "submit.html", values=_FORM_DEFAULTS, error=None, field=None, **_form_choices())
+    return _page(request, "submit.html", values=_FORM_DEFAULTS, errors={}, kept=None, **_form_choices())
+
+
+def _form_field(api_field: str | None) -> str:
+    """The submit form's field for an API error field (``noise_scales[1]`` → ``noise_scales``)."""
+    f = api_field or ""
+    head = f.split(".", 1)[0].split("[", 1)[0]
+    if head in ("file", "model", "body") or f.startswith("line"):
+        return "file"
+    if head in ("connectivities", "connectivity"):
+        return "connectivities"
+    if head in ("noise_scales", "noise_scale"):
+        return "noise_scales"
+    if head in ("seeds", "layers", "fidelity_target", "profile", "gate_set", "strategy", "compile_only"):
+        return head
+    return "form"
+
+
+def _check_form(values: dict) -> dict[str, str]:
+    """Every problem of the filled fields at once, by field, with the limits of compiler.options."""
+    from toposcout.compiler.options import LIMITS
+
+    errors: dict[str, str] = {}
+    for key in ("seeds", "layers"):
+        v = values[key].strip()
+        if not v:
+            continue
+        try:
+            LIMITS[key].check(int(v))
+        except ValueError:
+            errors[key] = f"{key}: {v[:40]!r} is not a whole number; give {LIMITS[key].describe()}"
+        except ToposcoutError as exc:
+            errors[key] = str(exc)
+    v = values["fidelity_target"].strip()
+    if v:
+        try:
+            LIMITS["fidelity_target"].check(float(v))
+        except ValueError:
+            errors["fidelity_target"] = f"fidelity_target: {v[:40]!r} is not a number"
+        except ToposcoutError as exc:
+            errors["fidelity_target"] = str(exc)
+    bad = []
+    for x in values["noise_scales"].replace(",", " ").split():
+        try:
+            LIMITS["noise_scale"].check(float(x))
+        except (ValueError, ToposcoutError):
+            bad.append(x[:20])
+    if bad:
+        errors["noise_scales"] = (f"noise scales: {', '.join(repr(b) for b in bad)} not "
+                                  f"{LIMITS['noise_scale'].describe()}")
+    if not values["connectivities"] and not values["extra_connectivities"].strip():
+        errors["connectivities"] = "choose at least one connectivity"
+    return errors
 
 
 @router.post("/submit")
@@ -465,14 +521,35 @@ async def submit(request: Request):
         "layers": str(form.get("layers") or ""),
     }
 
-    def again(message: str, field: str | None, status: int = 422) -> Response:
-        return _page(request, "submit.html", status, values=values, error=message, field=field, **_form_choices())
+    # a refused form keeps the chosen file: its content comes back in a hidden field (a browser cannot
+    # refill a file input), used unless another file is chosen
+    kept: dict[str, str] | None = None
+    errors: dict[str, str] = {}
+    content, filename, ctype = b"", "", "application/octet-stream"
+    if upload is not None and hasattr(upload, "read") and getattr(upload, "filename", ""):
+        content, filename = await upload.read(), upload.filename
+        ctype = upload.content_type or ctype
+        if not content:
+            errors["file"] = f"the model file {filename!r} is empty"
+    elif form.get("kept_file_b64"):
+        try:
+            content = base64.b64decode(str(form.get("kept_file_b64")), validate=True)
+        except (binascii.Error, ValueError):
+            content = b""
+        filename = str(form.get("kept_file_name") or "model")
+        if not content:
+            errors["file"] = "choose the model file again"
+    else:
+        errors["file"] = "choose a model file (our JSON format, UAI or networkx node-link JSON)"
+    if content:
+        kept = {"name": filename, "b64": base64.b64encode(content).decode("ascii")}
 
-    if upload is None or not hasattr(upload, "read") or not getattr(upload, "filename", ""):
-        return again("choose a model file (our JSON format, UAI or networkx node-link JSON)", "file")
-    content = await upload.read()
-    if not content:
-        return again(f"the model file {upload.filename!r} is empty", "file")
+    def again(found: dict[str, str], status: int = 422) -> Response:
+        return _page(request, "submit.html", status, values=values, errors=found, kept=kept, **_form_choices())
+
+    errors.update(_check_form(values))
+    if errors:
+        return again(errors)
     conns = values["connectivities"] + [c for c in values["extra_connectivities"].replace(",", " ").split() if c]
     data: dict[str, Any] = {"connectivities": conns,
                             "noise_scales": values["noise_scales"].replace(",", " ").split()}
@@ -481,14 +558,13 @@ async def submit(request: Request):
             data[key] = values[key].strip()
     data["compile_only"] = "true" if values["compile_only"] else "false"
     data = {k: v for k, v in data.items() if v != []}
-    resp = await _api(request, "POST", "/v1/studies", data=data,
-                      files={"file": (upload.filename, content, upload.content_type or "application/octet-stream")})
+    resp = await _api(request, "POST", "/v1/studies", data=data, files={"file": (filename, content, ctype)})
     if resp.status_code in (200, 201, 202):
         return RedirectResponse(f"/studies/{resp.json()['id']}", status_code=303)
     if resp.status_code == 401:
         return _problem(request, resp)
     message, field = _detail(resp)
-    return again(message, field, resp.status_code if 400 <= resp.status_code < 500 else 422)
+    return again({_form_field(field): message}, resp.status_code if 400 <= resp.status_code < 500 else 422)
 
 
 def _json_attr(value: Any) -> str:
