@@ -31,6 +31,7 @@ from toposcout.compiler.errors import ToposcoutError
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
+    from matplotlib.figure import Figure
     from qiskit import QuantumCircuit
 
 __all__ = ["Client", "StudyHandle", "ToposcoutClientError", "model_payload", "request_from_tasks", "API_ONLY_COLUMNS"]
@@ -216,9 +217,21 @@ class Client:
     def compare(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None, *,
                 profile: str | None = None, progress: bool = True, timeout: float | None = None,
                 **options: Any) -> "pd.DataFrame":
-        """Submit, wait (with a progress bar unless ``progress=False``) and return the rows as a DataFrame."""
+        """Submit, wait (with a progress bar unless ``progress=False``) and return the rows as a DataFrame.
+
+        The study itself (:class:`StudyHandle`: a readable summary in a notebook, ``plot(kind)`` for
+        the dashboard's charts) is ``df.attrs["study"]``; :meth:`run` returns it directly."""
+        h = self.run(model, connectivities, profile=profile, progress=progress, timeout=timeout, **options)
+        df = h.rows()
+        df.attrs["study"] = h
+        return df
+
+    def run(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None, *,
+            profile: str | None = None, progress: bool = True, timeout: float | None = None,
+            **options: Any) -> "StudyHandle":
+        """Submit and wait; returns the finished :class:`StudyHandle` (``.rows()``, ``.plot(kind)``)."""
         h = self.submit(model, connectivities, profile=profile, **options)
-        return h.wait(progress=progress, timeout=timeout).rows()
+        return h.wait(progress=progress, timeout=timeout)
 
     def compile(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None,
                 **options: Any) -> list[dict]:
@@ -313,6 +326,12 @@ class StudyHandle:
     def __repr__(self) -> str:
         return f"StudyHandle(id={self.id!r}, status={self._data.get('status')!r})"
 
+    def __deepcopy__(self, memo) -> "StudyHandle":  # a handle names a study on the server: copies share it
+        return self  # (pandas deep-copies DataFrame.attrs, where compare() keeps the handle)
+
+    def __copy__(self) -> "StudyHandle":
+        return self
+
     @property
     def dashboard_url(self) -> str:
         """The study's page on the server's dashboard."""
@@ -366,6 +385,49 @@ class StudyHandle:
         finally:
             if bar is not None:
                 bar.close()
+
+    def summary(self) -> dict:
+        """What the study is, in a few fields: id, status, model, profile(s), noise scales,
+        connectivities, progress and the dashboard page."""
+        if not self._data.get("request"):
+            self.refresh()
+        req = self._data.get("request") or {}
+        prof = req.get("profile")
+        conns = [c if isinstance(c, str) else (c.get("name") or c.get("family", "?")) + (
+            f":{c['size']}" if isinstance(c, Mapping) and c.get("size") else "") for c in req.get("connectivities") or []]
+        done, total = self.progress
+        return {"id": self.id, "status": self.status, "model": self._data.get("model_name"),
+                "profile": prof.get("name") if isinstance(prof, Mapping) else (prof or "server default"),
+                "noise_scales": req.get("noise_scales"), "connectivities": conns or "every built-in family",
+                "compile_only": req.get("compile_only"), "rows": f"{done}/{total}",
+                "best_connectivity": self._data.get("best_connectivity"), "dashboard": self.dashboard_url}
+
+    def _repr_html_(self) -> str:
+        """A notebook's view of the study: its summary as a small table."""
+        from html import escape
+
+        cells = "".join(f"<tr><th style='text-align:left'>{escape(k.replace('_', ' '))}</th>"
+                        f"<td style='text-align:left'>{escape(', '.join(map(str, v)) if isinstance(v, list) else str(v))}"
+                        f"</td></tr>" for k, v in self.summary().items() if k != "dashboard")
+        url = escape(self.dashboard_url)
+        return (f"<table><caption style='text-align:left'>toposcout study</caption>{cells}"
+                f"<tr><th style='text-align:left'>dashboard</th><td><a href='{url}'>{url}</a></td></tr></table>")
+
+    def charts(self) -> list[str]:
+        """The chart kinds this study's rows can fill (the dashboard's charts)."""
+        from toposcout.service.web.charts import available_charts
+
+        return available_charts(self.row_dicts())
+
+    def plot(self, kind: str = "gates") -> "Figure":
+        """A dashboard chart as a matplotlib Figure (``gates``, ``fidelity``, ``budget``, ``sweep``):
+        the same drawing as the dashboard's, so a notebook needs no plotting code of its own.
+        Raises ToposcoutError (field ``chart``) when the rows cannot fill it."""
+        from toposcout.service.web.charts import chart_figure
+
+        if self.status not in _FINAL:
+            self.refresh()
+        return chart_figure(kind, self.row_dicts())
 
     def row_dicts(self) -> list[dict]:
         """The rows as the API gives them (with ``task_index``, ``status``, ``cached``)."""

@@ -13,6 +13,7 @@ import networkx as nx
 import pandas as pd
 import pytest
 
+from toposcout.compiler.errors import ToposcoutError
 from toposcout.service import cli
 from toposcout.service.client import API_ONLY_COLUMNS, Client, StudyHandle, ToposcoutClientError, model_payload
 
@@ -200,3 +201,28 @@ def test_cli_compare_on_a_server_names_the_study_and_sends_a_local_profile(serve
     assert {r["profile"] for r in json.loads(out.getvalue())["rows"]} == {"lab-chip"}
     page = httpx.get(m.group(2), headers={"Authorization": f"Bearer {TOKEN}"})
     assert page.status_code == 200 and m.group(1) in page.text
+
+
+def test_the_study_object_summarises_itself_and_draws_the_dashboards_charts(client, small_model):
+    from matplotlib.figure import Figure
+
+    from toposcout.service.web import charts
+
+    df = client.compare(small_model, ["line"], noise_scales=[0.5, 1.0], strategy="generic", seeds=1, progress=False)
+    h = df.attrs["study"]
+    assert isinstance(h, StudyHandle) and h.status == "done"
+    page = h._repr_html_()
+    assert small_model["name"] in page and h.dashboard_url in page and "0.5, 1.0" in page
+    assert h.charts() == ["gates", "fidelity", "budget", "sweep"]
+    rows = h.row_dicts()
+    for kind in h.charts():
+        fig = h.plot(kind)
+        assert isinstance(fig, Figure)
+        assert fig.get_suptitle() == charts.CHART_TITLES[kind]
+        # the same drawing as the dashboard's chart of the same rows
+        ref = charts.chart_figure(kind, rows)
+        assert [a.get_title() for a in fig.axes] == [a.get_title() for a in ref.axes]
+        assert [len(a.patches) + len(a.lines) for a in fig.axes] == [len(a.patches) + len(a.lines) for a in ref.axes]
+    assert [a.get_title() for a in h.plot("budget").axes] == ["noise scale 0.5x", "noise scale 1x"]
+    with pytest.raises(ToposcoutError):
+        h.plot("pie")

@@ -37,9 +37,8 @@ from html import escape
 from typing import Any, Iterable, Mapping, Sequence
 
 import matplotlib
-
-matplotlib.use("Agg")
-
+# no matplotlib.use(): the charts use the object API (Figure, savefig picks its canvas by format), so
+# importing this module in a notebook leaves the notebook's backend alone
 from matplotlib.figure import Figure  # noqa: E402
 
 from toposcout.compiler.errors import ToposcoutError  # noqa: E402
@@ -201,6 +200,14 @@ def render_chart(kind: str, rows: Iterable[Mapping[str, Any]], *, fmt: str = "sv
     """
     if fmt not in FORMATS:
         raise ToposcoutError(f"unknown chart format {fmt!r}; choose svg or png", field="format")
+    ok = usable_rows(rows)
+    fig = chart_figure(kind, ok)
+    return _save(fig, fmt, CHART_TITLES[kind], chart_description(kind, ok))
+
+
+def chart_figure(kind: str, rows: Iterable[Mapping[str, Any]]) -> Figure:
+    """Chart ``kind`` of the rows as a matplotlib Figure (what the dashboard serves; the notebook
+    client's ``StudyHandle.plot`` shows it). Raises ToposcoutError as :func:`render_chart`."""
     if kind not in CHART_KINDS:
         raise ToposcoutError(f"unknown chart {kind!r}; choose one of {', '.join(CHART_KINDS)}", field="chart")
     ok = usable_rows(rows)
@@ -217,7 +224,7 @@ def render_chart(kind: str, rows: Iterable[Mapping[str, Any]], *, fmt: str = "sv
     draw(fig, ok)
     fig.suptitle(CHART_TITLES[kind], fontsize=11)
     _caption(fig, caption(ok, kind=kind))
-    return _save(fig, fmt, CHART_TITLES[kind], chart_description(kind, ok))
+    return fig
 
 
 def _caption(fig: Figure, text: str) -> None:
