@@ -33,6 +33,7 @@ import json
 import re
 import time
 from collections import OrderedDict
+from dataclasses import replace
 from typing import Any, Iterable, Mapping, Sequence
 
 from toposcout.compiler.ansatz import FAMILIES, build_ansatz
@@ -41,7 +42,7 @@ from toposcout.compiler.errors import CapacityError, ModelError, TargetError, To
 from toposcout.compiler.model import Limits, Model, parse_model
 from toposcout.compiler.options import LIMITS, requirement_target
 from toposcout.compiler.targets import (BUILTIN_FAMILIES, NAME_PATTERN, get_gate_set, make_connectivity, name_from_path,
-                                        parse_edge_list, read_edge_list)
+                                        parse_edge_list, read_edge_list, read_positions)
 from toposcout.compiler.version import __version__
 
 __all__ = ["TASK_DEFAULTS", "normalise_task", "task_key", "make_tasks", "run_task", "connectivity_spec"]
@@ -75,6 +76,8 @@ def connectivity_spec(spec: str | Mapping[str, Any]) -> dict:
         d = {"family": spec.get("family"), "size": spec.get("size"), "edges": spec.get("edges")}
         if spec.get("name") is not None:
             d["name"] = str(spec["name"])
+        if spec.get("positions") is not None:
+            d["positions"] = [[float(x), float(y)] for x, y in spec["positions"]]
     else:
         family, _, size = str(spec).partition(":")
         d = {"family": family.strip(), "size": size or None, "edges": None}
@@ -84,6 +87,9 @@ def connectivity_spec(spec: str | Mapping[str, Any]) -> dict:
                                   field="connectivity")
             name, path = _custom_name(size)
             d["edges"] = [list(e) for e in read_edge_list(path)]
+            pos = read_positions(path)
+            if pos is not None:
+                d["positions"] = pos
             d["size"] = None
             d["name"] = name or name_from_path(path)
     if isinstance(d["edges"], str):
@@ -129,6 +135,19 @@ def _unique_names(specs: list[dict], conns: list, explicit: list[bool]) -> None:
         graphs[spec["name"]] = graph
 
 
+def resolve_connectivities(connectivities: Sequence[str | Mapping[str, Any]] | None, num_variables: int
+                           ) -> tuple[list[dict], list]:
+    """The specs and the Connectivity objects of a study's connectivities, with the row names the
+    study gives them (:func:`_unique_names`); raises TargetError before any work."""
+    given = list(connectivities or BUILTIN_FAMILIES)
+    specs = [connectivity_spec(c) for c in given]
+    conns = [make_connectivity(spec["family"], num_variables, size=spec["size"], edges=spec["edges"],
+                               name=spec.get("name"), positions=spec.get("positions")) for spec in specs]
+    _unique_names(specs, conns, [_explicit_name(c) for c in given])
+    conns = [replace(c, name=s["name"]) if s.get("name") and c.name != s["name"] else c for s, c in zip(specs, conns)]
+    return specs, conns
+
+
 def normalise_task(task: Mapping[str, Any]) -> dict:
     """Fill defaults and normalise the model, so equal work has an equal key."""
     out = dict(TASK_DEFAULTS)
@@ -164,8 +183,7 @@ def make_tasks(
     noise_scales: default None: one task per connectivity at ``options["noise_scale"]``.
     """
     m = model if isinstance(model, Model) else parse_model(dict(model), "json")
-    given = list(connectivities or BUILTIN_FAMILIES)
-    specs = [connectivity_spec(c) for c in given]
+    specs, _conns = resolve_connectivities(connectivities, m.num_variables)
     scales = list(noise_scales) if noise_scales else [options.pop("noise_scale", 1.0)]
     # check every combination before any expensive work starts
     probe = dict(TASK_DEFAULTS)
@@ -177,9 +195,6 @@ def make_tasks(
         options["fidelity_target"] = probe["fidelity_target"] = target
     for s in scales:
         _check_options({**probe, "noise_scale": s})
-    conns = [make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"],
-                               name=spec.get("name")) for spec in specs]
-    _unique_names(specs, conns, [_explicit_name(c) for c in given])
     get_gate_set(probe["gate_set"])
     if probe["profile"] is not None or not probe["compile_only"]:
         _profile(probe["profile"], 1.0)  # an unknown profile is refused with compile_only too
@@ -243,7 +258,7 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
                    terms=st["terms"], lower_bound_two_qubit=st["lower_bound_two_qubit"],
                    logical_cnots=st["cnots"], logical_depth=st["depth"])
         conn = make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"],
-                                 name=spec.get("name"))
+                                 name=spec.get("name"), positions=spec.get("positions"))
         gate_set = get_gate_set(t["gate_set"])
         row["connectivity"] = conn.name
         row["connectivity_family"] = conn.family

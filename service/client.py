@@ -271,8 +271,9 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
         spec = dict(t["connectivity"])
         if spec.get("edges"):
             c: Any = {"family": spec["family"], "edges": spec["edges"]}
-            if spec.get("name"):
-                c["name"] = spec["name"]
+            for key in ("name", "positions"):
+                if spec.get(key):
+                    c[key] = spec[key]
         else:
             c = spec["family"] + (f":{spec['size']}" if spec.get("size") else "")
         if c not in conns:

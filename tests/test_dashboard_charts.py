@@ -223,3 +223,17 @@ def test_sweep_legend_names_the_threshold_markers(sweep_rows):
     for name in ("line-5", "ring-5"):
         assert f"{name}: threshold 3.2x (largest scale reaching the target)" in labels
     assert "fidelity target 0.5" in labels
+
+
+def test_custom_drawings_are_rebuilt_with_the_studys_names_and_positions():
+    ring = [[0, 1], [1, 2], [2, 3], [3, 0]]
+    line = [[0, 1], [1, 2], [2, 3]]
+    request = {"connectivities": [{"family": "custom", "edges": ring, "size": None},
+                                  {"family": "custom", "edges": line, "size": None,
+                                   "positions": [[0, 0], [1, 0], [2, 0], [3, 0]]}]}
+    row = {"connectivity": "custom-4-2", "connectivity_family": "custom", "variables": 3}
+    conn = charts.connectivity_for_row(row, request)
+    assert conn.edges == ((0, 1), (1, 2), (2, 3))
+    assert conn.coords() == [(0.0, 0.0), (1.0, 0.0), (2.0, 0.0), (3.0, 0.0)]
+    assert charts.connectivity_for_row({**row, "connectivity": "custom-4"}, request).edges == (
+        (0, 1), (0, 3), (1, 2), (2, 3))

@@ -79,6 +79,11 @@ def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables:
             if spec.family != "custom":
                 raise TargetError(f"{where}.name: only a custom connectivity takes a name", field=f"{where}.name")
             d["name"] = spec.name
+        if spec.positions is not None:
+            if spec.family != "custom":
+                raise TargetError(f"{where}.positions: only a custom connectivity takes positions",
+                                  field=f"{where}.positions")
+            d["positions"] = [list(p) for p in spec.positions]
         if d["size"] is not None and not re.match(r"^[0-9]{1,4}(x[0-9]{1,4})?$", d["size"]):
             raise TargetError(f"{where}.size: {d['size'][:40]!r} is not a size (e.g. 12, '3x4')", field=f"{where}.size")
     family = d["family"]

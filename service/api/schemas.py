@@ -44,6 +44,9 @@ class ConnectivitySpec(BaseModel):
     name: str | None = Field(default=None, pattern=f"^{NAME_PATTERN}$",
                              description="custom only: the row name (default custom-Q; two graphs of one size get "
                                          "custom-Q and custom-Q-2); one name for two graphs is refused")
+    positions: list[Annotated[list[float], Field(min_length=2, max_length=2)]] | None = Field(
+        default=None, max_length=5000, description="custom only: drawing position [x, y] of every qubit (the "
+                                                   "dashboard's drawing; default: a planar layout)")
 
 
 class StudyRequest(BaseModel):

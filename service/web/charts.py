@@ -374,14 +374,15 @@ def connectivity_for_row(row: Mapping[str, Any], request: Mapping[str, Any] | No
         (f for f in ("all-to-all", "heavy-hex", "line", "ring", "grid", "custom") if name.startswith(f + "-")), None)
     n = int(row.get("variables") or 1)
     if family == "custom":
-        for spec in (request or {}).get("connectivities") or []:
-            if isinstance(spec, Mapping) and spec.get("edges"):
-                try:
-                    c = make_connectivity("custom", n, edges=spec["edges"])
-                except ToposcoutError:
-                    continue
-                if c.name == name:
-                    return c
+        from toposcout.compiler.study import resolve_connectivities  # the names the study gave its rows
+
+        try:
+            _specs, conns = resolve_connectivities((request or {}).get("connectivities") or [], n)
+        except ToposcoutError:
+            conns = []
+        for c in conns:
+            if c.family == "custom" and c.name == name:
+                return c
         raise ToposcoutError(f"cannot rebuild the custom connectivity {name!r}: its edges are not in the request",
                              field="connectivity")
     if not family or not name.startswith(family + "-"):
