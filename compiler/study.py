@@ -177,14 +177,20 @@ def make_tasks(
     noise_scales: Iterable[float] | None = None,
     **options: Any,
 ) -> list[dict]:
-    """One task per (connectivity, noise scale); options are task fields.
+    """One task per (connectivity, profile, noise scale); options are task fields.
 
     connectivities: default None: every built-in family, sized to the model.
     noise_scales: default None: one task per connectivity at ``options["noise_scale"]``.
+    ``options["profile"]`` may be a list of profiles (names or dicts): one study, every profile.
     """
     m = model if isinstance(model, Model) else parse_model(dict(model), "json")
     specs, _conns = resolve_connectivities(connectivities, m.num_variables)
     scales = list(noise_scales) if noise_scales else [options.pop("noise_scale", 1.0)]
+    given_profiles = options.get("profile")
+    profiles = list(given_profiles) if isinstance(given_profiles, (list, tuple)) else [given_profiles]
+    if not profiles:
+        raise ModelError("profile: give at least one profile (or none for the default)", field="profile")
+    options["profile"] = profiles[0]
     # check every combination before any expensive work starts
     probe = dict(TASK_DEFAULTS)
     probe.update(options)
@@ -196,8 +202,13 @@ def make_tasks(
     for s in scales:
         _check_options({**probe, "noise_scale": s})
     get_gate_set(probe["gate_set"])
-    if probe["profile"] is not None or not probe["compile_only"]:
-        _profile(probe["profile"], 1.0)  # an unknown profile is refused with compile_only too
+    names = []
+    for prof in profiles:
+        if prof is not None or not probe["compile_only"]:
+            names.append(_profile(prof, 1.0).name)  # an unknown profile is refused with compile_only too
+    if len(set(names)) != len(names):
+        raise ModelError(f"profile: {sorted(n for n in names if names.count(n) > 1)[0]!r} is given twice; rows of "
+                         "two profiles are told apart by the profile's name", field="profile")
     if not probe["compile_only"]:
         if probe["method"] == "density-matrix":
             from toposcout.compiler.simulate import capacity_message, default_memory_budget_bytes, estimate_memory_bytes
@@ -209,11 +220,12 @@ def make_tasks(
                                     "or use method auto, trajectories or clifford", field="method")
     tasks = []
     for spec in specs:
-        for k, s in enumerate(scales):
-            t = {"model": m.to_dict(), "connectivity": spec, **options, "noise_scale": float(s)}
-            if options.get("fidelity_target") is not None and k > 0:
-                t["fidelity_target"] = None  # the threshold is searched once per connectivity
-            tasks.append(t)
+        for prof in profiles:
+            for k, s in enumerate(scales):
+                t = {"model": m.to_dict(), "connectivity": spec, **options, "profile": prof, "noise_scale": float(s)}
+                if options.get("fidelity_target") is not None and k > 0:
+                    t["fidelity_target"] = None  # the threshold is searched once per connectivity and profile
+                tasks.append(t)
     return tasks
 
 

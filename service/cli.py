@@ -52,7 +52,9 @@ def _parser() -> argparse.ArgumentParser:
                    help=f"repetitions of block + rotations, {LIMITS['layers'].describe()} (default 1)")
     c.add_argument("--seed", type=int, default=0, help="seed of the random angles (default 0)")
     c.add_argument("--max-order", type=int, help="keep only terms of at most this order")
-    c.add_argument("--profile", help="device profile name or TOML file (default: the superconducting-like class)")
+    c.add_argument("--profile", action="append", metavar="NAME|FILE",
+                   help="device profile name or TOML file (default: the superconducting-like class); repeat to "
+                        "compare device classes in one study")
     c.add_argument("--noise-scale", type=float, action="append", metavar="X",
                    help="multiply every error rate by X; repeat for a sweep (default 1)")
     c.add_argument("--fidelity-target", type=float, default=None,
@@ -174,10 +176,11 @@ def _compare(args, out, err) -> int:
         options["fidelity_target"] = args.fidelity_target
     if args.requirement_tolerance is not None:
         options["requirement_tolerance"] = args.requirement_tolerance
-    if args.profile and Path(args.profile).suffix == ".toml":
+    if args.profile:
         from toposcout.compiler.profiles import load_profile
 
-        options["profile"] = load_profile(args.profile).to_dict()
+        profiles = [load_profile(p).to_dict() if Path(p).suffix == ".toml" else p for p in args.profile]
+        options["profile"] = profiles[0] if len(profiles) == 1 else profiles
     if args.qasm_dir:
         options["keep_circuit"] = True  # the rows bring their compiled circuits for the files
     try:

@@ -281,9 +281,13 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
         s = float(t.get("noise_scale", 1.0))
         if s not in scales:
             scales.append(s)
-    profile = first.get("profile")  # a name, or a profile read from a local file: sent as its content
-    if isinstance(profile, Mapping):
-        profile = dict(profile)
+    profiles: list[Any] = []  # names, or profiles read from local files: sent as their content
+    for t in tasks:
+        p = t.get("profile")
+        p = dict(p) if isinstance(p, Mapping) else p
+        if p not in profiles:
+            profiles.append(p)
+    profile = profiles[0] if len(profiles) == 1 else profiles
     body: dict[str, Any] = {"connectivities": conns, "noise_scales": scales}
     for key in ("gate_set", "strategy", "seeds", "family", "layers", "seed", "compile_only", "fidelity_target",
                 "requirement_tolerance", "method", "time_budget_seconds", "trajectories", "precision"):

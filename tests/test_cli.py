@@ -287,3 +287,23 @@ def test_two_custom_graphs_of_one_size_keep_apart_names_and_files(tmp_path):
     code, out, err = run("compare", "examples/orchard-frost.json", "-c", f"custom:lab={a / 'chip.edges'}",
                          "-c", f"custom:lab={b / 'chip.edges'}", "--compile-only")
     assert code == 2 and "'lab'" in err and "custom:NAME=FILE" in err
+
+
+def test_one_study_holds_several_profiles(tmp_path):
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", "-c", "ring", "--profile", "superconducting", "--profile",
+                         "trapped_ion", "--strategy", "generic", "--seeds", "1", "--json")
+    assert code == 0, err
+    rows = json.loads(out)["rows"]
+    assert sorted((r["connectivity"], r["profile"]) for r in rows) == [
+        ("line-4", "superconducting"), ("line-4", "trapped_ion"), ("ring-4", "superconducting"),
+        ("ring-4", "trapped_ion")]
+    by = {(r["connectivity"], r["profile"]): r for r in rows}
+    # the same compiled circuit under two device classes: equal compile figures, different noise figures
+    assert by[("line-4", "superconducting")]["two_qubit_gates"] == by[("line-4", "trapped_ion")]["two_qubit_gates"]
+    assert by[("line-4", "superconducting")]["state_fidelity"] != by[("line-4", "trapped_ion")]["state_fidelity"]
+    code, _, err = run("compare", path, "-c", "line", "--profile", "trapped_ion", "--profile", "trapped_ion")
+    assert code == 2 and "given twice" in err
+    code, _, err = run("compare", path, "-c", "line", "--profile", "trapped_ion", "--profile", "toaster",
+                       "--compile-only")
+    assert code == 2 and "toaster" in err

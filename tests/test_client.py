@@ -226,3 +226,12 @@ def test_the_study_object_summarises_itself_and_draws_the_dashboards_charts(clie
     assert [a.get_title() for a in h.plot("budget").axes] == ["noise scale 0.5x", "noise scale 1x"]
     with pytest.raises(ToposcoutError):
         h.plot("pie")
+
+
+def test_request_from_tasks_keeps_every_profile(small_model):
+    from toposcout.compiler.study import make_tasks
+    from toposcout.service.client import request_from_tasks
+
+    tasks = make_tasks(small_model, ["line"], profile=["superconducting", "trapped_ion"], noise_scales=[1.0, 2.0])
+    body = request_from_tasks(tasks)
+    assert body["profile"] == ["superconducting", "trapped_ion"] and body["noise_scales"] == [1.0, 2.0]

@@ -70,3 +70,25 @@ def test_one_default_fidelity_target_in_the_api(small_model, tmp_path):
     assert sweep.tasks[0]["fidelity_target"] == DEFAULT_FIDELITY_TARGET
     one = prepare(StudyRequest.model_validate({"model": small_model, "connectivities": ["line"]}), settings)
     assert one.request["fidelity_target"] is None
+
+
+def test_the_api_takes_a_list_of_profiles_and_searches_each_requirement(small_model, tmp_path):
+    from toposcout.service.api.planning import prepare
+
+    settings = Settings(database_url=f"sqlite:///{tmp_path / 'd.db'}", data_dir=tmp_path, workers=1)
+    p = prepare(StudyRequest.model_validate({"model": small_model, "connectivities": ["line"],
+                                             "profile": ["superconducting", "neutral_atom"],
+                                             "noise_scales": [0.5, 1.0]}), settings)
+    assert [(t["profile"], t["noise_scale"], t["fidelity_target"]) for t in p.tasks] == [
+        ("superconducting", 0.5, DEFAULT_FIDELITY_TARGET), ("superconducting", 1.0, None),
+        ("neutral_atom", 0.5, DEFAULT_FIDELITY_TARGET), ("neutral_atom", 1.0, None)]
+    assert p.request["profile"] == ["superconducting", "neutral_atom"]
+
+
+def test_the_sweep_chart_draws_one_curve_per_connectivity_and_profile():
+    from toposcout.service.web import charts
+
+    rows = [{"connectivity": "line-4", "profile": prof, "noise_scale": s, "state_fidelity": f ** s,
+             "two_qubit_gates": 6, "error": None} for prof, f in (("a", 0.9), ("b", 0.7)) for s in (0.5, 1.0)]
+    desc = charts.chart_description("sweep", rows)
+    assert "line-4 (a):" in desc and "line-4 (b):" in desc

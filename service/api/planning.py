@@ -105,9 +105,13 @@ def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables:
     return d
 
 
-def _profile(profile: str | dict | None) -> str | dict | None:
+def _profile(profile: str | dict | list | None) -> str | dict | list | None:
     if profile is None:
         return None
+    if isinstance(profile, list):
+        if not 1 <= len(profile) <= 8:
+            raise ProfileError("profile: give from 1 to 8 profiles", field="profile")
+        return [_profile(p) for p in profile]
     from toposcout.compiler.profiles import PROFILE_NAMES, load_profile
 
     if isinstance(profile, str):

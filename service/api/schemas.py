@@ -63,8 +63,9 @@ class StudyRequest(BaseModel):
         description="default null: every built-in family, sized to the model")
     gate_set: str = Field(default="cx", max_length=32)
     strategy: Literal[STRATEGIES] = "auto"
-    profile: str | dict[str, Any] | None = Field(
-        default=None, description="a built-in profile name, or a profile object; null: the default profile")
+    profile: str | dict[str, Any] | list[str | dict[str, Any]] | None = Field(
+        default=None, description="a built-in profile name, or a profile object, or a list of them (one study "
+                                  "compares the device classes: rows per profile); null: the default profile")
     noise_scales: list[float] = Field(default_factory=lambda: [1.0], min_length=1, max_length=64,
                                       description="one row per connectivity and scale; every error rate x scale")
     compile_only: bool = Field(default=False, description="skip the noise simulation")

@@ -179,8 +179,7 @@ def chart_description(kind: str, rows: Iterable[Mapping[str, Any]]) -> str:
         parts = []
         for name, pts in _sweep_series(ok).items():
             s = ", ".join(f"{x:g}x -> {_fmt(y)}" for x, y in pts)
-            thr = next((r.get("threshold_noise_scale") for r in ok if r.get("connectivity") == name
-                        and r.get("threshold_noise_scale") is not None), None)
+            thr = _threshold_of(name, ok)
             parts.append(f"{name}: {s}" + (f"; target reached up to noise scale {thr:.3g}" if thr else ""))
         body = "; ".join(parts)
     else:
@@ -328,13 +327,24 @@ def _draw_budget(fig: Figure, rows) -> None:
     axes[0].legend(fontsize=8, loc="upper left", ncols=2, title=textwrap.fill(BUDGET_NOTE, 70), title_fontsize=7)
 
 
+def _series_key(r: Mapping[str, Any], rows) -> str:
+    """A sweep curve: a connectivity, and its profile when the study has several."""
+    several = len({x.get("profile") for x in rows if x.get("profile")}) > 1
+    return str(r.get("connectivity")) + (f" ({r.get('profile')})" if several and r.get("profile") else "")
+
+
 def _sweep_series(rows) -> dict[str, list[tuple[float, float]]]:
     series: dict[str, list[tuple[float, float]]] = {}
     for r in rows:
         if r.get("state_fidelity") is None or r.get("noise_scale") is None:
             continue
-        series.setdefault(str(r["connectivity"]), []).append((float(r["noise_scale"]), float(r["state_fidelity"])))
+        series.setdefault(_series_key(r, rows), []).append((float(r["noise_scale"]), float(r["state_fidelity"])))
     return {k: sorted(v) for k, v in series.items()}
+
+
+def _threshold_of(name: str, rows) -> float | None:
+    return next((r.get("threshold_noise_scale") for r in rows if _series_key(r, rows) == name
+                 and r.get("threshold_noise_scale") is not None), None)
 
 
 def _draw_sweep(fig: Figure, rows) -> None:
@@ -343,8 +353,7 @@ def _draw_sweep(fig: Figure, rows) -> None:
     colours = matplotlib.colormaps["tab10"]
     for i, (name, pts) in enumerate(series.items()):
         c = colours(i % 10)
-        thr = next((r.get("threshold_noise_scale") for r in rows if str(r.get("connectivity")) == name
-                    and r.get("threshold_noise_scale") is not None), None)
+        thr = _threshold_of(name, rows)
         ax.plot([p[0] for p in pts], [p[1] for p in pts], marker=_MARKERS[i % len(_MARKERS)], color=c, label=name,
                 linestyle=("-", "--", "-.", ":")[i % 4], markersize=7 - (i % 3), markerfacecolor="none" if i % 2 else c)
         if thr is not None:  # the marker has its own legend entry, saying what it marks
