@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import re
 import xml.etree.ElementTree as ET
 
@@ -237,3 +238,47 @@ def test_custom_drawings_are_rebuilt_with_the_studys_names_and_positions():
     assert conn.coords() == [(0.0, 0.0), (1.0, 0.0), (2.0, 0.0), (3.0, 0.0)]
     assert charts.connectivity_for_row({**row, "connectivity": "custom-4"}, request).edges == (
         (0, 1), (0, 3), (1, 2), (2, 3))
+
+
+@pytest.mark.parametrize("conn_spec", ["line", "ring", "grid", "heavy-hex", "ladder"])
+def test_drawing_labels_overlap_no_node_and_no_other_label(conn_spec):
+    # Bounding boxes as matplotlib's renderer lays them out (the same boxes the SVG gets): every
+    # variable label and SWAP label stays clear of every qubit marker and of every other label.
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.transforms import Bbox
+
+    from toposcout.compiler.study import connectivity_spec
+    from toposcout.compiler.targets import make_connectivity
+
+    names = ["inlet", "reeds", "dock", "outlet", "weir", "sluice", "heron", "moss"]
+    model = {"name": "pond", "variables": names,
+             "cliques": [names[i:i + 3] for i in range(0, 6, 2)] + [["heron", "moss"], ["moss", "inlet"]]}
+    if conn_spec == "ladder":
+        spec = connectivity_spec("custom:examples/ladder-chip.edges")
+        conn = make_connectivity("custom", 8, edges=spec["edges"], positions=spec["positions"])
+        spec = {"family": "custom", "edges": spec["edges"], "size": None}
+    else:
+        conn = make_connectivity(conn_spec, 8)
+        spec = conn_spec
+    (task,) = make_tasks(model, [spec], compile_only=True, strategy="generic", seeds=1)
+    row = run_task(task)
+    fig = charts.connectivity_figure(row, conn)
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    (ax,) = fig.axes
+    marks = [c for c in ax.collections if len(c.get_offsets()) == 1]  # one marker per qubit
+    assert len(marks) == conn.num_qubits
+    nodes = []
+    for c in marks:
+        (x, y), = ax.transData.transform(c.get_offsets())
+        r = (c.get_sizes()[0] ** 0.5) / 2 * fig.dpi / 72  # a marker's size is its area in points^2
+        nodes.append(Bbox.from_extents(x - r, y - r, x + r, y + r))
+    labels = [t for t in ax.texts if t.get_text() in names or t.get_text().endswith("SWAP")]
+    assert {t.get_text() for t in labels} >= set(row["layout"])
+    boxes = [(t.get_text(), t.get_window_extent(renderer)) for t in labels]
+    for name, box in boxes:
+        for q, node in enumerate(nodes):
+            assert not box.overlaps(node), (conn_spec, name, "over qubit", q)
+    for (a, ba), (b, bb) in itertools.combinations(boxes, 2):
+        assert not ba.overlaps(bb), (conn_spec, a, b)

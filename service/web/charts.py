@@ -433,6 +433,14 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
     """
     if fmt not in FORMATS:
         raise ToposcoutError(f"unknown chart format {fmt!r}; choose svg or png", field="format")
+    fig = connectivity_figure(row, conn, active=active)
+    act = set(active) if active is not None else _active_guess(row)
+    return _save(fig, fmt, f"{conn.name}: variables on physical qubits",
+                 drawing_description(row, conn, act if active is not None else None))
+
+
+def connectivity_figure(row: Mapping[str, Any], conn: Connectivity, *, active: Iterable[int] | None = None) -> Figure:
+    """The drawing of :func:`connectivity_chart` as a matplotlib Figure."""
     layout = {str(v): int(p) for v, p in (row.get("layout") or {}).items()}
     by_qubit = {p: v for v, p in layout.items()}
     act = set(active) if active is not None else _active_guess(row)
@@ -492,7 +500,7 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
             if mismatch else "")
     ax.set_title(title + note, fontsize=10)
     _caption(fig, caption([row], kind="gates"))
-    return _save(fig, fmt, title, drawing_description(row, conn, act if active is not None else None))
+    return fig
 
 
 def _swaps_on(row: Mapping[str, Any], active: set[int] | None) -> tuple[dict[tuple[int, int], int], int]:
