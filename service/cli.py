@@ -83,6 +83,7 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--workers", type=int, default=None, help="local worker processes (default: cores, at most 2)")
     c.add_argument("--server", metavar="URL", help="run the study on a toposcout server instead")
     c.add_argument("--token", help="bearer token for --server (default: $TOPOSCOUT_TOKEN)")
+    c.add_argument("--label", help="with --server: a label for the study (the study list shows and filters it)")
 
     sub.add_parser("targets", help="list connectivities, gate sets and device profiles")
 
@@ -206,7 +207,7 @@ def _compare(args, out, err) -> int:
             err.write(f"study {h.id}: {h.dashboard_url}\n")
             err.flush()
 
-        rows = client.run_tasks(model, tasks, progress=show_progress, on_submit=announce)
+        rows = client.run_tasks(model, tasks, progress=show_progress, on_submit=announce, label=args.label)
     else:
         from toposcout.service.execution.runner import run_tasks
 

@@ -182,10 +182,11 @@ class Client:
         return self._json("GET", "/v1/profiles")
 
     def studies(self, *, status: str | None = None, owner: str | None = None, limit: int = 20,
-                offset: int = 0) -> dict:
-        """One page of the study list: ``{"items", "total", "limit", "offset"}``, newest first."""
-        params = {k: v for k, v in dict(status=status, owner=owner, limit=limit, offset=offset).items()
-                  if v is not None}
+                offset: int = 0, model: str | None = None, label: str | None = None) -> dict:
+        """One page of the study list: ``{"items", "total", "limit", "offset"}``, newest first;
+        ``model`` and ``label`` filter by the model's name and the study's label."""
+        params = {k: v for k, v in dict(status=status, owner=owner, limit=limit, offset=offset, model=model,
+                                        label=label).items() if v is not None}
         return self._json("GET", "/v1/studies", params=params)
 
     def study(self, study_id: str) -> "StudyHandle":
@@ -243,7 +244,7 @@ class Client:
         return self._json("POST", "/v1/compile", json_body=body)["rows"]
 
     def run_tasks(self, model: Any, tasks: Sequence[Mapping[str, Any]], *, progress: bool = False,
-                  timeout: float | None = None, on_submit: Any = None) -> list[dict]:
+                  timeout: float | None = None, on_submit: Any = None, label: str | None = None) -> list[dict]:
         """Run the study that ``toposcout.compiler.study.make_tasks`` built as ``tasks`` on the server.
 
         This is what ``toposcout compare --server URL`` calls. The tasks are turned back into
@@ -254,6 +255,8 @@ class Client:
         if not tasks:
             return []
         body = request_from_tasks(tasks)
+        if label is not None:
+            body["label"] = label
         h = self.submit(model, body.pop("connectivities"), **body)
         if on_submit is not None:
             on_submit(h)

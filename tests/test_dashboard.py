@@ -156,3 +156,31 @@ def test_a_refused_form_keeps_file_and_fields_and_lists_every_error_by_its_field
              "seeds": "1", "layers": "1"}
     r = app_client.post("/submit", data=fixed, headers=AUTH, follow_redirects=False)
     assert r.status_code == 303 and r.headers["location"].startswith("/studies/"), r.text[:500]
+
+
+def test_labels_filters_and_the_compare_view(app_client, wait_study):
+    app_client.cookies.clear()
+    other = {"name": "pair", "variables": ["a", "b"], "cliques": [["a", "b"]]}
+    ids = []
+    for label, model, conns in (("lab-A", MODEL, ["line"]), ("lab-A", other, ["ring", "line"]), ("lab-B", MODEL, ["line"])):
+        r = app_client.post("/v1/studies", json={"model": model, "connectivities": conns, "compile_only": True,
+                                                "seeds": 1, "label": label}, headers=AUTH)
+        assert r.status_code == 202, r.text
+        ids.append(r.json()["id"])
+    for i in ids:
+        wait_study(app_client, i, 60, headers=AUTH)
+    got = app_client.get("/v1/studies", params={"label": "lab-A"}, headers=AUTH).json()
+    assert {s["id"] for s in got["items"]} == set(ids[:2]) and got["total"] == 2
+    got = app_client.get("/v1/studies", params={"label": "lab-A", "model": "pair"}, headers=AUTH).json()
+    assert [s["id"] for s in got["items"]] == [ids[1]]
+    assert got["items"][0]["connectivities"] == ["ring", "line"] and got["items"][0]["profiles"] == []
+    page = html.unescape(app_client.get("/", params={"label": "lab-A"}, headers=AUTH).text)
+    assert ids[0] in page and ids[1] in page and ids[2] not in page
+    assert "ring, line" in page and 'name="label" type="text" value="lab-A"' in page
+    r = app_client.get("/compare", params={"ids": [ids[0], ids[2]]}, headers=AUTH)
+    assert r.status_code == 200
+    rows = re.findall(r'<tr( class="differs")?><th scope="row">([^<]*)', r.text)
+    differs = {title.strip() for cls, title in rows if cls}
+    same = {title.strip() for cls, title in rows if not cls}
+    assert "label" in differs and "model" in same and "connectivities" in same
+    assert app_client.get("/compare", params={"ids": ids[0]}, headers=AUTH).status_code == 422

@@ -24,7 +24,7 @@ FORM_SCHEMA = {
         "file": {"type": "string", "format": "binary", "description": "the model file (JSON, UAI or node-link)"},
         "connectivities": {"type": "array", "items": {"type": "string"}},
         "noise_scales": {"type": "array", "items": {"type": "string"}},
-        **{k: {"type": "string"} for k in ("model_format", "gate_set", "strategy", "profile", "compile_only", "seeds",
+        **{k: {"type": "string"} for k in ("label", "model_format", "gate_set", "strategy", "profile", "compile_only", "seeds",
                                            "family", "layers", "seed", "max_order", "fidelity_target",
                                            "requirement_tolerance", "method", "time_budget_seconds", "trajectories", "precision")},
     },

@@ -200,7 +200,7 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
                        trajectories=req.trajectories, precision=req.precision)
     tasks = make_tasks(model, specs, noise_scales=scales, **options)
     keys = [task_key({**t, "model": model}) for t in tasks]  # the parsed model: no second parse per task
-    normalised = {"model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
+    normalised = {"label": req.label, "model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
                   "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
                   "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
                   "max_order": model.max_order,

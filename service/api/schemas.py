@@ -56,6 +56,8 @@ class StudyRequest(BaseModel):
 
     model: dict[str, Any] | str = Field(
         description="the model: a JSON model object, or the text of a model file (UAI, JSON or node-link)")
+    label: str | None = Field(default=None, min_length=1, max_length=80, pattern=r"^[^\x00-\x1f\x7f]+$",
+                              description="a label of your choice, shown in the study list and usable as a filter")
     model_format: Literal["json", "uai", "nodelink"] | None = Field(
         default=None, description="default null: guessed from the content")
     connectivities: list[str | ConnectivitySpec] | None = Field(
@@ -116,6 +118,10 @@ class StudySummary(BaseModel):
     updated_at: str
     progress: Progress
     best_connectivity: str | None = None  # set when the study finishes; live in GET /v1/studies/{id}
+    label: str | None = None
+    connectivities: list[str] = Field(default_factory=list, description="the study's connectivities as requested")
+    profiles: list[str] = Field(default_factory=list, description="profile names (empty: compile-only)")
+    noise_scales: list[float] = Field(default_factory=list)
 
 
 class StudyCreated(BaseModel):

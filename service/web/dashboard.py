@@ -210,17 +210,22 @@ async def study_list(request: Request):
         return redirect
     page = _positive_int(request.query_params.get("page"), 1)
     status = request.query_params.get("status") or None
+    model = (request.query_params.get("model") or "").strip() or None
+    label = (request.query_params.get("label") or "").strip() or None
     params: dict[str, Any] = {"limit": PAGE_SIZE, "offset": (page - 1) * PAGE_SIZE}
-    if status:
-        params["status"] = status
+    for key, value in (("status", status), ("model", model), ("label", label)):
+        if value:
+            params[key] = value
     resp = await _api(request, "GET", "/v1/studies", params=params)
     if resp.status_code != 200:
         return _problem(request, resp)
     data = resp.json()
     total = int(data.get("total", 0))
     pages = max(1, math.ceil(total / PAGE_SIZE))
+    filters = urlencode({k: v for k, v in (("status", status), ("model", model), ("label", label)) if v})
     return _page(request, "studies.html", items=data.get("items", []), total=total, page=page, pages=pages,
-                 status=status, api_url="/v1/studies?" + urlencode(params),
+                 status=status, model=model or "", label=label or "", filters=filters,
+                 api_url="/v1/studies?" + urlencode(params),
                  statuses=("queued", "running", "done", "failed", "cancelled"))
 
 
@@ -230,6 +235,47 @@ def _positive_int(raw: str | None, default: int) -> int:
     except (TypeError, ValueError):
         return default
     return v if v >= 1 else default
+
+
+#: what the compare view puts side by side, per study
+_COMPARE_FIELDS = (("label", "label"), ("model_name", "model"), ("connectivities", "connectivities"),
+                   ("profiles", "profiles"), ("noise_scales", "noise scales"), ("status", "status"),
+                   ("created_at", "submitted"), ("best_connectivity", "best connectivity"))
+
+
+@router.get("/compare", response_class=HTMLResponse)
+async def compare_studies(request: Request):
+    """Two or more studies side by side: the same columns, the values that differ highlighted."""
+    ids = [i for v in request.query_params.getlist("ids") for i in v.replace(",", " ").split()]
+    if len(ids) < 2:
+        return _page(request, "error.html", 422, status=422, field="ids",
+                     message="choose two or more studies to compare (tick them in the study list)")
+    studies = []
+    for sid in ids[:8]:
+        study, problem = await _study(request, sid)
+        if problem is not None:
+            return problem
+        studies.append(study)
+    fields = []
+    for key, title in _COMPARE_FIELDS:
+        values = [s.get(key) for s in studies]
+        fields.append((title, values, len({json.dumps(v, sort_keys=True, default=str) for v in values}) > 1))
+    # per connectivity: the key figures of each study's row nearest noise scale 1
+    names: list[str] = []
+    per = []
+    for s in studies:
+        best = {str(r["connectivity"]): r for r in charts.per_connectivity(charts.usable_rows(s.get("rows") or []))}
+        per.append(best)
+        names += [n for n in best if n not in names]
+    figures = []
+    for name in names:
+        for key, title in (("two_qubit_gates", "2q gates"), ("depth", "depth"), ("state_fidelity", "state fidelity"),
+                           ("hellinger_fidelity", "Hellinger fidelity")):
+            values = [p.get(name, {}).get(key) for p in per]
+            if all(v is None for v in values):
+                continue
+            figures.append((f"{name}: {title}", values, len(set(values)) > 1))
+    return _page(request, "compare.html", studies=studies, fields=fields, figures=figures)
 
 
 # --- a study -----------------------------------------------------------------------------
