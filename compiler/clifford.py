@@ -99,6 +99,11 @@ __all__ = [
     "CliffordCircuit",
     "count_returns",
     "fidelity_from_counts",
+    "Tally",
+    "clifford_tally",
+    "figures_from_tally",
+    "budget_from_figures",
+    "part_seed",
     "clifford_figures",
     "clifford_budget",
     "clifford_threshold",
@@ -297,7 +302,7 @@ def _gate_twirl(profile: DeviceProfile, phys: Sequence[int]):
     twirl of ``toposcout.compiler.noise.gate_error`` (same depolarizing remainder, same
     relaxation over the gate's duration, same clipping)."""
     if len(phys) == 1:
-        r, dur = profile.qubit(phys[0]).one_qubit_error, _ns(profile.one_qubit_ns)
+        r, dur = profile.qubit(phys[0]).one_qubit_error, _ns(profile.qubit(phys[0]).one_qubit_ns)
     else:
         e = profile.edge(*phys)
         r, dur = e.two_qubit_error, _ns(e.two_qubit_ns)
@@ -371,6 +376,84 @@ def _sample_adaptive(twin: CliffordCircuit, rel_se: float, max_shots: int, seed:
     return shots, ret, read
 
 
+class Tally:
+    """Counts of one batch of shots of a twin (a *part*: shots with their own seed), to be
+    merged with the other parts of the same twin by ``+``: shots and returns add, which is
+    exactly one binomial count of the pooled shots when the parts' seeds give independent
+    streams. Plain picklable value (``to_dict`` / ``from_dict`` for JSON)."""
+
+    __slots__ = ("shots", "returns", "read_returns", "checked", "variables", "rounded", "seconds", "parts")
+
+    def __init__(self, shots: int, returns: int, read_returns: int, checked: int, variables: int, rounded: int,
+                 seconds: float = 0.0, parts: int = 1):
+        self.shots, self.returns, self.read_returns = int(shots), int(returns), int(read_returns)
+        self.checked, self.variables, self.rounded = int(checked), int(variables), int(rounded)
+        self.seconds, self.parts = float(seconds), int(parts)
+
+    @property
+    def scale(self) -> float:
+        return 2.0 ** (self.checked - self.variables)
+
+    def __add__(self, other: "Tally") -> "Tally":
+        if (self.checked, self.variables, self.rounded) != (other.checked, other.variables, other.rounded):
+            raise ToposcoutError("cannot merge the shots of two different Clifford twins", field="parts")
+        return Tally(self.shots + other.shots, self.returns + other.returns, self.read_returns + other.read_returns,
+                     self.checked, self.variables, self.rounded, self.seconds + other.seconds,
+                     self.parts + other.parts)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {k: getattr(self, k) for k in self.__slots__}
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "Tally":
+        return cls(**{k: d[k] for k in cls.__slots__})
+
+    def __eq__(self, other) -> bool:
+        return isinstance(other, Tally) and self.to_dict() == other.to_dict()
+
+    def __repr__(self) -> str:
+        return f"Tally({self.to_dict()})"
+
+
+def part_seed(seed: int, part: int) -> int:
+    """The stim seed of part ``part`` of a row seeded ``seed`` (part 0: ``seed`` itself, so a
+    row in one part is the unsplit row)."""
+    return int(seed) if part == 0 else (int(seed) * 1_000_003 + int(part)) % 2**63
+
+
+def clifford_tally(sched: Scheduled, profile: DeviceProfile, switches: NoiseSwitches = NoiseSwitches(), *,
+                   rel_se: float = 0.05, max_shots: int = 2_000_000, seed: int = 0) -> Tally:
+    """Shots of the twin until its relative standard error is at most ``rel_se`` (or
+    ``max_shots``): one part. A row split into P parts runs P of these with ``rel_se *
+    sqrt(P)``, ``max_shots / P`` and :func:`part_seed` seeds, and adds them up."""
+    _check_options(rel_se, max_shots)
+    t0 = time.perf_counter()
+    twin = clifford_circuit(sched, profile, switches)
+    shots, ret, read = _sample_adaptive(twin, rel_se, max_shots, seed)
+    return Tally(shots, ret, read, twin.checked, twin.variables, twin.rounded, time.perf_counter() - t0)
+
+
+def figures_from_tally(tally: Tally, rel_se: float) -> dict[str, Any]:
+    """The :data:`CLIFFORD_KEYS` dict of a (merged) tally."""
+    f, se, upper = fidelity_from_counts(tally.returns, tally.shots, tally.scale)
+    fr, ser, _upper_r = fidelity_from_counts(tally.read_returns, tally.shots, tally.scale)
+    return {
+        "clifford_state_fidelity": f,
+        "clifford_state_fidelity_se": None if math.isnan(se) else se,
+        "clifford_log10_state_fidelity": math.log10(f) if f > 0 else None,
+        "clifford_read_fidelity": fr,
+        "clifford_read_fidelity_se": None if math.isnan(ser) else ser,
+        "clifford_shots": tally.shots,
+        "clifford_returns": tally.returns,
+        "clifford_upper_bound": upper,
+        "clifford_rel_se_target": float(rel_se),
+        "clifford_rounded_rotations": tally.rounded,
+        "clifford_checked_stabilizers": tally.checked,
+        "clifford_seconds": tally.seconds,
+        "clifford_label": CLIFFORD_LABEL + (" (upper bound: no shot returned)" if upper else ""),
+    }
+
+
 def clifford_figures(sched: Scheduled, profile: DeviceProfile, switches: NoiseSwitches = NoiseSwitches(), *,
                      rel_se: float = 0.05, max_shots: int = 2_000_000, seed: int = 0) -> dict[str, Any]:
     """The Clifford estimate of one scheduled circuit: a flat dict with :data:`CLIFFORD_KEYS`.
@@ -380,27 +463,33 @@ def clifford_figures(sched: Scheduled, profile: DeviceProfile, switches: NoiseSw
     a readout flip of any variable as a failure. Both come from the same shots; their
     ``_se`` is the binomial standard error (NaN -> None when no shot returned: then the
     figure is an upper bound and ``clifford_upper_bound`` is True)."""
-    _check_options(rel_se, max_shots)
-    t0 = time.perf_counter()
-    twin = clifford_circuit(sched, profile, switches)
-    shots, ret, read = _sample_adaptive(twin, rel_se, max_shots, seed)
-    f, se, upper = fidelity_from_counts(ret, shots, twin.scale)
-    fr, ser, _upper_r = fidelity_from_counts(read, shots, twin.scale)
-    return {
-        "clifford_state_fidelity": f,
-        "clifford_state_fidelity_se": None if math.isnan(se) else se,
-        "clifford_log10_state_fidelity": math.log10(f) if f > 0 else None,
-        "clifford_read_fidelity": fr,
-        "clifford_read_fidelity_se": None if math.isnan(ser) else ser,
-        "clifford_shots": shots,
-        "clifford_returns": ret,
-        "clifford_upper_bound": upper,
-        "clifford_rel_se_target": float(rel_se),
-        "clifford_rounded_rotations": twin.rounded,
-        "clifford_checked_stabilizers": twin.checked,
-        "clifford_seconds": time.perf_counter() - t0,
-        "clifford_label": CLIFFORD_LABEL + (" (upper bound: no shot returned)" if upper else ""),
-    }
+    return figures_from_tally(clifford_tally(sched, profile, switches, rel_se=rel_se, max_shots=max_shots,
+                                             seed=seed), rel_se)
+
+
+def budget_from_figures(base: dict[str, Any], off: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """The ``clifford_budget_*`` fields from the all-on figures and those with each source
+    off (``off[s]`` for s in two_qubit, one_qubit, idle); see :func:`clifford_budget`. A
+    difference involving an upper bound (no shot returned) is not a figure: it is None, and
+    ``error_budget_note`` says which sources it concerns."""
+    out: dict[str, Any] = {}
+    bounded = []
+    for s in ("two_qubit", "one_qubit", "idle"):
+        if base["clifford_upper_bound"] or off[s]["clifford_upper_bound"]:
+            out[f"clifford_budget_state_{s}"] = out[f"clifford_budget_state_{s}_se"] = None
+            bounded.append(s)
+            continue
+        out[f"clifford_budget_state_{s}"] = off[s]["clifford_state_fidelity"] - base["clifford_state_fidelity"]
+        se_off = off[s]["clifford_state_fidelity_se"] or 0.0
+        se_on = base["clifford_state_fidelity_se"] or 0.0
+        out[f"clifford_budget_state_{s}_se"] = math.hypot(se_off, se_on)
+    out["clifford_budget_readout"] = (None if base["clifford_upper_bound"] else
+                                      base["clifford_state_fidelity"] - base["clifford_read_fidelity"])
+    if bounded:
+        out["error_budget_note"] = (f"clifford budget of {', '.join(bounded)} not computed: no shot returned with all "
+                                    "noise on" + ("" if base["clifford_upper_bound"] else " or with that source off")
+                                    + " (only upper bounds; a difference of bounds is not a figure)")
+    return out
 
 
 def clifford_budget(sched: Scheduled, profile: DeviceProfile, *, rel_se: float = 0.05,
@@ -411,15 +500,9 @@ def clifford_budget(sched: Scheduled, profile: DeviceProfile, *, rel_se: float =
     no new run). ``base``: the all-on :func:`clifford_figures` if already computed."""
     on = NoiseSwitches()
     base = base or clifford_figures(sched, profile, on, rel_se=rel_se, max_shots=max_shots, seed=seed)
-    out: dict[str, Any] = {}
-    for s in ("two_qubit", "one_qubit", "idle"):
-        off = clifford_figures(sched, profile, on.without(s), rel_se=rel_se, max_shots=max_shots, seed=seed)
-        out[f"clifford_budget_state_{s}"] = off["clifford_state_fidelity"] - base["clifford_state_fidelity"]
-        se_off = off["clifford_state_fidelity_se"] or 0.0
-        se_on = base["clifford_state_fidelity_se"] or 0.0
-        out[f"clifford_budget_state_{s}_se"] = math.hypot(se_off, se_on)
-    out["clifford_budget_readout"] = base["clifford_state_fidelity"] - base["clifford_read_fidelity"]
-    return out
+    off = {s: clifford_figures(sched, profile, on.without(s), rel_se=rel_se, max_shots=max_shots, seed=seed)
+           for s in ("two_qubit", "one_qubit", "idle")}
+    return budget_from_figures(base, off)
 
 
 # --- requirement ------------------------------------------------------------------------

@@ -52,6 +52,7 @@ __all__ = [
     "trajectory_cost",
     "Plan",
     "plan_method",
+    "plan_noise_row",
     "method_noise_row",
 ]
 
@@ -291,39 +292,61 @@ def _clifford_row(sched, profile, t: Mapping[str, Any]) -> dict[str, Any]:
     return out
 
 
+def plan_noise_row(out: dict[str, Any], compiled, ansatz, profile: DeviceProfile, t: Mapping[str, Any], *,
+                   max_parallel_threads: int = 0) -> tuple[Scheduled, Plan]:
+    """The head of :func:`method_noise_row`: schedule, the cheap figures and the method plan,
+    written into ``out`` as they are computed (so a ToposcoutError raised here leaves them
+    there). Also used by ``toposcout.compiler.parts`` to plan a row split across workers."""
+    budget = _memory_budget(t)
+    time_budget = _time_budget(t)
+    method = t.get("method") or "auto"
+    out.update({"method_requested": method, "method": None, "method_reason": None,
+                "noise_error": None, "noise_error_field": None, "profile": profile.name})
+    sched = schedule(compiled, profile)
+    out.update(_base_figures(sched, profile))
+
+    def pilot() -> float:
+        # a few trajectories at a low bond cap: if the bond stays below the cap the real run
+        # costs the same; if it reaches the cap, the cost is scaled by (cap ratio)^3 (MPS
+        # gates cost ~ chi^3), an estimate the row states
+        cliques = clique_indices(ansatz.model)
+        run = T.run_trajectories(sched, profile, cliques, n_trajectories=MPS_PILOT, method="matrix_product_state",
+                                 max_parallel_threads=max_parallel_threads, max_bond=MPS_PILOT_BOND)
+        per = run.seconds / max(run.n, 1)
+        if (run.bond_reached or 0) >= MPS_PILOT_BOND:
+            per *= (T.MPS_MAX_BOND / MPS_PILOT_BOND) ** 3
+        return per
+
+    plan = plan_method(sched, profile, method=method, memory_budget_bytes=budget, time_budget_seconds=time_budget,
+                       precision=t.get("precision"), trajectories=t.get("trajectories"), mps_pilot_seconds=pilot)
+    out.update(method=plan.method, method_reason=plan.reason,
+               time_estimate_seconds=None if plan.estimate_seconds is None else round(plan.estimate_seconds, 3))
+    if plan.error:
+        out.update(noise_error=plan.error, noise_error_field=plan.error_field)
+    return sched, plan
+
+
+def _memory_budget(t: Mapping[str, Any]) -> int:
+    return default_memory_budget_bytes() if t.get("memory_budget_bytes") is None else int(t["memory_budget_bytes"])
+
+
+def _time_budget(t: Mapping[str, Any]) -> float:
+    return float(t.get("time_budget_seconds") or DEFAULT_TIME_BUDGET_SECONDS)
+
+
 def method_noise_row(compiled, ansatz, profile: DeviceProfile, t: Mapping[str, Any], *,
                      max_parallel_threads: int = 0) -> dict[str, Any]:
     """The noise part of one row under the task's method options (never raises a
     ToposcoutError: a failure becomes ``noise_error`` and ``noise_error_field``, keeping the
     figures already computed)."""
     started = time.perf_counter()
-    budget = default_memory_budget_bytes() if t.get("memory_budget_bytes") is None else int(t["memory_budget_bytes"])
-    time_budget = float(t.get("time_budget_seconds") or DEFAULT_TIME_BUDGET_SECONDS)
-    method = t.get("method") or "auto"
-    out: dict[str, Any] = {"method_requested": method, "method": None, "method_reason": None,
+    budget = _memory_budget(t)
+    time_budget = _time_budget(t)
+    out: dict[str, Any] = {"method_requested": t.get("method") or "auto", "method": None, "method_reason": None,
                            "noise_error": None, "noise_error_field": None, "profile": profile.name}
     try:
-        sched = schedule(compiled, profile)
-        out.update(_base_figures(sched, profile))
-
-        def pilot() -> float:
-            # a few trajectories at a low bond cap: if the bond stays below the cap the real run
-            # costs the same; if it reaches the cap, the cost is scaled by (cap ratio)^3 (MPS
-            # gates cost ~ chi^3), an estimate the row states
-            cliques = clique_indices(ansatz.model)
-            run = T.run_trajectories(sched, profile, cliques, n_trajectories=MPS_PILOT, method="matrix_product_state",
-                                     max_parallel_threads=max_parallel_threads, max_bond=MPS_PILOT_BOND)
-            per = run.seconds / max(run.n, 1)
-            if (run.bond_reached or 0) >= MPS_PILOT_BOND:
-                per *= (T.MPS_MAX_BOND / MPS_PILOT_BOND) ** 3
-            return per
-
-        plan = plan_method(sched, profile, method=method, memory_budget_bytes=budget, time_budget_seconds=time_budget,
-                           precision=t.get("precision"), trajectories=t.get("trajectories"), mps_pilot_seconds=pilot)
-        out.update(method=plan.method, method_reason=plan.reason,
-                   time_estimate_seconds=None if plan.estimate_seconds is None else round(plan.estimate_seconds, 3))
+        sched, plan = plan_noise_row(out, compiled, ansatz, profile, t, max_parallel_threads=max_parallel_threads)
         if plan.error:
-            out.update(noise_error=plan.error, noise_error_field=plan.error_field)
             return out
         if plan.method == "density-matrix":
             out.update(noise_figures(compiled, ansatz, profile, memory_budget_bytes=budget,

@@ -201,8 +201,9 @@ def timed_target(circuit: QuantumCircuit, physical_qubits: Sequence[int], profil
             pairs.update({(a, b), (b, a)})
     for name, gate in _gate_objects(circuit).items():
         if gate.num_qubits == 1:
-            dur = 0 if name in VIRTUAL_GATES else _ns(profile.one_qubit_ns)
-            t.add_instruction(gate, {(q,): InstructionProperties(duration=dur * DT) for q in range(n)})
+            t.add_instruction(gate, {(q,): InstructionProperties(
+                duration=(0 if name in VIRTUAL_GATES else _ns(profile.qubit(physical_qubits[q]).one_qubit_ns)) * DT)
+                for q in range(n)})
         else:
             props = {}
             for a, b in sorted(pairs):
@@ -252,9 +253,9 @@ def gate_error(profile: DeviceProfile, phys: Sequence[int], name: str) -> Quantu
         return None
     if len(phys) == 1:
         (p,) = phys
-        r = profile.qubit(p).one_qubit_error
-        dur = _ns(profile.one_qubit_ns)
         qp = profile.qubit(p)
+        r = qp.one_qubit_error
+        dur = _ns(qp.one_qubit_ns)
         f_rel = relaxation_process_fidelity(qp.t1_us, qp.t2_us, dur)
         relax = _relax(profile, p, dur) if dur > 0 else None
     else:

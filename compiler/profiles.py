@@ -25,7 +25,7 @@ A profile file may start from a built-in profile with ``base = "NAME"`` and give
 differs (its tables are merged key by key onto the base's; see :func:`_with_base`).
 
 Per-qubit overrides (``[[qubit]]`` tables with ``index`` and any of ``t1_us``, ``t2_us``,
-``one_qubit_error``, ``p1_given_0``, ``p0_given_1``) and per-edge overrides (``[[edge]]``
+``one_qubit_error``, ``p1_given_0``, ``p0_given_1``, ``one_qubit_ns``) and per-edge overrides (``[[edge]]``
 tables with ``qubits = [a, b]`` and ``two_qubit_error`` and/or ``two_qubit_ns``) address
 *physical* qubits of the connectivity; an edge override applies to both directions.
 
@@ -89,7 +89,7 @@ PROFILE_NAMES: tuple[str, ...] = _builtin_names()
 #: the profile of a task that names none.
 DEFAULT_PROFILE = "superconducting"
 
-_QUBIT_KEYS = ("t1_us", "t2_us", "one_qubit_error", "p1_given_0", "p0_given_1")
+_QUBIT_KEYS = ("t1_us", "t2_us", "one_qubit_error", "p1_given_0", "p0_given_1", "one_qubit_ns")
 _EDGE_KEYS = ("two_qubit_error", "two_qubit_ns")
 
 
@@ -108,6 +108,7 @@ class QubitParams:
     one_qubit_error: float
     p1_given_0: float
     p0_given_1: float
+    one_qubit_ns: float = 0.0  # not scaled (a duration)
 
 
 @dataclass(frozen=True)
@@ -150,6 +151,7 @@ class DeviceProfile:
             "one_qubit_error": self.one_qubit_error,
             "p1_given_0": self.p1_given_0,
             "p0_given_1": self.p0_given_1,
+            "one_qubit_ns": self.one_qubit_ns,
         }
         for idx, items in self.qubit_overrides:
             if idx == q:
@@ -168,6 +170,7 @@ class DeviceProfile:
             one_qubit_error=min(raw["one_qubit_error"] * s, max_infidelity(1)),
             p1_given_0=min(raw["p1_given_0"] * s, 1.0),
             p0_given_1=min(raw["p0_given_1"] * s, 1.0),
+            one_qubit_ns=raw["one_qubit_ns"],
         )
 
     def edge(self, a: int, b: int) -> EdgeParams:
@@ -387,6 +390,9 @@ def _validate(p: DeviceProfile) -> None:
         names = {k: f"qubit[index={idx}].{k}" for k in _QUBIT_KEYS}
         _check_qubit_values(names, raw["t1_us"], raw["t2_us"], raw["one_qubit_error"],
                             raw["p1_given_0"], raw["p0_given_1"])
+        if raw["one_qubit_ns"] < 0:
+            raise ProfileError(f"{names['one_qubit_ns']}: a duration must be >= 0 ns, got {raw['one_qubit_ns']}",
+                               field=names["one_qubit_ns"])
     for pair, items in p.edge_overrides:
         d = dict(items)
         where = f"edge[{pair[0]}-{pair[1]}]"

@@ -72,6 +72,22 @@ ROW_FIELDS: tuple[RowField, ...] = (
     _F("model", "model name", kind="str", group="task"),
     _F("family", "ansatz family (which clique subsets get a rotation)", kind="str", group="task"),
     _F("layers", "repetitions of the rotation block and single-qubit layer", "layers", "int", group="task"),
+    _F("angles_fitted", "true when this study fitted the angles to the target first (compare --fit, the API's fit "
+       "block); false otherwise (see angles_source)", kind="bool", short="fitted", group="task"),
+    _F("angles_source", "where the angles came from: fitted (by this study), model (the model file's parameters, "
+       "e.g. written by toposcout fit; seeded where it gives none) or seeded (the seeded generator)", kind="str",
+       group="task"),
+    _F("fit_loss", "loss the angles were fitted by: kl (exact target) or mmd (samples)", kind="str", group="task"),
+    _F("fit_loss_value", "final value of that loss after the fit (KL in nats, or unbiased MMD²)", "", group="task",
+       short="fit loss"),
+    _F("fit_key", "SHA-256 key of the fit (model, family, layers, loss, data, seed and optimiser options)",
+       kind="str", group="task"),
+    _F("fit_parameters", "the fitted angles in the model format's parameters shape (terms, rotations)",
+       kind="object", group="task"),
+    _F("fit_restart_losses", "final loss of each restart of the fit, in restart order", kind="list", group="task"),
+    _F("fit_curve", "the fit's loss after each iteration of its best restart", kind="list", group="task"),
+    _F("fit_seconds", "wall time of the fit in the worker (0 when memoised from an earlier row)", "s",
+       group="timing"),
     _F("seed", "transpiler seed of the kept compilation", kind="int", group="task"),
     _F("profile", "device profile whose typical values the noise model uses", kind="str", short="profile",
        group="task"),
@@ -111,6 +127,34 @@ ROW_FIELDS: tuple[RowField, ...] = (
     _F("structured_depth", "depth of the structured candidate (auto strategy)", "layers", "int",
        group="compile"),
     _F("auto_winner", "the candidate the auto strategy kept", kind="str", group="compile"),
+    _F("device", "device file whose chip and per-element figures the row uses", kind="str", short="device",
+       group="task"),
+    _F("placement_objective", "what placement optimised: errors (estimated success probability under the "
+       "per-qubit and per-coupler figures) or count (fewest two-qubit gates)", kind="str", short="placed by",
+       group="compile"),
+    _F("esp_error_placement", "ESP of the error-aware compilation (rows with per-element figures)", short="ESP err",
+       group="compile"),
+    _F("esp_count_placement", "ESP of the count-only compilation (rows with per-element figures)", short="ESP cnt",
+       group="compile"),
+    _F("placement_esp_gain", "esp_error_placement / esp_count_placement: what error-aware placement bought", "×",
+       group="compile"),
+    _F("chip_regions", "regions of the chip compiled and ranked by ESP (--regions)", "regions", "int",
+       group="compile"),
+    _F("chip_region_rank", "this row's region by ESP among chip_regions (0 = best)", kind="int", short="rank",
+       group="compile"),
+    _F("chip_region", "physical qubits this row's region uses", kind="list", group="compile"),
+    _F("chip_region_esp", "ESP of this row's region", short="ESP region", group="compile"),
+    _F("chip_region_esp_best", "ESP of the best region", group="compile"),
+    _F("chip_region_esp_median", "ESP of the median region", group="compile"),
+    _F("chip_region_esp_worst", "ESP of the worst region", group="compile"),
+    _F("chip_region_best", "physical qubits of the best region", kind="list", group="compile"),
+    _F("chip_region_median", "physical qubits of the median region", kind="list", group="compile"),
+    _F("chip_region_worst", "physical qubits of the worst region", kind="list", group="compile"),
+    _F("jitter_sigma", "log-normal sigma of the calibration-drift redraws (--jitter)", kind="float", group="noise"),
+    _F("jitter_samples", "redraws of the figures for the drift spread", "samples", "int", group="noise"),
+    _F("esp_jitter_median", "median ESP of the row's circuit over the redrawn figures", group="noise"),
+    _F("esp_jitter_p10", "10th percentile of the ESP over the redrawn figures", group="noise"),
+    _F("esp_jitter_p90", "90th percentile of the ESP over the redrawn figures", group="noise"),
     _F("compile_reused", "true when the compiled circuit was reused from an earlier row of the same study "
        "(noise-scale sweeps)", kind="bool", group="compile"),
     _F("state_fidelity", "⟨ψ|ρ|ψ⟩ of the pre-measurement state against the ideal one", "", short="F state", label="state fidelity"),
@@ -124,8 +168,8 @@ ROW_FIELDS: tuple[RowField, ...] = (
     _F("tvd", "total variation distance between noisy and ideal distributions", short="TVD"),
     _F("kl_ideal_noisy", "KL(ideal ‖ noisy); null when infinite", "nats", short="KL"),
     _F("mmd", "maximum mean discrepancy, mean of Gaussian kernels on the Hamming distance (σ = 0.5, 1, 2)"),
-    _F("kl_target_ideal", "KL(target ‖ ideal) with the model's factor tables as target", "nats"),
-    _F("kl_target_noisy", "KL(target ‖ noisy) with the model's factor tables as target", "nats"),
+    _F("kl_target_ideal", "KL(target ‖ ideal) with the model's factor tables as target", "nats", short="KL tgt ideal"),
+    _F("kl_target_noisy", "KL(target ‖ noisy) with the model's factor tables as target", "nats", short="KL tgt noisy"),
     _F("esp", "estimated success probability: product over operations of (1 − error), idle and readout included",
        short="ESP"),
     _F("esp_two_qubit", "the ESP factor of two-qubit gates"),
@@ -227,7 +271,10 @@ ROW_FIELDS: tuple[RowField, ...] = (
        group="timing"),
     _F("time_estimate_seconds", "time the chosen method was estimated to take, stated before it ran", "s",
        group="timing"),
-    _F("trajectory_seconds", "wall time of the trajectories (main run)", "s", group="timing"),
+    _F("trajectory_seconds", "wall time of the trajectories (main run; split rows: summed over the parts)", "s",
+       group="timing"),
+    _F("row_parts", "parts the row's trajectories or clifford shots were split into, to run on that many "
+       "workers at once (absent: one)", "parts", "int", group="timing"),
     _F("error", "null, or why this row failed (other rows still complete)", kind="str", group="outcome"),
     _F("error_field", "the input field or option the error is about", kind="str", group="outcome"),
     _F("noise_error", "null, or why the noise figures could not be computed (the compile figures stay), with "
@@ -253,12 +300,18 @@ DASHBOARD_COLUMNS: tuple[str, ...] = (
     "clique_hellinger_worst", "duration_us", "threshold_noise_scale")
 
 
+#: what a stored row carries besides the row itself (the store's bookkeeping): first in a CSV
+STORE_COLUMNS: tuple[str, ...] = ("task_index", "status", "cached")
+
+
 def csv_columns(rows: list[dict]) -> list[str]:
-    """CSV columns: the defined fields that occur in ``rows``, in definition order, then any others."""
+    """CSV columns: the store's bookkeeping columns, then the defined fields that occur in
+    ``rows`` in definition order, then any others."""
     seen = {k for r in rows for k in r}
+    lead = [k for k in STORE_COLUMNS if k in seen]
     known = [f.name for f in ROW_FIELDS if f.name in seen]
-    extra = sorted(k for k in dict.fromkeys(k for r in rows for k in r) if k not in FIELDS)
-    return known + extra
+    extra = sorted(k for k in seen if k not in FIELDS and k not in STORE_COLUMNS)
+    return lead + known + extra
 
 
 def markdown_table() -> str:

@@ -11,7 +11,19 @@ A task::
      "compile_only": False, "profile": "NAME" | {profile dict} | None, "noise_scale": 1.0,
      "memory_budget_bytes": None, "error_budget": True, "fidelity_target": None,
      "keep_circuit": False, "method": "auto", "time_budget_seconds": None, "trajectories": None,
-     "precision": None, "requirement_tolerance": None}
+     "precision": None, "requirement_tolerance": None, "device": None | {device dict}, "placement": None | "errors" | "count",
+     "regions": None | K, "region_rank": 0, "jitter": None | sigma, "jitter_samples": 100}
+
+With ``device`` (the normalised content of a device file, ``toposcout.compiler.devices``) the
+chip fixes the connectivity and its figures are the profile; ``placement``, ``regions`` and
+``jitter`` are described in ``toposcout.compiler.regions``.
+
+and optionally ``"fit": {"loss": "kl" | "mmd", "loss_value": x, "key": KEY}`` when the model's
+parameters were fitted before (``toposcout.compiler.fit``; the CLI's ``compare --fit``), or
+``"fit_request": {"loss", "restarts", "max_iter", "tol", "optimizer", "seed", "bandwidths",
+"samples"}`` to fit in the worker before compiling (the API's ``fit`` block; deterministic, so
+every worker finds the same angles; memoised per process). Either way the row says
+``angles_fitted`` and carries the fitted ``fit_parameters``.
 
 ``method`` picks how the noise figures are computed (``toposcout.compiler.methods``); when they
 cannot be computed the row keeps its compile figures and says why in ``noise_error``.
@@ -37,7 +49,7 @@ from dataclasses import replace
 from typing import Any, Iterable, Mapping, Sequence
 
 from toposcout.compiler.ansatz import FAMILIES, build_ansatz
-from toposcout.compiler.compile import STRATEGIES, compile_ansatz
+from toposcout.compiler.compile import STRATEGIES
 from toposcout.compiler.errors import CapacityError, ModelError, TargetError, ToposcoutError
 from toposcout.compiler.model import Limits, Model, parse_model
 from toposcout.compiler.options import LIMITS, requirement_target
@@ -66,6 +78,12 @@ TASK_DEFAULTS: dict[str, Any] = {
     "trajectories": None,
     "precision": None,
     "requirement_tolerance": None,
+    "device": None,
+    "placement": None,
+    "regions": None,
+    "region_rank": 0,
+    "jitter": None,
+    "jitter_samples": 100,
 }
 
 
@@ -151,7 +169,7 @@ def resolve_connectivities(connectivities: Sequence[str | Mapping[str, Any]] | N
 def normalise_task(task: Mapping[str, Any]) -> dict:
     """Fill defaults and normalise the model, so equal work has an equal key."""
     out = dict(TASK_DEFAULTS)
-    unknown = set(task) - set(TASK_DEFAULTS) - {"model", "connectivity"}
+    unknown = set(task) - set(TASK_DEFAULTS) - {"model", "connectivity", "fit", "fit_request"}
     if unknown:
         raise ModelError(f"unknown task fields {sorted(unknown)}", field=sorted(unknown)[0])
     out.update({k: v for k, v in task.items() if k != "model"})
@@ -175,16 +193,31 @@ def make_tasks(
     connectivities: Sequence[str | Mapping[str, Any]] | None = None,
     *,
     noise_scales: Iterable[float] | None = None,
+    regions_simulated: int = 3,
     **options: Any,
 ) -> list[dict]:
     """One task per (connectivity, profile, noise scale); options are task fields.
 
-    connectivities: default None: every built-in family, sized to the model.
+    connectivities: default None: every built-in family, sized to the model (with a
+        ``device`` option: the device's chip, and ``connectivities`` must be None).
     noise_scales: default None: one task per connectivity at ``options["noise_scale"]``.
     ``options["profile"]`` may be a list of profiles (names or dicts): one study, every profile.
+    regions_simulated: default 3; with ``regions`` = K, one task per rank 0..min(K, this)-1
+        (the best regions by ESP are the ones simulated).
     """
     m = model if isinstance(model, Model) else parse_model(dict(model), "json")
-    specs, _conns = resolve_connectivities(connectivities, m.num_variables)
+    device = None
+    if options.get("device") is not None:
+        from toposcout.compiler.devices import load_device
+
+        device = load_device(options["device"])
+        device.check_fits(m.num_variables)
+        options["device"] = device.to_dict()
+        connectivities = [{"family": "custom", "size": None, "edges": [list(e) for e in device.connectivity.edges]}]
+    if device is None:
+        specs, _conns = resolve_connectivities(connectivities, m.num_variables)
+    else:  # the device's chip is the one connectivity; run_task takes it from the device
+        specs = [connectivity_spec(c) for c in connectivities]
     scales = list(noise_scales) if noise_scales else [options.pop("noise_scale", 1.0)]
     given_profiles = options.get("profile")
     profiles = list(given_profiles) if isinstance(given_profiles, (list, tuple)) else [given_profiles]
@@ -218,14 +251,19 @@ def make_tasks(
             if est > budget:  # every row needs at least one qubit per variable: no row could run
                 raise CapacityError(f"method density-matrix: {capacity_message(m.num_variables, est, budget)}; "
                                     "or use method auto, trajectories or clifford", field="method")
+    ranks = range(min(options["regions"], max(1, regions_simulated))) if options.get("regions") else [None]
     tasks = []
     for spec in specs:
         for prof in profiles:
             for k, s in enumerate(scales):
-                t = {"model": m.to_dict(), "connectivity": spec, **options, "profile": prof, "noise_scale": float(s)}
-                if options.get("fidelity_target") is not None and k > 0:
-                    t["fidelity_target"] = None  # the threshold is searched once per connectivity and profile
-                tasks.append(t)
+                for r in ranks:
+                    t = {"model": m.to_dict(), "connectivity": spec, **options, "profile": prof,
+                         "noise_scale": float(s)}
+                    if r is not None:
+                        t["region_rank"] = r
+                    if options.get("fidelity_target") is not None and k > 0:
+                        t["fidelity_target"] = None  # the threshold is searched once per connectivity and profile
+                    tasks.append(t)
     return tasks
 
 
@@ -244,6 +282,9 @@ def _check_options(t: Mapping[str, Any]) -> None:
 
     check_method_options(t["method"], precision=t["precision"], trajectories=t["trajectories"],
                          time_budget_seconds=t["time_budget_seconds"])
+    from toposcout.compiler.regions import check_placement_options
+
+    check_placement_options(t)
     LIMITS["noise_scale"].check(t["noise_scale"])
 
 
@@ -264,18 +305,29 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         _check_options(t)
         model = parse_model(dict(t["model"]), "json", limits=limits)
         row["model"] = model.name
+        if t.get("fit_request"):
+            model, t["fit"], fit_row = _fitted(model, t)
+            row.update(fit_row)
         ansatz = build_ansatz(model, family=t["family"], layers=t["layers"], seed=t["seed"])
         st = ansatz.stats()
+        fit = t.get("fit") or {}
+        row.update(angles_fitted=bool(fit), fit_loss=fit.get("loss"), fit_loss_value=fit.get("loss_value"),
+                   fit_key=fit.get("key"),
+                   angles_source="fitted" if fit else "model" if model.parameters else "seeded")
+        if fit and "fit_parameters" not in row:
+            row["fit_parameters"] = model.parameters
         row.update(family=t["family"], layers=t["layers"], variables=model.num_variables,
                    terms=st["terms"], lower_bound_two_qubit=st["lower_bound_two_qubit"],
                    logical_cnots=st["cnots"], logical_depth=st["depth"])
-        conn = make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"],
-                                 name=spec.get("name"), positions=spec.get("positions"))
+        conn, device_name = task_connectivity(t, model, spec)
+        if device_name is not None:
+            row["device"] = device_name
         gate_set = get_gate_set(t["gate_set"])
         row["connectivity"] = conn.name
         row["connectivity_family"] = conn.family
-        compiled, reused = _compiled(ansatz, conn, gate_set, t, limits)
+        (compiled, placed), reused = _compiled(ansatz, conn, gate_set, t, limits)
         row["compile_reused"] = reused
+        row.update(placed)
         fig = compiled.figures()
         fig["layout"] = {v: p for v, p in zip(model.variables, compiled.initial_layout)}
         fig["final_layout"] = {v: p for v, p in zip(model.variables, compiled.final_layout)}
@@ -291,6 +343,11 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
             row.update(method=None, method_reason="compile-only: no noise simulation")
         else:
             row.update(_noise_row(compiled, ansatz, t))
+        if t["jitter"] is not None:
+            from toposcout.compiler.regions import jitter_figures
+
+            row.update(jitter_figures(compiled, _profile(t["profile"], t["noise_scale"]), float(t["jitter"]),
+                                      int(t["jitter_samples"]), seed=int(t["seed"])))
     except ToposcoutError as exc:
         row["error"] = str(exc)
         row["error_field"] = exc.field
@@ -305,19 +362,73 @@ _COMPILED: "OrderedDict[str, Any]" = OrderedDict()
 _COMPILED_SIZE = 8
 
 
+def task_connectivity(t: dict[str, Any], model, spec: Mapping[str, Any]):
+    """(connectivity, device name or None) of a task; a device's figures become ``t["profile"]``."""
+    if t.get("device") is None:
+        return make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"],
+                                 name=spec.get("name"), positions=spec.get("positions")), None
+    from toposcout.compiler.devices import parse_device  # only device tasks need the device reader
+
+    dev = parse_device(t["device"])
+    dev.check_fits(model.num_variables)
+    t["profile"] = dev.profile.to_dict()  # the chip's figures are the row's profile
+    return dev.connectivity, dev.name
+
+
 def _compiled(ansatz, conn, gate_set, t: Mapping[str, Any], limits) -> tuple[Any, bool]:
+    """((compiled, placement fields), reused); see ``toposcout.compiler.regions``."""
+    from toposcout.compiler.regions import has_per_element, placed_compilation
+
+    profile = _profile(t["profile"], t["noise_scale"])
+    # the profile decides the compilation only under error-aware placement or a comparison of both
+    aware = has_per_element(profile) or t["placement"] == "errors"
     key = json.dumps({"model": ansatz.model.to_dict(), "family": t["family"], "layers": t["layers"],
                       "seed": t["seed"], "connectivity": conn.to_dict(), "gate_set": t["gate_set"],
-                      "strategy": t["strategy"], "seeds": t["seeds"], "limits": repr(limits), "version": __version__},
+                      "strategy": t["strategy"], "seeds": t["seeds"], "limits": repr(limits), "version": __version__,
+                      "placement": t["placement"], "profile": profile.to_dict() if aware else None,
+                      "regions": t["regions"], "region_rank": t["region_rank"]},
                      sort_keys=True, default=str)
     if key in _COMPILED:
         _COMPILED.move_to_end(key)
         return _COMPILED[key], True
-    compiled = compile_ansatz(ansatz, conn, gate_set, strategy=t["strategy"], seeds=t["seeds"])
+    compiled = placed_compilation(ansatz, conn, gate_set, t, profile)
     _COMPILED[key] = compiled
     while len(_COMPILED) > _COMPILED_SIZE:
         _COMPILED.popitem(last=False)
     return compiled, False
+
+
+#: fits of the last tasks run in this process, by fit key (a memo of a deterministic function)
+_FITTED: "OrderedDict[str, Any]" = OrderedDict()
+
+
+def _fitted(model: Model, t: Mapping[str, Any]) -> tuple[Model, dict, dict]:
+    """Fit the task's model (its ``fit_request``) for its family and layers: (fitted model, fit, row fields)."""
+    import numpy as np
+
+    from toposcout.compiler.fit import MMD_BANDWIDTHS, fit_key, fit_model, with_parameters
+
+    req = dict(t["fit_request"])
+    samples = None if req.get("samples") is None else np.asarray(req["samples"], dtype=np.int64)
+    opts = dict(loss=req.get("loss", "kl"), restarts=req.get("restarts", 3), max_iter=req.get("max_iter", 500),
+                tol=req.get("tol", 1e-10), optimizer=req.get("optimizer", "lbfgs"), seed=req.get("seed", 0),
+                bandwidths=tuple(req.get("bandwidths") or MMD_BANDWIDTHS))
+    key = fit_key(model, family=t["family"], layers=t["layers"], samples=samples, **opts)
+    hit = key in _FITTED
+    if hit:
+        _FITTED.move_to_end(key)
+        result = _FITTED[key]
+    else:
+        result = fit_model(model, family=t["family"], layers=t["layers"], samples=samples, **opts)
+        _FITTED[key] = result
+        while len(_FITTED) > _COMPILED_SIZE:
+            _FITTED.popitem(last=False)
+    fit = {"loss": opts["loss"], "loss_value": result.loss, "key": key}
+    best = next((r for r in result.restarts if r.restart == result.best_restart), None)
+    fields = {"fit_parameters": result.parameters, "fit_restart_losses": [r.loss for r in result.restarts],
+              "fit_curve": list(best.curve) if best else [],
+              "fit_seconds": 0.0 if hit else round(result.seconds, 4)}
+    return with_parameters(model, result.parameters), fit, fields
 
 
 def _profile(spec: str | Mapping[str, Any] | None, noise_scale: float):

@@ -210,14 +210,18 @@ def run_trajectories(sched: Scheduled, profile: DeviceProfile, cliques: Sequence
                      ideal_mps=None, n_trajectories: int | None = None, precision: float | None = None,
                      max_trajectories: int = MAX_TRAJECTORIES, time_budget_seconds: float | None = None,
                      memory_budget_bytes: int = 4 * 2**30, seed: int = 0, max_parallel_threads: int = 0,
-                     method: str | None = None, max_bond: int = MPS_MAX_BOND) -> TrajectoryRun:
+                     method: str | None = None, max_bond: int = MPS_MAX_BOND,
+                     seed_offset: int = 0) -> TrajectoryRun:
     """Run trajectories in batches until ``n_trajectories`` are done, or (without it) until
     the state fidelity's standard error is below ``precision`` (default
     :data:`DEFAULT_PRECISION`), at most ``max_trajectories``, stopping early when
     ``time_budget_seconds`` would be exceeded by the next batch. ``cliques``: variable indices
     of each clique. The statevector path needs ``ideal_amplitudes``
     (``IdealState.amplitudes``), the MPS path ``ideal_mps`` (computed when None).
-    ``max_bond``: the MPS bond-dimension cap (a low cap makes a cheap cost pilot)."""
+    ``max_bond``: the MPS bond-dimension cap (a low cap makes a cheap cost pilot).
+    ``seed_offset``: trajectory k of this run takes the seed of trajectory ``seed_offset + k``
+    of the unsplit run, so parts of one row given offsets ``p * cap`` (cap: each part's
+    ``max_trajectories``) take consecutive, non-overlapping seed ranges."""
     n, k = sched.num_qubits, len(sched.measured)
     method = method or trajectory_method_for(n)
     if n_trajectories is None and precision is None:
@@ -269,7 +273,7 @@ def run_trajectories(sched: Scheduled, profile: DeviceProfile, cliques: Sequence
         t0 = time.perf_counter()
         # Aer seeds shot j of a run with seed_simulator + j: consecutive batches take
         # consecutive seed ranges so no trajectory repeats another
-        data = _run_shots(sim, circ, batch, (seed * 1_000_003 + len(fids)) % 2**31).data(0)
+        data = _run_shots(sim, circ, batch, (seed * 1_000_003 + seed_offset + len(fids)) % 2**31).data(0)
         for j in range(batch):
             g = len(fids) % GROUPS
             if method == "statevector":

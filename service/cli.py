@@ -43,11 +43,13 @@ def _parser() -> argparse.ArgumentParser:
                         f"custom:NAME=EDGEFILE; "
                         f"default: all built-in families")
     c.add_argument("--gate-set", default="cx", choices=GATE_SETS, help="native gate set (default cx)")
-    c.add_argument("--strategy", default="auto", choices=("generic", "structured", "auto"),
-                   help="compilation strategy (default auto: the better of generic and structured)")
+    c.add_argument("--strategy", default=None, choices=("generic", "structured", "auto"),
+                   help="compilation strategy (default auto: the better of generic and structured; with --device "
+                        "one row per generic and structured)")
     c.add_argument("--seeds", type=int, default=5,
                    help=f"transpiler seeds tried by generic, {LIMITS['seeds'].describe()} (default 5)")
-    c.add_argument("--family", default="clique", choices=("clique", "pairwise"), help="circuit family")
+    c.add_argument("--family", action="append", choices=("clique", "pairwise"),
+                   help="circuit family; repeat for rows of each (family, connectivity) (default clique)")
     c.add_argument("--layers", type=int, default=1,
                    help=f"repetitions of block + rotations, {LIMITS['layers'].describe()} (default 1)")
     c.add_argument("--seed", type=int, default=0, help="seed of the random angles (default 0)")
@@ -65,6 +67,19 @@ def _parser() -> argparse.ArgumentParser:
                    help="the requirement's bisection stops when its bracket (upper - lower) / upper is below this "
                         f"(default {DEFAULT_REQUIREMENT_TOLERANCE}); rows report the bracket")
     c.add_argument("--compile-only", action="store_true", help="skip the noise simulation")
+    c.add_argument("--device", metavar="FILE",
+                   help="a device file (TOML: chip, coordinates, per-qubit and per-coupler figures) or an example "
+                        "device name; fixes the connectivity and the profile")
+    c.add_argument("--placement", choices=("errors", "count"), default=None,
+                   help="placement objective: errors (highest estimated success probability under per-element "
+                        "figures; the default when there are any) or count (fewest two-qubit gates)")
+    c.add_argument("--regions", type=int, metavar="K",
+                   help="compile K placements spread over the chip, rank them by ESP, simulate the best 3")
+    c.add_argument("--jitter", type=float, metavar="SIGMA",
+                   help="redraw every error rate and coherence time log-normally (sigma) and report the ESP spread")
+    c.add_argument("--jitter-samples", type=int, default=100, metavar="N", help="redraws for --jitter (default 100)")
+    c.add_argument("--plot", metavar="FILE.svg",
+                   help="with --device: draw the chip shaded by error, with the best row's placement on top")
     c.add_argument("--method", default="auto", metavar="METHOD",
                    help="how noise figures are computed: auto (default: density-matrix within the memory budget, "
                         "else trajectories within the time budget, else clifford), density-matrix, trajectories, "
@@ -81,9 +96,24 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--csv", metavar="FILE", help="also write the rows as CSV")
     c.add_argument("--qasm-dir", metavar="DIR", help="write one .qasm (OpenQASM 3) and one .qpy per connectivity")
     c.add_argument("--workers", type=int, default=None, help="local worker processes (default: cores, at most 2)")
+    c.add_argument("--fit", action="store_true",
+                   help="fit each family's angles to the target first (options below; cached by model, family, "
+                        "layers, loss, data and seed), then run the study with the fitted angles")
+    _fit_arguments(c, compare=True)
     c.add_argument("--server", metavar="URL", help="run the study on a toposcout server instead")
     c.add_argument("--token", help="bearer token for --server (default: $TOPOSCOUT_TOKEN)")
     c.add_argument("--label", help="with --server: a label for the study (the study list shows and filters it)")
+
+    f = sub.add_parser("fit", help="fit a model's angles to its target (KL) or to samples (MMD)")
+    f.add_argument("model", help="model file: our JSON format, UAI (.uai) or networkx node-link JSON")
+    f.add_argument("--family", default="clique", choices=("clique", "pairwise"), help="circuit family")
+    f.add_argument("--layers", type=int, default=1, help="repetitions of block + rotations (default 1)")
+    f.add_argument("--seed", type=int, default=0, help="seed of the random starts (default 0)")
+    _fit_arguments(f, compare=False)
+    f.add_argument("--out", metavar="FILE", help="write the fitted model here (default: MODEL.fitted.json)")
+    f.add_argument("--in-place", action="store_true", help="write the fitted parameters into MODEL itself")
+    f.add_argument("--plot", metavar="FILE", help="the loss curve as a PNG or SVG file")
+    f.add_argument("--json", action="store_true", help="print the fit report as JSON")
 
     sub.add_parser("targets", help="list connectivities, gate sets and device profiles")
 
@@ -94,16 +124,146 @@ def _parser() -> argparse.ArgumentParser:
     sv.add_argument("--port", type=int, default=None, help="port (default 8000)")
     sv.add_argument("--allow-remote", action="store_true", default=None,
                     help="listen on a non-loopback address without tokens configured")
+    sv.add_argument("--workers", type=int, default=1, dest="api_workers", metavar="N",
+                    help="uvicorn API processes sharing the store (default 1); the compute worker processes "
+                         "are TOPOSCOUT_WORKERS")
 
-    w = sub.add_parser("worker", help="start Dask worker processes for a toposcout cluster")
-    w.add_argument("scheduler", help="the Dask scheduler, e.g. tcp://host:8786")
-    w.add_argument("--nworkers", type=int, default=1, help="worker processes, one task at a time each (default 1)")
+    w = sub.add_parser("worker", help="start worker processes: queue workers on a database, or Dask workers",
+                       description="With a database URL (sqlite:///..., postgresql+psycopg://...): a queue "
+                                   "worker that takes tasks from that store with a lease and runs them in "
+                                   "--nworkers compute processes (TOPOSCOUT_DASK_ADDRESS set: on that Dask "
+                                   "cluster). With a Dask scheduler address (tcp://host:8786): Dask workers "
+                                   "joining it.")
+    w.add_argument("scheduler", metavar="scheduler",
+                   help="a database URL (queue worker) or a Dask scheduler address tcp://host:8786 (Dask workers)")
+    w.add_argument("--nworkers", type=int, default=None,
+                   help="worker processes, one task at a time each (default: 1 for Dask; TOPOSCOUT_WORKERS "
+                        "for a queue worker)")
+    w.add_argument("--parent-pid", type=int, default=None, help=argparse.SUPPRESS)  # serve's own worker
     w.add_argument("--memory-limit", default="4GiB", help="memory limit per process, e.g. 4GiB (default 4GiB)")
     w.add_argument("--threads", type=int, default=None,
                    help="simulator (OpenMP) threads per process (default: cores / nworkers)")
     w.add_argument("--host", default=None, help="address to listen on (default: the scheduler's route)")
     w.add_argument("--name", default=None, help="worker name shown by the scheduler")
     return p
+
+
+def _fit_arguments(p: argparse.ArgumentParser, *, compare: bool) -> None:
+    pre = "with --fit: " if compare else ""
+    p.add_argument("--loss", default=None, metavar="kl|mmd",
+                   help=pre + "kl to the exact target of the factor tables, or mmd to --data (default: mmd with "
+                              "--data, else kl)")
+    p.add_argument("--data", metavar="FILE.csv", help=pre + "samples: one 0/1 column per variable, header = names")
+    p.add_argument("--kernel-bandwidths", type=float, nargs="+", metavar="SIGMA",
+                   help=pre + "MMD Gaussian kernel bandwidths over the Hamming distance (default 0.5 1 2)")
+    p.add_argument("--restarts", type=int, default=3, help=pre + "seeded random starts (default 3)")
+    p.add_argument("--max-iter", type=int, default=500, help=pre + "iterations per restart (default 500)")
+    p.add_argument("--tol", type=float, default=1e-10,
+                   help=pre + "stop a restart when the loss improves by less than tol*max(1,|loss|) (default 1e-10)")
+    p.add_argument("--optimizer", default="lbfgs", choices=("lbfgs", "adam"), help=pre + "default lbfgs (L-BFGS-B)")
+    if compare:
+        p.add_argument("--fit-cache", metavar="DIR", help="folder of cached fits (default ~/.cache/toposcout/fits)")
+        p.add_argument("--no-fit-cache", action="store_true", help="always fit again; cache nothing")
+
+
+_FIT_FLAGS = {"loss": "--loss", "data": "--data", "kernel_bandwidths": "--kernel-bandwidths",
+              "restarts": "--restarts", "max_iter": "--max-iter", "tol": "--tol", "optimizer": "--optimizer",
+              "layers": "--layers", "family": "--family", "factors": "--loss", "variables": "model"}
+
+
+def _fit_settings(args, model):
+    """The fit options of ``args`` checked (the option named in the error), samples read."""
+    from toposcout.service.fitting import FitSettings, read_samples
+
+    try:
+        samples = read_samples(args.data, model) if args.data else None
+        loss = args.loss or ("mmd" if args.data else "kl")
+        settings = FitSettings(loss=loss, layers=args.layers, restarts=args.restarts, max_iter=args.max_iter,
+                               tol=args.tol, optimizer=args.optimizer, seed=args.seed,
+                               bandwidths=tuple(args.kernel_bandwidths or FitSettings.bandwidths),
+                               samples=samples)
+        families = (args.family or ["clique"]) if not isinstance(args.family, str) else [args.family]
+        for fam in families:
+            settings.check(model, fam)
+    except ToposcoutError as exc:
+        field = exc.field or ""
+        if field.startswith("data"):
+            flag = f"--data {args.data}" if args.data else "--data"
+            raise ToposcoutError(f"{flag}: {exc}", field=field) from None
+        flag = _FIT_FLAGS.get(field, field)
+        if field == "factors" and not args.data:
+            raise ToposcoutError(f"{exc}; or give --data FILE.csv", field="--data") from None
+        raise ToposcoutError(f"{flag}: {exc}", field=flag) from None
+    return settings
+
+
+def _fit_progress(err, total: int, label: str = "fit"):
+    """A tqdm bar on a terminal showing the loss; returns (callback, close)."""
+    if not (hasattr(err, "isatty") and err.isatty()):
+        return None, lambda: None
+    from tqdm import tqdm
+
+    bar = tqdm(total=total, desc=label, unit="it", leave=False, file=err)
+
+    def cb(event):
+        bar.update(1)
+        bar.set_postfix(restart=event["restart"], loss=f"{event['loss']:.4g}", best=f"{event['best']:.4g}")
+
+    return cb, bar.close
+
+
+def _fit(args, out, err) -> int:
+    from toposcout.compiler.fit import fit_model, with_parameters
+    from toposcout.compiler.model import load_model
+    from toposcout.service.fitting import format_report, loss_curve_image
+
+    src = Path(args.model)
+    model = load_model(src)
+    if args.in_place and args.out:
+        raise ToposcoutError("give --out FILE or --in-place, not both", field="--out")
+    if args.in_place and src.suffix.lower() != ".json":
+        raise ToposcoutError("--in-place rewrites a JSON model; this input is not one (use --out FILE.json)",
+                             field="--in-place")
+    dest = src if args.in_place else Path(args.out) if args.out else src.with_name(src.stem + ".fitted.json")
+    if not args.in_place and dest.resolve() == src.resolve():
+        raise ToposcoutError("--out is the input file; use --in-place to overwrite it", field="--out")
+    if args.plot and Path(args.plot).suffix.lower() not in (".png", ".svg"):
+        raise ToposcoutError("--plot needs a .png or .svg file name", field="--plot")
+    settings = _fit_settings(args, model)
+    cb, close = _fit_progress(err, settings.restarts * settings.max_iter)
+    try:
+        result = fit_model(model, family=args.family, layers=settings.layers, loss=settings.loss,
+                           samples=settings.samples, bandwidths=settings.bandwidths, restarts=settings.restarts,
+                           max_iter=settings.max_iter, tol=settings.tol, optimizer=settings.optimizer,
+                           seed=settings.seed, progress=cb)
+    finally:
+        close()
+    report = result.report()
+    if result.interrupted:  # Ctrl-C: nothing is written; the best so far is reported
+        report["parameters"] = result.parameters
+        if args.json:
+            out.write(json.dumps(report, indent=1) + "\n")
+        else:
+            out.write(format_report(report) + "\n")
+            out.write("nothing written; best parameters so far:\n" + json.dumps(result.parameters) + "\n")
+        return 130
+    fitted = with_parameters(model, result.parameters)
+    text = json.dumps(fitted.to_dict(), indent=2) + "\n"
+    tmp = dest.with_name(dest.name + ".tmp")
+    tmp.write_text(text, encoding="utf-8")
+    tmp.replace(dest)
+    if args.plot:
+        Path(args.plot).write_bytes(loss_curve_image(report, Path(args.plot).suffix.lower()[1:]))
+    report["out"] = str(dest)
+    if args.json:
+        out.write(json.dumps(report, indent=1) + "\n")
+    else:
+        out.write(format_report(report) + "\n")
+        out.write(f"wrote {dest}\n")
+        if args.family != "clique" or settings.layers != 1:
+            out.write(f"(angles for --family {args.family} --layers {settings.layers}: run compare with the same "
+                      "options)\n")
+    return EXIT_OK
 
 
 def _bench_arguments(p: argparse.ArgumentParser) -> None:
@@ -156,8 +316,9 @@ def _compare(args, out, err) -> int:
         d = model.to_dict()
         d["max_order"] = args.max_order
         model = model.from_dict(d, limits=limits)
-    options: dict[str, Any] = dict(gate_set=args.gate_set, strategy=args.strategy, seeds=args.seeds,
-                                   family=args.family, layers=args.layers, seed=args.seed,
+    device = _device_options(args)
+    options: dict[str, Any] = dict(gate_set=args.gate_set, strategy=args.strategy or "auto", seeds=args.seeds,
+                                   layers=args.layers, seed=args.seed,
                                    compile_only=args.compile_only, profile=args.profile, method=args.method,
                                    time_budget_seconds=args.time_budget, trajectories=args.trajectories,
                                    precision=args.precision)
@@ -185,7 +346,49 @@ def _compare(args, out, err) -> int:
     if args.qasm_dir:
         options["keep_circuit"] = True  # the rows bring their compiled circuits for the files
     try:
-        tasks = make_tasks(model, args.connectivity, noise_scales=scales, **options)
+        if device is not None:
+            options.update(device=device.to_dict(), profile=None)
+            if args.gate_set == "cx" and "--gate-set" not in (args.argv or ()):
+                options["gate_set"] = device.native_gate
+        options.update(placement=args.placement, regions=args.regions, jitter=args.jitter,
+                       jitter_samples=args.jitter_samples)
+        # a device fixes the connectivity; with no --strategy its rows compare both strategies
+        strategies = [options["strategy"]] if args.strategy or device is None else ["generic", "structured"]
+        connectivities = None if device is not None else args.connectivity
+        families = args.family or ["clique"]
+
+        def build(**extra: Any) -> list[dict]:
+            return [t for st in strategies for t in make_tasks(model, connectivities, noise_scales=scales,
+                                                               **{**options, "strategy": st, **extra})]
+
+        if args.fit and args.server:  # the server fits (in its workers): the tasks carry the fit request
+            settings = _fit_settings(args, model)
+            request = {"loss": settings.loss, "restarts": settings.restarts, "max_iter": settings.max_iter,
+                       "tol": settings.tol, "optimizer": settings.optimizer, "seed": settings.seed,
+                       "bandwidths": list(settings.bandwidths),
+                       "samples": None if settings.samples is None else [int(x) for x in settings.samples]}
+            tasks = [t for fam in families for t in build(family=fam, fit_request=request)]
+        elif args.fit:
+            from toposcout.service.fitting import FitCache, default_cache_dir, fitted_tasks, format_report
+
+            settings = _fit_settings(args, model)
+            cache = FitCache(None if args.no_fit_cache else (args.fit_cache or default_cache_dir()))
+            cb, close = _fit_progress(err, settings.restarts * settings.max_iter * len(families), "fit")
+            tasks, reports = [], []
+            try:
+                for st in strategies:  # one fit per family: the cache answers the second strategy
+                    got, reps = fitted_tasks(model, connectivities, families, settings, cache, noise_scales=scales,
+                                             progress=(lambda fam, e: cb(e)) if cb else None,
+                                             **{**options, "strategy": st})
+                    tasks += got
+                    reports = reports or reps
+            finally:
+                close()
+            if not args.json:
+                for rep in reports:
+                    out.write(format_report(rep) + "\n")
+        else:
+            tasks = [t for fam in families for t in build(family=fam)]
     except ToposcoutError as exc:  # name the command-line option, not the task field
         flag = _FLAGS.get(exc.field or "")
         if flag is None:
@@ -219,11 +422,24 @@ def _compare(args, out, err) -> int:
     if args.csv:
         with open(args.csv, "w", newline="", encoding="utf-8") as fh:
             write_csv(rows, fh)
+    if args.plot and device is not None:
+        from toposcout.service.web.charts import device_svg
+
+        best = next((r for r in rows if not r.get("error")), None)
+        Path(args.plot).write_text(device_svg(device, best), encoding="utf-8")
     if args.json:
         write_json(model.name, rows, out)
     else:
-        out.write(f"model {model.name}: {model.num_variables} variables, {len(model.cliques)} cliques\n")
+        out.write(f"model {model.name}: {model.num_variables} variables, {len(model.cliques)} cliques"
+                  + (f"; device {device.name}: {device.num_qubits} qubits, {len(device.connectivity.edges)} couplers"
+                     if device is not None else "") + "\n")
         out.write(rows_table(rows) + "\n")
+        for r in rows:
+            if r.get("chip_regions") and r.get("chip_region_rank") == 0:
+                out.write(f"regions ({r.get('strategy')}): {r['chip_regions']} compiled and ranked by ESP; best "
+                          f"{r['chip_region_esp_best']:.4g} on qubits {r['chip_region_best']}, median "
+                          f"{r['chip_region_esp_median']:.4g} on {r['chip_region_median']}, worst "
+                          f"{r['chip_region_esp_worst']:.4g} on {r['chip_region_worst']}\n")
         if any("state_fidelity" in r or r.get("method") for r in rows):
             out.write(CAUTION + "\n")
     failed = [r for r in rows if r.get("error")]
@@ -236,6 +452,37 @@ _FLAGS = {"seeds": "--seeds", "layers": "--layers", "seed": "--seed", "fidelity_
           "noise_scale": "--noise-scale", "profile": "--profile", "strategy": "--strategy", "family": "--family",
           "gate_set": "--gate-set", "method": "--method", "precision": "--precision", "trajectories": "--trajectories",
           "time_budget_seconds": "--time-budget", "connectivity": "--connectivity"}
+
+
+def _device_options(args):
+    """The device of ``--device`` (None without), after the placement options' checks; every
+    error names its option."""
+    from toposcout.compiler.regions import check_placement_options
+
+    try:
+        check_placement_options({"placement": args.placement, "regions": args.regions, "jitter": args.jitter,
+                                 "jitter_samples": args.jitter_samples})
+    except ToposcoutError as exc:
+        flag = "--" + (exc.field or "").replace("_", "-")
+        raise ToposcoutError(f"{flag}: {exc}", field=flag) from None
+    if args.device is None:
+        if args.plot:
+            raise ToposcoutError("--plot draws a device: give --device FILE", field="--plot")
+        return None
+    if args.connectivity:
+        raise ToposcoutError("--device fixes the connectivity: give either --device or --connectivity",
+                             field="--connectivity")
+    if args.profile:
+        raise ToposcoutError("--device carries its own figures (and base profile): give either --device or "
+                             "--profile", field="--profile")
+    if args.plot and not args.plot.endswith(".svg"):
+        raise ToposcoutError(f"--plot: {args.plot!r} must end in .svg", field="--plot")
+    from toposcout.compiler.devices import load_device
+
+    try:
+        return load_device(args.device)
+    except ToposcoutError as exc:
+        raise ToposcoutError(f"--device {args.device}: {exc}", field=exc.field) from None
 
 
 def _write_circuits(tasks: list[dict], rows: list[dict], folder: Path) -> None:
@@ -267,6 +514,19 @@ def _write_circuits(tasks: list[dict], rows: list[dict], folder: Path) -> None:
         (folder / f"{name}.qpy").write_bytes(raw)
 
 
+def _worker(args) -> int:
+    from toposcout.service.execution.queue import is_database_url, run_queue_worker
+
+    if args.nworkers is not None and args.nworkers < 1:
+        raise ToposcoutError("--nworkers must be at least 1", field="nworkers")
+    if is_database_url(args.scheduler):
+        return run_queue_worker(args.scheduler, slots=args.nworkers, parent_pid=args.parent_pid)
+    from toposcout.service.execution.dask import run_worker
+
+    return run_worker(args.scheduler, nworkers=args.nworkers or 1, memory_limit=args.memory_limit,
+                      threads=args.threads, host=args.host, name=args.name)
+
+
 def _targets(out) -> int:
     from toposcout.compiler.targets import connectivity_catalogue, gate_set_catalogue
 
@@ -283,6 +543,12 @@ def _targets(out) -> int:
     out.write("\nDevice profiles (--profile NAME or a TOML file; typical values from memory, not a real device):\n")
     for name, desc in profile_catalogue().items():
         out.write(f"  {name:<20} {desc}\n")
+    from toposcout.compiler.devices import DEVICE_NAMES, load_device
+
+    out.write("\nExample devices (--device NAME or a device file; invented chips, typical values from memory):\n")
+    for name in DEVICE_NAMES:
+        d = load_device(name)
+        out.write(f"  {name:<20} {d.description} [{d.num_qubits} qubits, {len(d.connectivity.edges)} couplers]\n")
     return EXIT_OK
 
 
@@ -292,6 +558,7 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
     err = err or sys.stderr
     try:
         args = _parser().parse_args(argv)
+        args.argv = list(sys.argv[1:] if argv is None else argv)
     except SystemExit as exc:
         if isinstance(exc.code, str):
             err.write(exc.code + "\n")
@@ -300,6 +567,8 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
     try:
         if args.command == "compare":
             return _compare(args, out, err)
+        if args.command == "fit":
+            return _fit(args, out, err)
         if args.command == "targets":
             return _targets(out)
         if args.command == "bench":
@@ -307,12 +576,10 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
         if args.command == "serve":
             from toposcout.service.api.server import serve
 
-            return serve(host=args.host, port=args.port, allow_remote=args.allow_remote, err=err)
+            return serve(host=args.host, port=args.port, allow_remote=args.allow_remote,
+                         api_workers=args.api_workers, err=err)
         if args.command == "worker":
-            from toposcout.service.execution.dask import run_worker
-
-            return run_worker(args.scheduler, nworkers=args.nworkers, memory_limit=args.memory_limit,
-                              threads=args.threads, host=args.host, name=args.name)
+            return _worker(args)
     except ToposcoutError as exc:
         where = f" [{exc.field}]" if exc.field else ""
         err.write(f"toposcout: error{where}: {exc}\n")

@@ -243,6 +243,40 @@ class Client:
             body["connectivities"] = list(connectivities)
         return self._json("POST", "/v1/compile", json_body=body)["rows"]
 
+    def fit(self, model: Any, *, family: str = "clique", layers: int = 1, seed: int = 0, loss: str = "kl",
+            data: str | Path | None = None, restarts: int = 3, max_iter: int = 500, tol: float = 1e-10,
+            optimizer: str = "lbfgs", kernel_bandwidths: Sequence[float] | None = None,
+            timeout: float | None = None) -> dict:
+        """Fit the model's angles on the server; returns ``{"model", "parameters", "loss", "loss_value",
+        "restart_losses", "key"}`` (``model``: the JSON model with the fitted parameters written in).
+
+        It runs as a compile-only study on the all-to-all connectivity with a ``fit`` block, so the
+        fit happens in a worker process (and a cancelled study stops it).
+        data: CSV text or a path of a CSV file (header = variable names, 0/1 rows) for ``loss="mmd"``.
+        """
+        block: dict[str, Any] = {"loss": loss, "restarts": restarts, "max_iter": max_iter, "tol": tol,
+                                 "optimizer": optimizer}
+        if kernel_bandwidths is not None:
+            block["kernel_bandwidths"] = [float(b) for b in kernel_bandwidths]
+        if data is not None:
+            text = str(data)
+            if isinstance(data, Path) or ("\n" not in text and Path(text).is_file()):
+                text = Path(text).read_text(encoding="utf-8")
+            block["data"] = text
+        h = self.submit(model, ["all-to-all"], compile_only=True, seeds=1, strategy="generic", family=family,
+                        layers=layers, seed=seed, fit=block)
+        h.wait(progress=False, timeout=timeout)
+        rows = h.row_dicts()
+        if not rows or rows[0].get("error"):
+            why = rows[0].get("error") if rows else f"the study ended {h.status}"
+            raise ToposcoutClientError(f"the fit failed: {why}", field=rows[0].get("error_field") if rows else None)
+        row = rows[0]
+        study_model = dict((h.refresh().get("request") or {}).get("model") or {})
+        fitted = {**study_model, "parameters": row["fit_parameters"]} if study_model else None
+        return {"model": fitted, "parameters": row["fit_parameters"], "loss": row["fit_loss"],
+                "loss_value": row["fit_loss_value"], "restart_losses": row.get("fit_restart_losses"),
+                "key": row.get("fit_key")}
+
     def run_tasks(self, model: Any, tasks: Sequence[Mapping[str, Any]], *, progress: bool = False,
                   timeout: float | None = None, on_submit: Any = None, label: str | None = None) -> list[dict]:
         """Run the study that ``toposcout.compiler.study.make_tasks`` built as ``tasks`` on the server.
@@ -298,7 +332,26 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
             body[key] = first[key]
     if profile is not None:
         body["profile"] = profile
+    families = list(dict.fromkeys(t.get("family", "clique") for t in tasks))
+    if len(families) > 1:
+        body["families"] = families
+    if first.get("fit_request"):
+        body["fit"] = fit_block(first["fit_request"], first["model"]["variables"])
     return body
+
+
+def fit_block(fit_request: Mapping[str, Any], variables: Sequence[str]) -> dict:
+    """A task's ``fit_request`` as the API's ``fit`` block (samples written back as CSV text)."""
+    block: dict[str, Any] = {k: fit_request[k] for k in ("loss", "restarts", "max_iter", "tol", "optimizer")
+                             if k in fit_request}
+    if fit_request.get("bandwidths"):
+        block["kernel_bandwidths"] = [float(b) for b in fit_request["bandwidths"]]
+    samples = fit_request.get("samples")
+    if samples is not None:
+        n = len(variables)
+        lines = [",".join(variables)] + [",".join(str((int(x) >> j) & 1) for j in range(n)) for x in samples]
+        block["data"] = "\n".join(lines) + "\n"
+    return block
 
 
 def _error_from(resp: httpx.Response, url: str) -> ToposcoutClientError:

@@ -32,17 +32,35 @@ def _as_model(model: Model | Mapping[str, Any] | str | Path) -> Model:
 def compare_rows(model: Model | Mapping[str, Any] | str | Path,
                  connectivities: Sequence[str | Mapping[str, Any]] | None = None, *,
                  noise_scales: Sequence[float] | None = None, workers: int | None = None, progress: bool = False,
+                 families: Sequence[str] | None = None, fit: bool | Mapping[str, Any] | None = None,
                  **options: Any) -> list[dict]:
     """The rows of a study of ``model`` on ``connectivities``, sorted as the CLI table sorts them.
 
     connectivities: default None: every built-in family, sized to the model.
     noise_scales: default None: scale 1 only.
     workers: default None: in-process for compile-only studies, else up to 2 worker processes.
+    families: default None: ``options["family"]`` only; several: rows for each (family, connectivity).
+    fit: default None: the angles as given; True or ``{"loss", "restarts", "max_iter", "tol", "optimizer",
+        "bandwidths", "samples"}``: fit each family's angles first (``toposcout.compiler.fit``).
     options: task fields (``gate_set``, ``strategy``, ``seeds``, ``family``, ``layers``, ``seed``,
         ``compile_only``, ``profile``, ``fidelity_target``, ...).
     """
     m = _as_model(model)
-    tasks = make_tasks(m, connectivities, noise_scales=noise_scales, **options)
+    if fit:  # fitted in the worker processes (toposcout.compiler.study: fit_request), memoised per process
+        req = {"loss": "kl", "seed": options.get("seed", 0), **(dict(fit) if isinstance(fit, Mapping) else {})}
+        if req.get("samples") is not None:
+            req["samples"] = [int(x) for x in req["samples"]]
+        from toposcout.compiler.fit import check_fit_options
+
+        for fam in families or [options.get("family", "clique")]:
+            check_fit_options(m, family=fam, layers=options.get("layers", 1), loss=req["loss"],
+                              samples=req.get("samples"), restarts=req.get("restarts", 3),
+                              max_iter=req.get("max_iter", 500), optimizer=req.get("optimizer", "lbfgs"),
+                              tol=req.get("tol", 1e-10))
+        options["fit_request"] = req
+    tasks = []
+    for fam in families or [options.pop("family", "clique")]:
+        tasks += make_tasks(m, connectivities, noise_scales=noise_scales, **{**options, "family": fam})
     return sort_rows(run_tasks(tasks, workers=workers, progress=progress))
 
 

@@ -31,11 +31,26 @@ def rows_table(rows: list[dict]) -> str:
         names.append("_clique")
     if any(r.get("clifford_state_fidelity") is not None for r in rows):
         names.append("_clifford")
+    if len({r.get("family") for r in rows if r.get("family")}) > 1:  # a family comparison: side by side
+        names.insert(1, "family")
+    if any(r.get("angles_fitted") for r in rows):
+        names += ["angles_fitted", "fit_loss_value"]
+    if any(r.get("kl_target_ideal") is not None for r in rows):
+        names += ["kl_target_ideal", "kl_target_noisy"]
     if any(r.get("method") for r in rows):
         names.append("method")
     if any(r.get("threshold_two_qubit_error") is not None for r in rows):
         names += TABLE_COLUMNS["requirement"]
-    composite = {"_budget": "loss 2q/1q/idle/ro", "_clique": "F clique mean/min", "_clifford": "F clifford (est.)"}
+    if any(r.get("device") or r.get("esp_count_placement") is not None for r in rows):
+        names.append("placement_objective")
+    if any(r.get("esp_count_placement") is not None for r in rows):
+        names += ["esp_count_placement", "esp_error_placement"]
+    if any(r.get("chip_regions") for r in rows):
+        names += ["chip_region_rank", "chip_region_esp"]
+    if any(r.get("esp_jitter_median") is not None for r in rows):
+        names.append("_jitter")
+    composite = {"_budget": "loss 2q/1q/idle/ro", "_clique": "F clique mean/min", "_clifford": "F clifford (est.)",
+                 "_jitter": "ESP drift p10/med/p90"}
     cols = [(composite[k], k) if k in composite else (FIELDS[k].header, k) for k in names]
 
     def cell(r: dict, key: str) -> str:
@@ -45,6 +60,9 @@ def rows_table(rows: list[dict]) -> str:
         if key == "_clique":
             a, b = r.get("clique_hellinger_mean"), r.get("clique_hellinger_min")
             return "" if a is None else f"{a:.4g}/{b:.4g}"
+        if key == "_jitter":
+            a, b, c = (r.get(k) for k in ("esp_jitter_p10", "esp_jitter_median", "esp_jitter_p90"))
+            return "" if b is None else f"{a:.3g}/{b:.3g}/{c:.3g}"
         if key == "_clifford":
             f, se = r.get("clifford_state_fidelity"), r.get("clifford_state_fidelity_se")
             if f is None:
@@ -103,7 +121,11 @@ def _sort_key(r: dict):
 
 
 def sort_rows(rows: list[dict]) -> list[dict]:
-    """Rows in the table's order: errors last, then by two-qubit count, depth, connectivity, scale."""
+    """Rows in the table's order: errors last, then by two-qubit count, depth, connectivity, scale.
+    With several families (a family comparison), the families of one connectivity sit together."""
+    if len({r.get("family") for r in rows if r.get("family")}) > 1:
+        return sorted(rows, key=lambda r: (r.get("error") is not None, str(r.get("connectivity")),
+                                           r.get("noise_scale") or 0, str(r.get("family"))))
     return sorted(rows, key=_sort_key)
 
 

@@ -57,7 +57,13 @@ class Settings(BaseSettings):
     compile_time_limit_seconds: float = Field(default=60.0, gt=0,
                                               description="wall time of one POST /v1/compile request")
     dask_address: str | None = Field(default=None, description="tcp://host:8786 of a Dask scheduler")
-    recover_on_start: bool = Field(default=True, description="resubmit unfinished studies at start-up")
+    run_workers: bool = Field(default=True, description="the server starts a queue worker process of its own "
+                              "(off: only separate `toposcout worker DATABASE_URL` processes do the work)")
+    lease_seconds: float = Field(default=15.0, ge=1, le=3600,
+                                 description="how long a queue worker's claim on a task holds without renewal; "
+                                 "a killed worker's task is taken again after it")
+    max_task_attempts: int = Field(default=4, ge=1, le=100,
+                                   description="claims of one task (workers dying) before its row fails")
 
     # --- guards
     max_body_bytes: int = Field(default=4 * 2**20, ge=1024, description="largest request body (413 above)")
@@ -70,8 +76,12 @@ class Settings(BaseSettings):
     max_connectivities: int = Field(default=12, ge=1, description="targets per study")
     max_noise_scales: int = Field(default=16, ge=1, description="noise scales per study")
     max_compile_targets: int = Field(default=6, ge=1, description="targets per POST /v1/compile")
+    max_fit_variables: int = Field(default=16, ge=1, le=20,
+                                   description="largest model a study's fit block may fit (exact, 2**n amplitudes)")
     max_active_studies_per_owner: int = Field(default=8, ge=1,
                                               description="queued+running studies per token (429 above)")
+    max_queued_tasks: int = Field(default=2000, ge=1,
+                                  description="pending tasks of all studies together (429 with Retry-After above)")
     memory_budget_bytes: int | None = Field(default=None, ge=1,
                                             description="bytes one simulation may use (default: half the RAM)")
 

@@ -42,8 +42,25 @@ NOT_COMPARED = {"compile_seconds", "row_seconds", "simulate_seconds", "threshold
 
 # ---------------------------------------------------------------------------------------------- models
 
-@pytest.fixture(params=[p.name for p in EXAMPLE_FILES])
+def _variables(path: Path) -> int:
+    from toposcout.compiler.model import load_model
+
+    return load_model(path).num_variables
+
+
+#: examples small enough for an exact simulation in a test (the large ones are for benchmarks)
+SMALL_EXAMPLE_FILES = [p for p in EXAMPLE_FILES if _variables(p) <= 12]
+
+
+@pytest.fixture(params=[p.name for p in SMALL_EXAMPLE_FILES])
 def example_path(request) -> Path:
+    """Each example model small enough for an exact simulation (at most 12 variables)."""
+    return EXAMPLES / request.param
+
+
+@pytest.fixture(params=[p.name for p in EXAMPLE_FILES])
+def any_example_path(request) -> Path:
+    """Each example model, the large ones included."""
     return EXAMPLES / request.param
 
 
@@ -266,11 +283,12 @@ class Server:
     """``toposcout serve`` in a child process of its own group on 127.0.0.1, as a user starts it.
 
     folder: the data folder (SQLite store unless ``database_url``); tokens: ``TOPOSCOUT_TOKENS``;
-    env: more ``TOPOSCOUT_*`` settings. Each start logs to its own ``server-PORT.log``."""
+    env: more ``TOPOSCOUT_*`` settings; args: more ``serve`` options. Each start logs to its own ``server-PORT.log``."""
 
     def __init__(self, folder: Path, *, tokens: str | None = None, workers: int = 2, env: dict | None = None,
-                 port: int | None = None, database_url: str | None = None):
+                 port: int | None = None, database_url: str | None = None, args: list[str] | None = None):
         folder.mkdir(parents=True, exist_ok=True)
+        self.args = list(args or ())  # more `toposcout serve` options, e.g. ["--workers", "2"]
         self.folder = folder
         self.port = port or _free_port()
         self.url = f"http://127.0.0.1:{self.port}"
@@ -287,7 +305,7 @@ class Server:
     def start(self, timeout: float = 90.0) -> "Server":
         with open(self.log_path, "ab") as log:
             self.proc = subprocess.Popen([sys.executable, "-m", "toposcout.service.cli", "serve", "--port",
-                                          str(self.port)], cwd=self.folder, env=self.env, stdout=log,
+                                          str(self.port), *self.args], cwd=self.folder, env=self.env, stdout=log,
                                          stderr=subprocess.STDOUT, start_new_session=True)
         end = time.monotonic() + timeout
         while time.monotonic() < end:
@@ -339,7 +357,7 @@ class Server:
 
 @pytest.fixture(scope="session")
 def start_server() -> Iterator[Callable[..., Server]]:
-    """``start_server(folder, tokens=..., workers=2, env=..., port=..., database_url=...)``: a running
+    """``start_server(folder, tokens=..., workers=2, env=..., port=..., database_url=..., args=...)``: a running
     :class:`Server`; stop it yourself (``with start_server(...) as srv``) or it stops at the end."""
     started: list[Server] = []
 

@@ -168,7 +168,8 @@ def test_study_list_loads(page, server):
     assert resp.status == 200
     assert page.locator("h1").inner_text() == "Studies"
     assert page.locator("#studies thead th").all_inner_texts() == [
-        "Model", "Status", "Progress", "Owner", "Submitted", "Best connectivity"]
+        "compare", "Label", "Model", "Connectivities", "Profiles", "Noise scales", "Status", "Progress", "Owner",
+        "Submitted", "Best connectivity"]
     _check_accessible(page)
     _shot(page, "study-list")
 
@@ -178,9 +179,10 @@ def test_submitted_study_appears_and_finishes_without_reload(submitted, server, 
     page.goto(server.url + "/")
     row = page.locator(f"#studies tbody tr[data-id='{submitted['id']}']")
     assert row.locator(".status").inner_text() == "done"
-    cells = row.locator("td").all_inner_texts()
-    assert cells[0] == "pond-sensors" and cells[3] == "carol"
-    assert cells[5] in ("line-4", "grid-2x2")  # the best connectivity
+    cells = row.locator("td").all_inner_texts()  # after a refresh by the page's script too
+    assert cells[2] == "pond-sensors" and cells[8] == "carol"
+    assert "line" in cells[3] and cells[5] == "0.5, 2"  # the submitted sweep (page and script agree)
+    assert cells[10] in ("line-4", "grid-2x2")  # the best connectivity
     _shot(page, "study-list-after-submit")
     page.close()
 

@@ -3,7 +3,7 @@
 Common practice (layered architecture, acyclic dependencies principle): no loops between
 modules anywhere in the package; each compiler module imports only modules earlier in the flow
 model → ansatz → targets → profiles → compiled → synthesis → compile → noise → simulate →
-metrics → study → bench; compiler never imports service and does no I/O of its own kind (no
+metrics → fit → study → bench; compiler never imports service and does no I/O of its own kind (no
 sockets, threads, environment variables or printing); in the service, the executor interface
 imports no executor and the executors never import each other; the notebook client loads no
 server dependency at import.
@@ -24,8 +24,8 @@ import toposcout.compiler as compiler
 ROOT = Path(__file__).resolve().parent.parent
 FOLDERS = {"toposcout": ROOT / "toposcout", "toposcout.compiler": ROOT / "compiler",
            "toposcout.service": ROOT / "service", "toposcout.topologies": ROOT / "topologies"}
-ORDER = ["version", "errors", "options", "rows", "model", "ansatz", "targets", "profiles", "compiled", "synthesis", "compile", "noise",
-         "simulate", "metrics", "clifford", "trajectories", "methods", "study", "bench"]
+ORDER = ["version", "errors", "options", "rows", "model", "ansatz", "targets", "profiles", "devices", "compiled", "synthesis",
+         "compile", "noise", "simulate", "metrics", "fit", "trajectories", "clifford", "methods", "regions", "study", "parts", "bench"]
 
 
 def _modules() -> dict[str, Path]:

@@ -219,8 +219,8 @@ def test_target_distribution_little_endian():
     np.testing.assert_allclose(target_distribution(m), [0.1, 0.6, 0.2, 0.1])
 
 
-def test_examples_load(example_path):
-    m = load_model(example_path)
+def test_examples_load(any_example_path):
+    m = load_model(any_example_path)
     assert m.num_variables >= 6
 
 

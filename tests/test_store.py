@@ -29,7 +29,7 @@ def test_migrations_build_the_schema_and_are_idempotent(store, database_url):
     assert {"studies", "study_rows", "results", "alembic_version"} <= names
     again = Store(database_url)  # a second start applies nothing and keeps the data
     with again.engine.connect() as c:
-        assert c.execute(text("select version_num from alembic_version")).scalar() == "0002"
+        assert c.execute(text("select version_num from alembic_version")).scalar() == "0003"
     again.close()
     assert "best_connectivity" in {col["name"] for col in inspect(store.engine).get_columns("studies")}
     if store.dialect == "sqlite":

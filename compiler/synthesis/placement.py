@@ -20,10 +20,10 @@ from typing import Sequence
 import networkx as nx
 import rustworkx as rx
 
-from toposcout.compiler.synthesis.steiner import SteinerCost, all_pairs_distances
+from toposcout.compiler.synthesis.steiner import SteinerCost, Weights, WeightedSteinerCost, all_pairs_distances
 
 __all__ = ["interaction_graph", "exact_embedding", "path_embedding", "placement_cost", "search_placement",
-           "candidate_placements"]
+           "candidate_placements", "region_placements"]
 
 
 def interaction_graph(supports: Sequence[Sequence[int]], n: int) -> nx.Graph:
@@ -66,22 +66,41 @@ def exact_embedding(inter: nx.Graph, coupling: nx.Graph, *, call_limit: int = 20
 
 
 class _Scorer:
-    def __init__(self, supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int):
+    """Total cost of a placement: Steiner cost of every term (order >= 2) in CNOT counts, or
+    with ``weights`` in units of -log(fidelity): twice the weighted Steiner tree of each term
+    (couplers weighted -log(1 - e)) plus every variable's qubit cost (a pseudo-term of one
+    variable), so a search over placements minimises an estimate of -log(ESP)."""
+
+    def __init__(self, supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int,
+                 weights: Weights | None = None):
         self.nodes = sorted(coupling.nodes)
         self.index = {q: i for i, q in enumerate(self.nodes)}
         adj = [[self.index[v] for v in coupling[q]] for q in self.nodes]
         self.adj = adj
-        self.dist = all_pairs_distances(adj)
-        self.cost = SteinerCost(self.dist)
+        self.dist = all_pairs_distances(adj)  # hops: the search's neighbourhoods
+        self.weights = weights
+        if weights is None:
+            self.cost = SteinerCost(self.dist)
+            self.qubit_cost = None
+        else:
+            nodes = self.nodes
+            self.cost = WeightedSteinerCost(adj, lambda i, j: weights.of_edge(nodes[i], nodes[j]))
+            self.qubit_cost = [weights.of_qubit(q) for q in nodes]
         self.supports = [tuple(sorted(set(s))) for s in supports if len(set(s)) >= 2]
+        if weights is not None:
+            self.supports += [(v,) for v in range(n)]
         self.by_var: list[list[int]] = [[] for _ in range(n)]
         for k, s in enumerate(self.supports):
             for v in s:
                 self.by_var[v].append(k)
 
-    def term(self, k: int, pos: list[int]) -> int:
+    def term(self, k: int, pos: list[int]) -> float:
+        s = self.supports[k]
+        if len(s) == 1:
+            p = pos[s[0]]
+            return self.qubit_cost[p] if p >= 0 else 0.0
         m = 0
-        for v in self.supports[k]:
+        for v in s:
             if pos[v] >= 0:
                 m |= 1 << pos[v]
         return self.cost(m)
@@ -90,16 +109,19 @@ class _Scorer:
         return sum(self.term(k, pos) for k in range(len(self.supports)))
 
 
-def placement_cost(supports: Sequence[Sequence[int]], coupling: nx.Graph, placement: Sequence[int]) -> int:
-    """Total Steiner cost of the terms (order >= 2) under ``placement``."""
-    sc = _Scorer(supports, coupling, len(placement))
+def placement_cost(supports: Sequence[Sequence[int]], coupling: nx.Graph, placement: Sequence[int],
+                   weights: Weights | None = None) -> float:
+    """Total Steiner cost of the terms (order >= 2) under ``placement`` (weighted: see ``_Scorer``)."""
+    sc = _Scorer(supports, coupling, len(placement), weights)
     return sc.total([sc.index[p] for p in placement])
 
 
 def search_placement(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int, *, seed: int = 0,
                      sweeps: int = 4, scorer: _Scorer | None = None,
-                     start: Sequence[int] | None = None) -> list[int]:
-    """A greedy placement (or ``start``) improved by local search; deterministic per seed."""
+                     start: Sequence[int] | None = None, first_qubit: int | None = None) -> list[int]:
+    """A greedy placement (or ``start``) improved by local search; deterministic per seed.
+
+    first_qubit: default None (a central qubit): the physical qubit the greedy grows from."""
     sc = scorer or _Scorer(supports, coupling, n)
     rng = random.Random(seed)
     N = len(sc.nodes)
@@ -114,6 +136,8 @@ def search_placement(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: i
         centre_val = min(ecc)
         centres = [q for q in range(N) if ecc[q] == centre_val]
         first_q = centres[rng.randrange(len(centres))] if seed else centres[0]
+        if first_qubit is not None:
+            first_q = sc.index[first_qubit]
         degs = sorted(range(n), key=lambda v: (-inter.degree(v, weight="weight"), v))
         first_v = degs[0] if seed == 0 else degs[rng.randrange(min(len(degs), 3))]
         pos[first_v] = first_q
@@ -228,16 +252,19 @@ def path_embedding(inter: nx.Graph, coupling: nx.Graph, *, tries: int = 200) -> 
 
 
 def candidate_placements(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int, *, seed: int = 0,
-                         count: int = 3) -> list[tuple[str, list[int]]]:
-    """Up to ``count`` distinct placements, the cheapest (by Steiner cost) first.
+                         count: int = 3, weights: Weights | None = None) -> list[tuple[str, list[int]]]:
+    """Up to ``count`` distinct placements, the cheapest (by Steiner cost, or with ``weights``
+    by the weighted cost of ``_Scorer``) first.
 
-    Each is ``(how, placement)`` with ``how`` one of ``"exact"``, ``"search"``.
+    Each is ``(how, placement)`` with ``how`` one of ``"exact"``, ``"search"``. With weights,
+    greedy placements grown from the chip's best qubits (lowest qubit cost plus the cost of
+    its couplers) are candidates too.
     """
-    sc = _Scorer(supports, coupling, n)
-    found: list[tuple[int, str, list[int]]] = []
+    sc = _Scorer(supports, coupling, n, weights)
+    found: list[tuple[float, str, list[int]]] = []
     seen: set[tuple[int, ...]] = set()
     complete = coupling.number_of_edges() == len(sc.nodes) * (len(sc.nodes) - 1) // 2
-    if complete:
+    if complete and weights is None:
         p = list(sorted(coupling.nodes)[:n])
         return [("exact", p)]
     inter = interaction_graph(sc.supports, n)
@@ -246,10 +273,48 @@ def candidate_placements(supports: Sequence[Sequence[int]], coupling: nx.Graph, 
         emb = search_placement(supports, coupling, n, seed=seed, scorer=sc, start=emb)
         seen.add(tuple(emb))
         found.append((sc.total([sc.index[p] for p in emb]), "exact", emb))
-    for s in range(count):
-        p = search_placement(supports, coupling, n, seed=seed * 1000 + s, scorer=sc)
+    starts: list[int | None] = [None] * count
+    if weights is not None:
+        quality = sorted(sc.nodes, key=lambda q: (weights.of_qubit(q) + sum(weights.of_edge(q, u) for u in coupling[q])
+                                                  / max(1, coupling.degree(q)), q))
+        starts += quality[:count]
+    for s, first in enumerate(starts):
+        p = search_placement(supports, coupling, n, seed=seed * 1000 + s, scorer=sc, first_qubit=first)
         if tuple(p) not in seen:
             seen.add(tuple(p))
             found.append((sc.total([sc.index[q] for q in p]), "search", p))
+    if weights is not None:  # greedy placements grown all over the chip: the weighted cost is not local
+        for p in region_placements(supports, coupling, n, 4 * count, weights=weights, seed=seed, scorer=sc):
+            if tuple(p) not in seen:
+                seen.add(tuple(p))
+                found.append((sc.total([sc.index[q] for q in p]), "search", p))
     found.sort(key=lambda x: x[0])
     return [(how, p) for _, how, p in found[:count]]
+
+
+def region_placements(supports: Sequence[Sequence[int]], coupling: nx.Graph, n: int, k: int, *,
+                      weights: Weights | None = None, seed: int = 0, scorer: _Scorer | None = None
+                      ) -> list[list[int]]:
+    """Up to ``k`` placements on different regions of the chip: greedy placements grown from
+    start qubits spread over the chip by farthest-point order (the next start is the qubit
+    farthest in hops from every start so far), each polished by a short local search; two
+    placements on the same set of qubits count once."""
+    sc = scorer or _Scorer(supports, coupling, n, weights)
+    N = len(sc.nodes)
+    order = [min(range(N), key=lambda q: (max(sc.dist[q]), q))]
+    near = list(sc.dist[order[0]])
+    while len(order) < N:
+        q = max(range(N), key=lambda x: (near[x], -x))
+        order.append(q)
+        near = [min(a, b) for a, b in zip(near, sc.dist[q])]
+    out: list[list[int]] = []
+    sets: set[frozenset[int]] = set()
+    for q in order:
+        if len(out) >= k:
+            break
+        p = search_placement(supports, coupling, n, seed=seed, scorer=sc, first_qubit=sc.nodes[q], sweeps=2)
+        key = frozenset(p)
+        if key not in sets:
+            sets.add(key)
+            out.append(p)
+    return out

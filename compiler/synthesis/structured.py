@@ -24,8 +24,9 @@ from toposcout.compiler.compiled import Compiled, check_coupling, measured_layou
 from toposcout.compiler.errors import CompileError, TargetError
 from toposcout.compiler.synthesis.block import Block, append_gates, make_region, sweep_block, synthesize_block
 from toposcout.compiler.synthesis.placement import candidate_placements
+from toposcout.compiler.synthesis.steiner import Weights
 
-__all__ = ["compile_structured", "structured_layers", "search_budget"]
+__all__ = ["compile_structured", "structured_layers", "search_budget", "log_cost"]
 
 
 #: above this many (parities x coupling edges) the global greedy is not run (one run of it
@@ -65,6 +66,8 @@ def structured_layers(
     *,
     seed: int = 0,
     native_zz: bool = False,
+    weights: Weights | None = None,
+    placements: Sequence[Sequence[int]] | None = None,
 ) -> tuple[list[Block], str, str]:
     """Blocks for every layer on ``graph`` (the cheapest over placements and methods).
 
@@ -73,12 +76,31 @@ def structured_layers(
     products), and the clique sweeps (:func:`sweep_block`) of ``SWEEPS``.
     Returns the blocks (block l starts where block l-1 ended), how the placement was found
     and which method won. ``native_zz``: see :func:`synthesize_block`.
+
+    weights: default None (the fewest two-qubit gates wins); else the per-element costs of the
+    chip: placements are searched by the weighted cost, the synthesis also runs on the coupling
+    graph without its poor couplers (weight over three times the median, when the placement stays
+    connected without them), and the result with the lowest estimated -log(ESP) (every two-qubit
+    gate's coupler cost plus the qubit cost of every variable's final qubit) wins.
+    placements: default None (searched); else exactly these placements are tried.
     """
     supports = [tuple(s) for s, _ in layers[0]] if layers else []
     parities = {frozenset(s) for layer in layers for s, _ in layer if len(set(s)) >= 2}
     n_place, lams, n_seeds = search_budget(len(parities), graph.number_of_edges())
     greedy = len(parities) * graph.number_of_edges() <= GREEDY_WORK
-    cands = candidate_placements(supports, graph, n, seed=seed, count=n_place)
+    if placements is not None:
+        cands = [("given", list(p)) for p in placements]
+    else:
+        cands = candidate_placements(supports, graph, n, seed=seed, count=n_place + (2 if weights else 0),
+                                     weights=weights)
+    graphs = [graph]
+    if weights is not None and graph.number_of_edges():
+        ws = sorted(weights.of_edge(a, b) for a, b in graph.edges)
+        cut = 3.0 * ws[len(ws) // 2]
+        pruned = graph.copy()
+        pruned.remove_edges_from([(a, b) for a, b in graph.edges if weights.of_edge(a, b) > cut])
+        if pruned.number_of_edges() < graph.number_of_edges():
+            graphs.append(pruned)
     methods: list[tuple[str, object]] = []
     if greedy:
         methods.append(("greedy", lambda layer, region, where: synthesize_block(
@@ -87,20 +109,38 @@ def structured_layers(
         methods.append(("sweep", lambda layer, region, where, _k=slack, _g=group: sweep_block(
             layer, region, where, slack=_k, group=_g, seeds=[seed * 100 + s for s in range(3)],
             native_zz=native_zz)))
-    best: tuple[int, list[Block], str, str] | None = None
+    best: tuple[tuple, list[Block], str, str] | None = None
     for how, placement in cands:
-        region = make_region(graph, placement)
-        for name, method in methods:
-            blocks: list[Block] = []
-            where = list(placement)
-            for layer in layers:
-                b = method(layer, region, where)
-                blocks.append(b)
-                where = list(b.final_placement)
-            total = sum(b.two_qubit for b in blocks)
-            if best is None or total < best[0]:
-                best = (total, blocks, how, name)
+        for gi, g in enumerate(graphs):
+            if gi:  # the pruned graph: only the connected part holding the whole placement
+                part = next((c for c in nx.connected_components(g) if set(placement) <= c), None)
+                if part is None:
+                    continue
+                g = g.subgraph(part)
+            region = make_region(g, placement)
+            for name, method in methods:
+                blocks: list[Block] = []
+                where = list(placement)
+                for layer in layers:
+                    b = method(layer, region, where)
+                    blocks.append(b)
+                    where = list(b.final_placement)
+                total = sum(b.two_qubit for b in blocks)
+                key = (total,) if weights is None else (round(log_cost(blocks, where, weights), 12), total)
+                if best is None or key < best[0]:
+                    best = (key, blocks, how, name)
     return best[1], best[2], best[3]
+
+
+def log_cost(blocks: Sequence[Block], final: Sequence[int], weights: Weights) -> float:
+    """Estimated -log(ESP) of synthesised blocks: the coupler cost of every two-qubit gate plus
+    the qubit cost of every variable's final qubit."""
+    c = 0.0
+    for b in blocks:
+        for g in b.gates:
+            if g[0] in ("cx", "zz"):
+                c += weights.of_edge(g[1], g[2])
+    return c + sum(weights.of_qubit(q) for q in final)
 
 
 def _translation(gate_set) -> PassManager:
@@ -112,10 +152,12 @@ def _translation(gate_set) -> PassManager:
     ])
 
 
-def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
+def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0, weights: Weights | None = None,
+                       placements: Sequence[Sequence[int]] | None = None):
     """Compile ``ansatz`` with the structured strategy (see the module docstring).
 
     seed: default 0; seeds the placement search and the greedy tie-breaking.
+    weights, placements: see :func:`structured_layers` (error-aware placement; fixed placements).
     """
     start = time.perf_counter()
     n = ansatz.num_qubits
@@ -131,7 +173,10 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0):
         graph = graph.subgraph(comp).copy()
     layers = [ansatz.layer_terms(layer) for layer in range(ansatz.layers)]
     native_zz = gate_set.two_qubit in NATIVE_ZZ
-    blocks, how, method = structured_layers(layers, graph, n, seed=seed, native_zz=native_zz)
+    if placements is not None:
+        placements = [p for p in placements if all(q in graph for q in p)] or None
+    blocks, how, method = structured_layers(layers, graph, n, seed=seed, native_zz=native_zz, weights=weights,
+                                            placements=placements)
     placement = list(blocks[0].initial_placement) if blocks else list(sorted(graph.nodes)[:n])
     qc = QuantumCircuit(N, n, name=ansatz.model.name)
     for p in placement:

@@ -15,14 +15,19 @@
 ``GET /v1/connectivities|profiles|schema/model``, ``/healthz``, ``/metrics`` (Prometheus text)
 ====================================  ==========================================================
 
-Nothing here runs a task: studies go to the executor (worker processes), ``/v1/compile`` to
-one dedicated worker process, so the event loop answers within milliseconds.
+Nothing here runs a task: a study is stored and its pending rows are the queue, which queue
+worker processes take tasks from (:mod:`toposcout.service.execution.queue`; with
+``run_workers`` the app starts one of its own, ``toposcout serve`` starts it once for all its API
+processes); ``/v1/compile`` goes to one dedicated worker process. So the event loop answers
+within milliseconds, several API processes can share one store, and a crash of the API
+takes no running work with it.
 """
 
 from __future__ import annotations
 
 import collections
 import logging
+import os
 import threading
 from contextlib import asynccontextmanager
 
@@ -31,13 +36,17 @@ from fastapi import FastAPI
 from toposcout.compiler.version import __version__
 from toposcout.service.api.errors import error, install_error_handlers
 from toposcout.service.api.routers import catalogue, compile as compile_router, operations, studies
-from toposcout.service.execution.factory import make_executor
+from toposcout.service.execution.lifeline import die_with_parent
 from toposcout.service.execution.local import ProcessLane
+from toposcout.service.execution.queue import spawn_queue_worker, stop_process
 from toposcout.service.settings import Settings
 from toposcout.service.store import Store
 from toposcout.service.web import dashboard
 
-__all__ = ["create_app"]
+__all__ = ["create_app", "app_from_environment", "SUPERVISOR_PID_VARIABLE"]
+
+#: set by ``toposcout serve --workers N`` for its API processes: the pid they die with
+SUPERVISOR_PID_VARIABLE = "TOPOSCOUT_API_SUPERVISOR_PID"
 
 log = logging.getLogger("toposcout.api")
 
@@ -101,21 +110,16 @@ class _App(FastAPI):
 @asynccontextmanager
 async def _lifespan(app: FastAPI):
     settings: Settings = app.state.settings
-    store = Store(settings.resolved_database_url())
-    executor = make_executor(settings, store)
-    executor.start()
+    url = settings.resolved_database_url()
+    store = Store(url)  # migrates before the queue worker opens it
+    worker = spawn_queue_worker(url, slots=settings.workers) if settings.run_workers else None
     lane = ProcessLane(time_limit=settings.compile_time_limit_seconds)
     lane.start()
-    app.state.store, app.state.executor, app.state.lane = store, executor, lane
-    if settings.recover_on_start:
-        for study_id, pending in store.unfinished():
-            if pending:
-                log.info("resuming study %s: %d tasks", study_id, len(pending))
-                executor.submit(study_id, pending)
+    app.state.store, app.state.lane = store, lane
     try:
         yield
     finally:
-        executor.shutdown()
+        stop_process(worker)  # its unfinished tasks stay pending in the store for the next start
         lane.shutdown()
         store.close()
 
@@ -135,3 +139,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     for router in (studies.router, compile_router.router, catalogue.router, operations.router, dashboard.router):
         app.include_router(router)
     return app
+
+
+def app_from_environment() -> FastAPI:
+    """The app of one API process under ``toposcout serve --workers N`` (uvicorn's factory):
+    settings from the environment, and the process dies with its supervisor."""
+    parent = os.environ.get(SUPERVISOR_PID_VARIABLE)
+    if parent:
+        die_with_parent(int(parent))
+    return create_app(Settings())

@@ -31,7 +31,8 @@ ERRORS_SUBMIT = ERRORS_READ | {
     409: _E | {"description": "Idempotency-Key reused with a different request"},
     413: _E | {"description": "request body over the size limit"},
     415: _E | {"description": "Content-Type is neither application/json nor multipart/form-data"},
-    429: _E | {"description": "too many unfinished studies for this token; see Retry-After",
+    429: _E | {"description": "too many unfinished studies for this token, or the service's queue is full; "
+                              "see Retry-After",
                "headers": {"Retry-After": {"schema": {"type": "integer"}, "description": "seconds"}}},
 }
 

@@ -122,6 +122,32 @@ def _profile(profile: str | dict | list | None) -> str | dict | list | None:
     return load_profile(dict(profile)).to_dict()
 
 
+def _device(req: StudyRequest, settings, num_variables: int):
+    """The request's device (None without one); errors name ``device.<field>``."""
+    if req.device is None:
+        return None
+    if req.connectivities is not None:
+        raise TargetError("connectivities: a device fixes the connectivity; send either device or connectivities",
+                          field="connectivities")
+    if req.profile is not None:
+        raise ProfileError("profile: a device carries its own figures (and base profile); send either device or "
+                           "profile", field="profile")
+    from toposcout.compiler.devices import parse_device_text
+    from toposcout.compiler.errors import ToposcoutError
+
+    try:
+        dev = parse_device_text(req.device, name="device")
+        if dev.num_qubits > settings.max_physical_qubits:
+            raise CapacityError(f"qubits: {dev.num_qubits} physical qubits is over this server's cap "
+                                f"max_physical_qubits={settings.max_physical_qubits}", field="qubits")
+        dev.check_fits(num_variables)
+    except ToposcoutError as exc:
+        f = exc.field or ""
+        field = f if f.startswith("device") else f"device.{f}" if f else "device"
+        raise type(exc)(f"device: {exc}", field=field) from None
+    return dev
+
+
 def model_order(model: Model) -> int:
     """The largest term order of the model: its largest clique, cut at ``max_order``."""
     largest = max((len(c) for c in model.cliques), default=1)
@@ -166,6 +192,7 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
                 field="method")
         budget = settings.memory_budget_bytes or default_memory_budget_bytes()
         memory_budget = min(budget, estimate_memory_bytes(cap))
+    device = _device(req, settings, model.num_variables)
     max_targets = max_targets or settings.max_connectivities
     conns = req.connectivities
     if conns is not None and len(conns) > max_targets:
@@ -189,6 +216,10 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
     options: dict[str, Any] = dict(gate_set=req.gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
                                    layers=req.layers, seed=req.seed, compile_only=compile_only, profile=profile,
                                    keep_circuit=keep_circuit)
+    if device is not None:
+        options.update(device=device.to_dict(), profile=None)
+        specs = None
+    options.update(placement=req.placement, regions=req.regions, jitter=req.jitter, jitter_samples=req.jitter_samples)
     if memory_budget is not None:
         options["memory_budget_bytes"] = int(memory_budget)
     if req.fidelity_target is not None and not compile_only:
@@ -198,7 +229,13 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
     if not compile_only:
         options.update(method=req.method, time_budget_seconds=req.time_budget_seconds,
                        trajectories=req.trajectories, precision=req.precision)
-    tasks = make_tasks(model, specs, noise_scales=scales, **options)
+    families = list(dict.fromkeys(req.families or [req.family]))
+    fit_request = _fit_request(req, model, families, settings) if req.fit is not None else None
+    if fit_request is not None:
+        options["fit_request"] = fit_request
+    tasks = []
+    for fam in families:
+        tasks += make_tasks(model, specs, noise_scales=scales, **{**options, "family": fam})
     keys = [task_key({**t, "model": model}) for t in tasks]  # the parsed model: no second parse per task
     normalised = {"label": req.label, "model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
                   "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
@@ -207,8 +244,49 @@ def prepare(req: StudyRequest, settings, *, filename: str | None = None, compile
                   "fidelity_target": tasks[0].get("fidelity_target") if tasks else None,  # after the one default
                   "requirement_tolerance": req.requirement_tolerance,
                   "method": req.method, "time_budget_seconds": req.time_budget_seconds,
-                  "trajectories": req.trajectories, "precision": req.precision}
+                  "trajectories": req.trajectories, "precision": req.precision,
+                  "device": None if device is None else device.to_dict(), "placement": req.placement,
+                  "regions": req.regions, "jitter": req.jitter, "jitter_samples": req.jitter_samples}
+    if req.families:
+        normalised["families"] = families
+    if fit_request is not None:
+        from toposcout.compiler.fit import data_hash
+
+        normalised["fit"] = {**{k: v for k, v in fit_request.items() if k != "samples"},
+                             "data_hash": data_hash(fit_request["samples"]) if fit_request["samples"] else None}
     return Prepared(model=model, request=normalised, tasks=tasks, keys=keys)
+
+
+def _fit_request(req: StudyRequest, model: Model, families: list[str], settings) -> dict:
+    """The ``fit`` block checked against the model and the server's cap, as a task's ``fit_request``."""
+    from toposcout.compiler.fit import MMD_BANDWIDTHS, check_fit_options, parse_samples
+
+    f = req.fit
+    if model.num_variables > settings.max_fit_variables:
+        raise CapacityError(f"fit: the model has {model.num_variables} variables but this server fits at most "
+                            f"max_fit_variables={settings.max_fit_variables} (the fit is exact: 2**n amplitudes)",
+                            field="fit")
+    samples = None
+    if f.data is not None:
+        try:
+            samples = parse_samples(f.data, model.variables)
+        except ModelError as exc:
+            raise ModelError(f"fit.data: {exc}", field="fit.data") from None
+    bandwidths = tuple(f.kernel_bandwidths or MMD_BANDWIDTHS)
+    for fam in families:
+        try:
+            check_fit_options(model, family=fam, layers=req.layers, loss=f.loss, samples=samples,
+                              restarts=f.restarts, max_iter=f.max_iter, optimizer=f.optimizer, tol=f.tol,
+                              bandwidths=bandwidths)
+        except (ModelError, CapacityError) as exc:
+            field = {"factors": "fit.loss", "data": "fit.data"}.get(exc.field or "", f"fit.{exc.field}")
+            raise type(exc)(f"{field}: {exc}", field=field) from None
+    if f.loss == "mmd" and samples is None:
+        raise ModelError("fit.data: loss mmd needs samples: CSV text with one 0/1 column per variable",
+                         field="fit.data")
+    return {"loss": f.loss, "restarts": f.restarts, "max_iter": f.max_iter, "tol": f.tol, "optimizer": f.optimizer,
+            "seed": req.seed, "bandwidths": list(bandwidths),
+            "samples": None if samples is None else [int(x) for x in samples]}
 
 
 _BAD_NAME = re.compile(r"[\x00-\x1f\x7f/\\]")
@@ -246,25 +324,31 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
         if key == "noise_scales":
             out[key] = [_form_float(key, c) for v in values for c in v.split(",") if c.strip()]
             continue
+        if key == "families":
+            out[key] = [c.strip() for v in values for c in v.split(",") if c.strip()]
+            continue
         if len(values) != 1:
             raise ModelError(f"{key}: give this form field once", field=key)
         v = values[0].strip()
-        if key in ("seeds", "layers", "seed", "max_order", "trajectories"):
-            if v == "" and key in ("max_order", "trajectories"):
+        if key in ("seeds", "layers", "seed", "max_order", "trajectories", "regions", "jitter_samples"):
+            if v == "" and key in ("max_order", "trajectories", "regions"):
                 continue
             try:
                 out[key] = int(v)
             except ValueError:
                 raise ModelError(f"{key}: {v[:40]!r} is not an integer", field=key) from None
-        elif key in ("fidelity_target", "requirement_tolerance", "time_budget_seconds", "precision"):
+        elif key in ("fidelity_target", "requirement_tolerance", "time_budget_seconds", "precision", "jitter"):
             if v:
                 out[key] = _form_float(key, v)
         elif key == "compile_only":
             if v.lower() not in ("true", "false", "1", "0", "yes", "no", "on", "off"):
                 raise ModelError(f"{key}: {v[:40]!r} is not true or false", field=key)
             out[key] = v.lower() in ("true", "1", "yes", "on")
-        elif key in ("model_format", "profile") and v == "":
+        elif key in ("model_format", "profile", "device", "placement") and v == "":
             continue
+        elif key == "fit":  # the form's fit field is the loss (kl | mmd); the other fit options keep their defaults
+            if v:
+                out[key] = {"loss": v}
         else:
             out[key] = v
     return out

@@ -19,7 +19,7 @@ from toposcout.compiler.rows import ROW_FIELDS
 from toposcout.compiler.targets import NAME_PATTERN
 from toposcout.service.store import ROW_STATES, STUDY_STATES
 
-__all__ = ["ConnectivitySpec", "StudyRequest", "ErrorBody", "Progress", "StudySummary", "StudyCreated",
+__all__ = ["ConnectivitySpec", "FitBlock", "StudyRequest", "ErrorBody", "Progress", "StudySummary", "StudyCreated",
            "Study", "StudyList", "Row", "CompileResponse", "Health", "ConnectivityList", "ProfileList",
            "StudyStatus", "RowStatus", "RowsDocument"]
 
@@ -49,6 +49,22 @@ class ConnectivitySpec(BaseModel):
                                                    "dashboard's drawing; default: a planar layout)")
 
 
+class FitBlock(BaseModel):
+    """Fit the angles to the target before the study (each family fitted to the same target)."""
+
+    model_config = _STRICT
+
+    loss: Literal["kl", "mmd"] = Field(default="kl", description="kl: to the model's factor tables; mmd: to data")
+    data: str | None = Field(default=None, max_length=2_000_000,
+                             description="mmd samples as CSV text: header = variable names, one 0/1 row per sample")
+    kernel_bandwidths: list[Annotated[float, Field(gt=0, le=100)]] | None = Field(
+        default=None, min_length=1, max_length=8, description="MMD Gaussian kernel bandwidths (null: 0.5, 1, 2)")
+    restarts: int = Field(default=3, ge=1, le=10, description="seeded random starts")
+    max_iter: int = Field(default=500, ge=1, le=2000, description="iterations per restart")
+    tol: float = Field(default=1e-10, ge=0, le=1, description="stop when the loss improves by less than this")
+    optimizer: Literal["lbfgs", "adam"] = "lbfgs"
+
+
 class StudyRequest(BaseModel):
     """What to study: a model, the targets, the options (the JSON body of POST /v1/studies)."""
 
@@ -73,6 +89,10 @@ class StudyRequest(BaseModel):
     compile_only: bool = Field(default=False, description="skip the noise simulation")
     seeds: int = Field(default=5, **LIMITS["seeds"].pydantic(), description="transpiler seeds tried by the generic strategy")
     family: Literal[FAMILIES] = "clique"
+    families: list[Literal[FAMILIES]] | None = Field(
+        default=None, min_length=1, max_length=len(FAMILIES),
+        description="several families: rows for each (family, connectivity); overrides family")
+    fit: FitBlock | None = Field(default=None, description="fit the angles first (null: angles as given)")
     layers: int = Field(default=1, **LIMITS["layers"].pydantic(), description=LIMITS["layers"].meaning)
     seed: int = Field(default=0, **LIMITS["seed"].pydantic(), description="seed of the random angles")
     max_order: int | None = Field(default=None, **LIMITS["max_order"].pydantic(), description="keep only terms of at most this order")
@@ -95,6 +115,16 @@ class StudyRequest(BaseModel):
     precision: float | None = Field(default=None, **LIMITS["precision"].pydantic(),
                                     description="trajectories method: stop when the state fidelity's standard "
                                                 "error is below this (null: 0.01)")
+    device: str | None = Field(default=None, max_length=2_000_000,
+                               description="the text of a device file (TOML: chip, coordinates, per-qubit and "
+                                           "per-coupler figures); fixes the connectivity and the profile")
+    placement: Literal["errors", "count"] | None = Field(
+        default=None, description="placement objective; null: errors when there are per-element figures, else count")
+    regions: int | None = Field(default=None, ge=1, le=50,
+                                description="rank this many placements over the chip by ESP; the best 3 are rows")
+    jitter: float | None = Field(default=None, ge=0, le=3,
+                                 description="log-normal sigma of redrawn figures: the ESP spread under drift")
+    jitter_samples: int = Field(default=100, ge=2, le=1000, description="redraws for jitter")
 
 
 class ErrorBody(BaseModel):

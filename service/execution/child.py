@@ -7,15 +7,21 @@ capped its simulator threads.
 from __future__ import annotations
 
 from toposcout.service.execution.base import failure_row
+from toposcout.service.execution.lifeline import die_with_parent
 from toposcout.service.execution.threads import limit_threads
 
 __all__ = ["worker_main"]
 
 
-def worker_main(conn, threads: int = 0) -> None:  # pragma: no cover - runs in the child process
+def worker_main(conn, threads: int = 0, parent_pid: int | None = None,
+                kernel: bool = True) -> None:  # pragma: no cover - runs in the child process
     """Child process: receive tasks, answer rows, until ``None`` or the pipe closes.
 
-    threads: default 0 (leave as is); else the simulator threads of this process."""
+    threads: default 0 (leave as is); else the simulator threads of this process.
+    parent_pid: end this process when that parent dies (:func:`.lifeline.die_with_parent`;
+    ``kernel``: also through PR_SET_PDEATHSIG, for a parent that started it from a thread that lives on)."""
+    if parent_pid is not None:
+        die_with_parent(parent_pid, kernel=kernel)
     if threads:
         limit_threads(threads)
     # imported after the thread cap: the simulator's OpenMP runtime reads it when it loads

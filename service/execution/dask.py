@@ -26,6 +26,12 @@ each row to the store as soon as it is back.
   restarted and its row fails with the local executor's message.
 * **Scheduler away**: ``start`` returns at once; the background thread connects and retries
   while the scheduler is not up, and reconnects (resubmitting what was on it) when it is lost.
+* **One row on several workers**: when a study has fewer rows in flight than the cluster has
+  worker threads, a row is sent as :func:`run_task_split` with parts = threads // rows: on
+  its worker it plans the row, submits the parts (shares of the trajectories or clifford
+  shots, ``toposcout.compiler.parts``) back to the cluster from a seceded ``worker_client``,
+  gathers and merges them. The executor still sees one task (one key, one time limit, one
+  row); rows the method cannot split come back as ``run_task`` makes them.
 * Nothing here blocks an event loop: submissions and row writes happen on one background
   thread; ``submit`` and ``cancel`` only queue work.
 
@@ -50,7 +56,7 @@ from toposcout.compiler.simulate import MEMORY_FRACTION, check_memory
 from toposcout.compiler.study import run_task
 from toposcout.service.execution.base import Executor, failure_row, timeout_message
 
-__all__ = ["DaskExecutor", "task_key_for", "worker_memory_budget", "precheck_memory", "run_worker",
+__all__ = ["DaskExecutor", "run_task_split", "task_key_for", "worker_memory_budget", "precheck_memory", "run_worker",
            "parse_memory"]
 
 log = logging.getLogger("toposcout.dask")
@@ -95,6 +101,21 @@ def precheck_memory(task: Mapping[str, Any], budget: int | None) -> tuple[dict |
     return out, None
 
 
+def run_task_split(task: Mapping[str, Any], parts: int) -> dict:
+    """Run on a worker: the row of ``task`` with its noise figures computed in ``parts`` parts
+    on the cluster (see the module docstring); same fields as ``run_task`` plus ``row_parts``."""
+    from distributed import worker_client  # noqa: PLC0415 - runs on a Dask worker only
+
+    from toposcout.compiler.parts import merge_parts, plan_row, run_part
+
+    plan = plan_row(task, parts)
+    if not plan["parts"]:
+        return plan["row"]
+    with worker_client() as client:  # secedes: this worker's thread is free for a part meanwhile
+        results = client.gather(client.map(run_part, plan["parts"], pure=False))
+    return merge_parts(plan, results)
+
+
 def executing_keys(dask_worker) -> list[str]:
     """Keys a worker is executing right now (run on the workers by the time-limit watch)."""
     return [str(k) for k, ts in dask_worker.state.tasks.items() if ts.state == "executing"]
@@ -128,12 +149,14 @@ class DaskExecutor(Executor):
         ``settings.task_time_limit_seconds``; None: no limit). Past it the worker process is
         restarted (a running simulation cannot be interrupted otherwise) and the row fails with
         the local executor's message.
+    split_rows: default True; split a row across workers when fewer rows than worker threads
+        are in flight (:func:`run_task_split`).
     """
 
     def __init__(self, settings: Any = None, store: Any = None, *, address: str | None = None,
                  client: Any = None, max_in_flight: int | None = None, retries: int = 1,
                  max_attempts: int = 4, connect_timeout: float = 10.0, poll_seconds: float = 0.5,
-                 time_limit: float | None = None, retry_seconds: float = 5.0):
+                 time_limit: float | None = None, retry_seconds: float = 5.0, split_rows: bool = True):
         self.address = address or getattr(settings, "dask_address", None)
         if not self.address and client is None:
             raise ToposcoutError("the Dask executor needs a scheduler address (TOPOSCOUT_DASK_ADDRESS=tcp://host:8786)",
@@ -148,6 +171,7 @@ class DaskExecutor(Executor):
         self.connect_timeout = connect_timeout
         self.poll_seconds = poll_seconds
         self.retry_seconds = retry_seconds
+        self.split_rows = split_rows
         self._complained_at = -1e9
         #: why the executor cannot reach its scheduler right now (None: connected or connecting)
         self.last_error: str | None = None
@@ -254,6 +278,11 @@ class DaskExecutor(Executor):
         """Tasks of ``study_id`` (default: all) not yet recorded: queued here or on the cluster."""
         with self._lock:
             return sum(1 for s, _ in self._queued if study_id is None or s == study_id)
+
+    def holds(self, study_id: str, task_index: int) -> bool:
+        """The task is queued here or on the cluster (not yet recorded or dropped)."""
+        with self._lock:
+            return (study_id, int(task_index)) in self._queued
 
     def wait_connected(self, timeout: float = 60.0) -> bool:
         """Block until the client is connected (tests and benchmarks)."""
@@ -424,7 +453,12 @@ class DaskExecutor(Executor):
     def _send(self, item: _Item, task: dict) -> None:
         key = task_key_for(item.study_id, item.task_index, item.attempt)
         item.submitted_at = time.monotonic()
-        fut = self.client.submit(run_task, task, key=key, pure=False, retries=self.retries)
+        parts = self._parts(task)
+        if parts > 1:
+            fut = self.client.submit(run_task_split, task, parts, key=key, pure=False, retries=self.retries)
+            self.stats["split"] += 1
+        else:
+            fut = self.client.submit(run_task, task, key=key, pure=False, retries=self.retries)
         item.future = fut
         with self._lock:
             self._running[key] = item
@@ -437,6 +471,15 @@ class DaskExecutor(Executor):
             except Exception as exc:  # progress display only; the rows still get recorded
                 log.warning("marking study %s running: %s", item.study_id, exc)
         fut.add_done_callback(self._on_done)
+
+    def _parts(self, task: Mapping[str, Any]) -> int:
+        """Parts for a row about to be sent: worker threads // rows in flight (this one included)."""
+        if not self.split_rows or task.get("compile_only"):
+            return 1
+        threads, _budget = self.cluster_info()
+        with self._lock:
+            rows = len(self._backlog) + len(self._running) + 1
+        return max(1, threads // rows)
 
     def _drain_done(self) -> None:
         while True:

@@ -4,8 +4,9 @@ The API never runs a task itself: the simulator holds the GIL for a whole run, s
 the API process (or one of its threads) would freeze every other request. An executor takes
 ``(task_index, task)`` pairs, runs each through :func:`toposcout.compiler.study.run_task` somewhere
 else, and writes every finished row to the store itself (``store.record_row``), so a server
-killed at any moment loses at most the rows that were running; the API resubmits the pending
-rows of unfinished studies at start-up.
+killed at any moment loses at most the rows that were running. In a server it runs inside a
+queue worker process (:mod:`.queue`), which takes the tasks from the store with a lease; a
+killed worker's tasks are taken again when their leases expire.
 
 * :class:`LocalExecutor`: a few worker processes of our own (``spawn``), one task at a time
   each. A task past the time limit gets its process killed (and replaced) and its row fails
@@ -19,6 +20,7 @@ from __future__ import annotations
 import collections
 import logging
 import multiprocessing
+import os
 import threading
 import time
 from dataclasses import dataclass, field
@@ -38,11 +40,13 @@ log = logging.getLogger("toposcout.executor")
 class _Worker:
     """One spawned child process running :func:`_worker_main`, killable at any time."""
 
-    def __init__(self, threads: int = 0):
+    def __init__(self, threads: int = 0, *, kernel_lifeline: bool = True):
         self.proc: multiprocessing.Process | None = None
         self.conn = None
         self.restarts = 0
         self.threads = threads
+        # PR_SET_PDEATHSIG follows the starting thread: only for workers started by a slot thread
+        self.kernel_lifeline = kernel_lifeline
 
     def ensure(self) -> None:
         if self.proc is not None and self.proc.is_alive():
@@ -50,7 +54,8 @@ class _Worker:
         self.close()
         ctx = multiprocessing.get_context("spawn")
         parent, child = ctx.Pipe()
-        self.proc = ctx.Process(target=_worker_main, args=(child, self.threads), daemon=True, name="toposcout-worker")
+        self.proc = ctx.Process(target=_worker_main, args=(child, self.threads, os.getpid(), self.kernel_lifeline),
+                                daemon=True, name="toposcout-worker")
         self.proc.start()
         child.close()
         self.conn = parent
@@ -202,6 +207,11 @@ class LocalExecutor(Executor):
         with self._cv:
             return len(self._running)
 
+    def holds(self, study_id: str, task_index: int) -> bool:
+        """The task is queued or running here (not yet finished or dropped)."""
+        with self._cv:
+            return (study_id, int(task_index)) in self._queued
+
     def wait_idle(self, timeout: float = 60.0) -> bool:
         end = time.monotonic() + timeout
         while time.monotonic() < end:
@@ -312,7 +322,7 @@ class ProcessLane:
 
     def __init__(self, *, time_limit: float = 60.0):
         self.time_limit = time_limit
-        self._worker = _Worker()
+        self._worker = _Worker(kernel_lifeline=False)  # started from short-lived threads: the poll only
         self._lock = threading.Lock()
 
     def start(self) -> None:

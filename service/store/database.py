@@ -13,6 +13,17 @@ Three tables (schema by the alembic migrations in ``service/store/migrations``, 
 Everything is written as it happens (one transaction per finished row), so a killed server
 loses nothing: :meth:`Store.unfinished` lists what still has to run. All methods take and
 return plain dicts; timestamps are UTC.
+
+The store is also the work queue (migration 0003): a pending row is a queued task.
+:meth:`Store.claim_task` hands one to a queue worker with a lease that expires (round-robin
+across owners, then across studies), :meth:`Store.renew_leases` keeps it, and
+:meth:`Store.record_row` with ``lease_owner`` writes the row only while that lease is held, so a
+task whose worker was killed is taken again and its row is still written exactly once.
+
+Atomic steps: every write is one transaction that holds the write lock from its start (SQLite:
+``BEGIN IMMEDIATE``, so processes sharing the file queue on the lock instead of failing on a
+stale snapshot); on PostgreSQL the caps and the claim take ``pg_advisory_xact_lock`` (per owner,
+for the queue, for claims), so a count and the insert that depends on it cannot interleave.
 """
 
 from __future__ import annotations
@@ -29,13 +40,14 @@ from pathlib import Path
 from typing import Any, Iterable, Mapping
 
 from sqlalchemy import (JSON, Boolean, DateTime, Float, ForeignKey, Integer, LargeBinary, String,
-                        UniqueConstraint, case, create_engine, event, func, insert, select, update)
+                        UniqueConstraint, case, create_engine, event, exists, func, insert, or_, select, text,
+                        update)
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
 from sqlalchemy.types import TypeDecorator
 
-__all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "best_connectivity", "STUDY_STATES", "FINISHED_STATES",
+__all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "QueueFull", "best_connectivity", "STUDY_STATES", "FINISHED_STATES",
            "UNFINISHED", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow", "request_summary",
            "new_study_id"]
 
@@ -90,6 +102,7 @@ class StudyRecord(Base):
     done: Mapped[int] = mapped_column(Integer, default=0)
     best_connectivity: Mapped[str | None] = mapped_column(String(200), nullable=True)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, index=True)
+    claimed_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime, nullable=True)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
 
 
@@ -99,17 +112,20 @@ class RowRecord(Base):
     study_id: Mapped[str] = mapped_column(String(32), ForeignKey("studies.id", ondelete="CASCADE"),
                                           primary_key=True)
     task_index: Mapped[int] = mapped_column(Integer, primary_key=True)
-    status: Mapped[str] = mapped_column(String(16))
+    status: Mapped[str] = mapped_column(String(16), index=True)
     cached: Mapped[bool] = mapped_column(Boolean, default=False)
     task_key: Mapped[str] = mapped_column(String(64), index=True)
     task: Mapped[dict] = mapped_column(JSON)
     row: Mapped[dict | None] = mapped_column(JSON, nullable=True)
     seconds: Mapped[float | None] = mapped_column(Float, nullable=True)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    lease_owner: Mapped[str | None] = mapped_column(String(64), nullable=True)
+    lease_until: Mapped[dt.datetime | None] = mapped_column(UTCDateTime, nullable=True)
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
 
 
 _STUDY_COLUMNS = ("id", "owner", "status", "model_name", "request", "request_hash", "idempotency_key", "total",
-                  "done", "best_connectivity", "created_at", "updated_at")
+                  "done", "best_connectivity", "created_at", "updated_at", "claimed_at")
 
 
 class ResultRecord(Base):
@@ -132,6 +148,23 @@ class TooManyActive(Exception):
     def __init__(self, active: int):
         super().__init__(f"{active} studies queued or running")
         self.active = active
+
+
+class QueueFull(Exception):
+    """The whole service already has the allowed number of queued tasks."""
+
+    def __init__(self, queued: int):
+        super().__init__(f"{queued} tasks queued")
+        self.queued = queued
+
+
+#: pg_advisory_xact_lock keys of the queue-wide steps (per-owner keys come from :func:`_lock_key`)
+_QUEUE_LOCK, _CLAIM_LOCK = 0x746F706F01, 0x746F706F02
+
+
+def _lock_key(owner: str) -> int:
+    """A signed 64-bit advisory-lock key for ``owner``."""
+    return int.from_bytes(hashlib.sha256(b"owner:" + owner.encode()).digest()[:8], "big", signed=True)
 
 
 def _json_safe(value: Any) -> Any:
@@ -162,12 +195,20 @@ def make_engine(url: str) -> Engine:
 
         @event.listens_for(engine, "connect")
         def _sqlite_pragmas(dbapi_conn, _record):  # pragma: no cover - exercised by every SQLite test
+            dbapi_conn.isolation_level = None  # SQLAlchemy's "begin" below emits BEGIN itself
             cur = dbapi_conn.cursor()
             cur.execute("PRAGMA journal_mode=WAL")
             cur.execute("PRAGMA synchronous=NORMAL")
             cur.execute("PRAGMA foreign_keys=ON")
             cur.execute("PRAGMA busy_timeout=30000")
             cur.close()
+
+        @event.listens_for(engine, "begin")
+        def _sqlite_begin(conn):  # pragma: no cover - exercised by every SQLite test
+            # writes take the write lock at BEGIN: a deferred transaction that reads and then
+            # writes fails at once (SQLITE_BUSY_SNAPSHOT) when another process wrote in between
+            conn.exec_driver_sql("BEGIN IMMEDIATE" if conn.get_execution_options().get("toposcout_write")
+                                 else "BEGIN")
 
         return engine
     return create_engine(url, pool_pre_ping=True, pool_size=20, max_overflow=20)
@@ -198,9 +239,23 @@ class Store:
         if run_migrations:
             migrate(self.engine)
         self._session = sessionmaker(self.engine, expire_on_commit=False)
+        self._write_session = sessionmaker(self.engine.execution_options(toposcout_write=True),
+                                           expire_on_commit=False)
         # SQLite allows one writer; its busy handler sleeps up to 100 ms per retry, so writers of
-        # this process queue on a lock instead (every write of a server comes from its process)
+        # this process queue on a lock first (writers of other processes wait in BEGIN IMMEDIATE)
         self._write_lock = threading.Lock() if self.engine.dialect.name == "sqlite" else contextlib.nullcontext()
+
+    @contextlib.contextmanager
+    def _writing(self):
+        """One write transaction holding the write lock from its start (see the module text)."""
+        with self._write_lock, self._write_session.begin() as s:
+            yield s
+
+    def _advisory(self, s: Session, *keys: int) -> None:
+        """PostgreSQL: take these transaction-scoped advisory locks (in the given order)."""
+        if self.dialect == "postgresql":
+            for k in keys:
+                s.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": k})
 
     @property
     def dialect(self) -> str:
@@ -212,15 +267,17 @@ class Store:
     # --- studies ------------------------------------------------------------------
     def create_study(self, *, owner: str, request: Mapping[str, Any], model_name: str,
                      tasks: list[dict], keys: list[str], idempotency_key: str | None = None,
-                     study_id: str | None = None, max_active: int | None = None
-                     ) -> tuple[dict, bool, list[tuple[int, dict]]]:
+                     study_id: str | None = None, max_active: int | None = None,
+                     max_queued: int | None = None) -> tuple[dict, bool, list[tuple[int, dict]]]:
         """Store a study and one pending row per task; rows whose key is cached are done at once.
 
         Returns ``(summary, created, pending)``: ``created`` is False when ``(owner,
         idempotency_key)`` already named a study (that one is returned, ``pending`` empty);
         ``pending`` lists the ``(task_index, task)`` still to run. Raises :class:`StudyConflict`
         when that study was made from a different request, and :class:`TooManyActive` when the
-        study would have to run and ``owner`` already has ``max_active`` unfinished studies.
+        study would have to run and ``owner`` already has ``max_active`` unfinished studies, and
+        :class:`QueueFull` when its tasks would take the pending tasks of all studies past
+        ``max_queued``. The counts and the insert are one atomic step (see the module text).
         """
         req = _json_safe(dict(request))
         rhash = request_hash(req)
@@ -231,13 +288,9 @@ class Store:
         now = utcnow()
         sid = study_id or new_study_id()
         try:
-            with self._write_lock, self._session.begin() as s:
+            with self._writing() as s:
                 cached = self._cached(s, set(keys))
-                if max_active is not None and any(k not in cached for k in keys):
-                    active = s.scalar(select(func.count()).select_from(StudyRecord)
-                                      .where(StudyRecord.owner == owner, StudyRecord.status.in_(UNFINISHED))) or 0
-                    if active >= max_active:
-                        raise TooManyActive(int(active))
+                self._check_caps(s, owner, sum(1 for k in keys if k not in cached), max_active, max_queued)
                 pending = []
                 rows = []
                 done = 0
@@ -273,6 +326,23 @@ class Store:
             return found, False, []
         return summary, True, pending
 
+    def _check_caps(self, s: Session, owner: str, must_run: int, max_active: int | None,
+                    max_queued: int | None) -> None:
+        """Raise TooManyActive / QueueFull inside the creating transaction (locks held to its end)."""
+        if not must_run or (max_active is None and max_queued is None):
+            return
+        self._advisory(s, _lock_key(owner), _QUEUE_LOCK)  # always in this order: no lock cycle
+        if max_active is not None:
+            active = s.scalar(select(func.count()).select_from(StudyRecord)
+                              .where(StudyRecord.owner == owner, StudyRecord.status.in_(UNFINISHED))) or 0
+            if active >= max_active:
+                raise TooManyActive(int(active))
+        if max_queued is not None:
+            queued = int(s.scalar(select(func.count()).select_from(RowRecord)
+                                  .where(RowRecord.status == "pending")) or 0)
+            if queued + must_run > max_queued:
+                raise QueueFull(queued)
+
     def _by_idempotency(self, owner: str, key: str, rhash: str) -> dict | None:
         with self._session() as s:
             rec = s.scalars(select(StudyRecord).where(StudyRecord.owner == owner,
@@ -301,7 +371,7 @@ class Store:
             return
         row = _json_safe(row)
         try:
-            with self._write_lock, self._session.begin() as s:
+            with self._writing() as s:
                 if s.get(ResultRecord, key) is None:
                     s.add(ResultRecord(task_key=key, row=row, circuit=base64.b64decode(qpy_b64) if qpy_b64 else None,
                                        seconds=float(seconds if seconds is not None else row.get("row_seconds") or 0),
@@ -368,23 +438,25 @@ class Store:
 
     def mark_running(self, study_id: str) -> None:
         """queued → running (the executor started a task of the study)."""
-        with self._write_lock, self._session.begin() as s:
+        with self._writing() as s:
             s.execute(update(StudyRecord).where(StudyRecord.id == study_id, StudyRecord.status == "queued")
                       .values(status="running", updated_at=utcnow()))
 
     def record_row(self, study_id: str, task_index: int, row: Mapping[str, Any], seconds: float | None = None,
-                   *, key: str | None = None, cached: bool = False) -> bool:
+                   *, key: str | None = None, cached: bool = False, lease_owner: str | None = None) -> bool:
         """Store the finished row of a task: in the cache (unless the executor failed it) and,
         if the row was still pending, in the study (progress + status). Idempotent: a second
         call for the same row changes nothing and returns False. ``cached``: the row came
-        from the cache (or from another study's identical task), not from a computation."""
+        from the cache (or from another study's identical task), not from a computation.
+        ``lease_owner``: a queue worker's id; the row is written only while that worker holds
+        the row's lease (:meth:`claim_task`), else nothing changes and False is returned."""
         row = dict(row)
         qpy_b64 = row.pop("circuit_qpy_b64", None)
         circuit = base64.b64decode(qpy_b64) if qpy_b64 else None
         row = _json_safe(row)
         secs = float(seconds if seconds is not None else row.get("row_seconds") or 0.0)
         now = utcnow()
-        with self._write_lock, self._session.begin() as s:
+        with self._writing() as s:
             rec = s.get(RowRecord, (study_id, task_index))
             if rec is None:
                 return False
@@ -395,11 +467,12 @@ class Store:
                         s.add(ResultRecord(task_key=key, row=row, circuit=circuit, seconds=secs, created_at=now))
                 except IntegrityError:
                     pass  # another study stored the same key first: same content
-            changed = s.execute(update(RowRecord).where(RowRecord.study_id == study_id,
-                                                        RowRecord.task_index == task_index,
-                                                        RowRecord.status == "pending")
+            cond = [RowRecord.study_id == study_id, RowRecord.task_index == task_index, RowRecord.status == "pending"]
+            if lease_owner is not None:
+                cond.append(RowRecord.lease_owner == lease_owner)
+            changed = s.execute(update(RowRecord).where(*cond)
                                 .values(status=_row_status(row), row=row, seconds=secs, cached=cached,
-                                        updated_at=now)).rowcount
+                                        updated_at=now, lease_owner=None, lease_until=None)).rowcount
             if not changed:
                 return False
             s.execute(update(StudyRecord).where(StudyRecord.id == study_id)
@@ -418,7 +491,7 @@ class Store:
     def cancel(self, study_id: str) -> dict | None:
         """Mark an unfinished study and its pending rows cancelled; returns the summary."""
         now = utcnow()
-        with self._write_lock, self._session.begin() as s:
+        with self._writing() as s:
             rec = s.get(StudyRecord, study_id, with_for_update=True)
             if rec is None:
                 return None
@@ -428,6 +501,102 @@ class Store:
                 s.execute(update(RowRecord).where(RowRecord.study_id == study_id, RowRecord.status == "pending")
                           .values(status="cancelled", updated_at=now))
             return self._summary(rec)
+
+    # --- the queue ------------------------------------------------------------------
+    def claim_task(self, worker: str, lease_seconds: float) -> dict | None:
+        """Take one pending task whose lease is free or has expired, for ``lease_seconds``.
+
+        Round-robin: the owner whose last claim is oldest goes first (owners never served
+        before first), then that owner's study whose last claim is oldest (oldest study first
+        among equals), then that study's lowest pending row. Returns ``{"study_id",
+        "task_index", "task", "task_key", "attempts"}`` (``attempts`` counts this one) or None.
+        """
+        now = utcnow()
+        free = or_(RowRecord.lease_until.is_(None), RowRecord.lease_until < now)
+        with self._session() as s:  # an idle queue costs a read, not the write lock
+            if s.scalar(select(RowRecord.task_index).where(RowRecord.status == "pending", free).limit(1)) is None:
+                return None
+        with self._writing() as s:
+            self._advisory(s, _CLAIM_LOCK)
+            cands = s.execute(select(StudyRecord.id, StudyRecord.owner, StudyRecord.claimed_at, StudyRecord.created_at)
+                              .where(StudyRecord.status.in_(UNFINISHED),
+                                     exists().where(RowRecord.study_id == StudyRecord.id,
+                                                    RowRecord.status == "pending", free))).all()
+            if not cands:
+                return None
+            owners = set(c.owner for c in cands)
+            last = dict(s.execute(select(StudyRecord.owner, func.max(StudyRecord.claimed_at))
+                                  .where(StudyRecord.status.in_(UNFINISHED), StudyRecord.owner.in_(owners))
+                                  .group_by(StudyRecord.owner)).all())
+            never = dt.datetime.min.replace(tzinfo=dt.timezone.utc)
+            first_created = {}
+            for c in cands:
+                first_created[c.owner] = min(first_created.get(c.owner, c.created_at), c.created_at)
+            owner = min(owners, key=lambda o: (_aware(last.get(o)) or never, first_created[o], o))
+            study = min((c for c in cands if c.owner == owner),
+                        key=lambda c: (_aware(c.claimed_at) or never, c.created_at, c.id))
+            rec = s.scalars(select(RowRecord).where(RowRecord.study_id == study.id, RowRecord.status == "pending",
+                                                    free).order_by(RowRecord.task_index).limit(1)).first()
+            if rec is None:  # pragma: no cover - the candidate query just saw it
+                return None
+            rec.lease_owner, rec.lease_until = worker, now + dt.timedelta(seconds=lease_seconds)
+            rec.attempts = (rec.attempts or 0) + 1
+            s.execute(update(StudyRecord).where(StudyRecord.id == study.id)
+                      .values(claimed_at=now, status=case((StudyRecord.status == "queued", "running"),
+                                                          else_=StudyRecord.status)))
+            return {"study_id": rec.study_id, "task_index": int(rec.task_index), "task": dict(rec.task),
+                    "task_key": rec.task_key, "attempts": int(rec.attempts)}
+
+    def renew_leases(self, worker: str, lease_seconds: float) -> set[tuple[str, int]]:
+        """Extend every lease ``worker`` holds; returns the ``(study_id, task_index)`` it still holds
+        (a row that was cancelled, written, or taken by another worker after expiry is missing)."""
+        until = utcnow() + dt.timedelta(seconds=lease_seconds)
+        mine = (RowRecord.lease_owner == worker, RowRecord.status == "pending")
+        with self._writing() as s:
+            s.execute(update(RowRecord).where(*mine).values(lease_until=until))
+            return {(sid, int(i)) for sid, i in s.execute(select(RowRecord.study_id, RowRecord.task_index)
+                                                          .where(*mine))}
+
+    def release_leases(self, worker: str, rows: Iterable[tuple[str, int]] | None = None, *,
+                       count_attempt: bool = False) -> int:
+        """Give back the leases of ``worker`` (all, or those of ``rows``): the rows can be taken
+        again at once; the attempt is not counted unless ``count_attempt`` (the worker died).
+        Returns how many."""
+        cond = [RowRecord.lease_owner == worker, RowRecord.status == "pending"]
+        if rows is not None:
+            rows = list(rows)
+            if not rows:
+                return 0
+            cond.append(or_(*[(RowRecord.study_id == sid) & (RowRecord.task_index == int(i)) for sid, i in rows]))
+        with self._writing() as s:
+            return s.execute(update(RowRecord).where(*cond)
+                             .values(lease_owner=None, lease_until=None,
+                                     attempts=RowRecord.attempts if count_attempt else
+                                     case((RowRecord.attempts > 0, RowRecord.attempts - 1), else_=0))).rowcount
+
+    def lease_owners(self) -> set[str]:
+        """Workers holding a lease on a pending row now or before (expired leases included)."""
+        with self._session() as s:
+            return set(s.scalars(select(RowRecord.lease_owner).where(RowRecord.status == "pending",
+                                                                      RowRecord.lease_owner.is_not(None))
+                                 .distinct()).all())
+
+    def statuses(self, study_ids: Iterable[str]) -> dict[str, str]:
+        """study id -> status, for the given ids (unknown ids left out)."""
+        ids = list(set(study_ids))
+        if not ids:
+            return {}
+        with self._session() as s:
+            return dict(s.execute(select(StudyRecord.id, StudyRecord.status).where(StudyRecord.id.in_(ids))).all())
+
+    def queue_counts(self) -> dict[str, int]:
+        """``{"pending": rows waiting or running, "leased": of them held by a worker now}``."""
+        now = utcnow()
+        with self._session() as s:
+            pending = s.scalar(select(func.count()).select_from(RowRecord).where(RowRecord.status == "pending")) or 0
+            leased = s.scalar(select(func.count()).select_from(RowRecord)
+                              .where(RowRecord.status == "pending", RowRecord.lease_until >= now)) or 0
+        return {"pending": int(pending), "leased": int(leased)}
 
     def unfinished(self) -> list[tuple[str, list[tuple[int, dict]]]]:
         """Queued and running studies (oldest first) with their pending (task_index, task)."""
@@ -500,6 +669,10 @@ def best_connectivity(rows: list[dict]) -> str | None:
     if noisy:
         return max(noisy, key=lambda r: (r["state_fidelity"], -(r.get("two_qubit_gates") or 0)))["connectivity"]
     return min(ok, key=lambda r: (r.get("two_qubit_gates") or 0, r.get("depth") or 0))["connectivity"]
+
+
+def _aware(t: dt.datetime | None) -> dt.datetime | None:
+    return t.replace(tzinfo=dt.timezone.utc) if t is not None and t.tzinfo is None else t
 
 
 def _row_status(row: Mapping[str, Any]) -> str:

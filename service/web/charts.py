@@ -13,7 +13,8 @@ Chart kinds (:data:`CHART_KINDS`):
 * ``fidelity`` state fidelity and Hellinger fidelity per connectivity;
 * ``budget``   the error budget: Hellinger fidelity lost to each noise source, stacked;
 * ``sweep``    state fidelity against noise scale, with the fidelity target and each
-  connectivity's threshold scale marked (needs two or more noise scales).
+  connectivity's threshold scale marked (needs two or more noise scales);
+* ``fit``      the fit's loss per iteration (best restart), one line per family (fitted studies only).
 
 :func:`connectivity_chart` draws one connectivity with the model's variables on their
 physical qubits.
@@ -59,12 +60,13 @@ __all__ = [
     "per_connectivity",
 ]
 
-CHART_KINDS: tuple[str, ...] = ("gates", "fidelity", "budget", "sweep")
+CHART_KINDS: tuple[str, ...] = ("gates", "fidelity", "budget", "sweep", "fit")
 CHART_TITLES: dict[str, str] = {
     "gates": "Two-qubit gates and depth per connectivity",
     "fidelity": "State and Hellinger fidelity per connectivity",
     "budget": "Error budget: Hellinger fidelity lost per noise source",
     "sweep": "State fidelity against noise scale",
+    "fit": "Fit of the angles: loss per iteration (best restart)",
 }
 FORMATS: tuple[str, ...] = ("svg", "png")
 
@@ -154,6 +156,8 @@ def available_charts(rows: Iterable[Mapping[str, Any]]) -> list[str]:
               and r.get("noise_scale") is not None}
     if len(scales) >= 2:
         kinds.append("sweep")
+    if any(r.get("fit_curve") for r in ok):
+        kinds.append("fit")
     return kinds
 
 
@@ -169,6 +173,9 @@ def chart_description(kind: str, rows: Iterable[Mapping[str, Any]]) -> str:
         body = "; ".join(f"{_facet_title(key, several)}: " + "; ".join(
             f"{r['connectivity']}: state fidelity {_fmt(r.get('state_fidelity'))}, "
             f"Hellinger fidelity {_fmt(r.get('hellinger_fidelity'))}" for r in g) for key, g in facets(ok))
+    elif kind == "fit":
+        body = "; ".join(f"{fam}: {len(c)} iterations, final {r.get('fit_loss')} loss {_fmt(c[-1])}"
+                         for fam, (r, c) in _fit_curves(ok).items())
     elif kind == "budget":
         several = len({k[0] for k, _ in facets(ok)}) > 1
         body = "; ".join(f"{_facet_title(key, several)}: " + "; ".join(
@@ -212,10 +219,12 @@ def chart_figure(kind: str, rows: Iterable[Mapping[str, Any]]) -> Figure:
     ok = usable_rows(rows)
     if kind not in available_charts(ok):
         need = {"gates": "at least one finished row", "fidelity": "a noise simulation (not compile-only)",
+                "fit": "fitted angles (a fit block)",
                 "budget": "a noise simulation with the error budget",
                 "sweep": "finished noisy rows at two or more noise scales"}[kind]
         raise ToposcoutError(f"the chart {kind!r} needs {need}; this study has none", field="chart")
-    draw = {"gates": _draw_gates, "fidelity": _draw_fidelity, "budget": _draw_budget, "sweep": _draw_sweep}[kind]
+    draw = {"gates": _draw_gates, "fidelity": _draw_fidelity, "budget": _draw_budget, "sweep": _draw_sweep,
+            "fit": _draw_fit}[kind]
     per = per_connectivity(ok)
     panels = len(facets(ok)) if kind in ("fidelity", "budget") else 1
     width = max(6.4, panels * (1.1 * len(per) + 1.5) + 1.0) if kind != "sweep" else 7.0
@@ -233,6 +242,29 @@ def _caption(fig: Figure, text: str) -> None:
 
 def _names(per: Sequence[Mapping[str, Any]]) -> list[str]:
     return [str(r["connectivity"]) for r in per]
+
+
+def _fit_curves(rows) -> dict[str, tuple[Mapping[str, Any], list[float]]]:
+    """One (row, loss curve) per family (every row of a family carries the same fit)."""
+    out: dict[str, tuple[Mapping[str, Any], list[float]]] = {}
+    for r in rows:
+        if r.get("fit_curve") and str(r.get("family")) not in out:
+            out[str(r.get("family"))] = (r, [float(v) for v in r["fit_curve"]])
+    return out
+
+
+def _draw_fit(fig: Figure, rows) -> None:
+    ax = fig.subplots()
+    curves = _fit_curves(rows)
+    values = [v for _, c in curves.values() for v in c]
+    for fam, (r, c) in curves.items():
+        ax.plot(range(1, len(c) + 1), c, label=f"{fam} (final {c[-1]:.3g})")
+    if values and min(values) > 0:
+        ax.set_yscale("log")
+    loss = next((r.get("fit_loss") for r, _ in curves.values()), "kl")
+    ax.set_ylabel("KL(target ‖ model) (nats)" if loss == "kl" else "unbiased MMD² to the samples")
+    ax.set_xlabel("iteration (count)")
+    ax.legend(fontsize=8)
 
 
 def _draw_gates(fig: Figure, rows) -> None:
@@ -379,6 +411,12 @@ def connectivity_for_row(row: Mapping[str, Any], request: Mapping[str, Any] | No
     A ``custom`` connectivity is rebuilt from the edge lists in the study's request.
     """
     name = str(row.get("connectivity") or "")
+    if (request or {}).get("device"):  # a device study: the chip of its device file
+        from toposcout.compiler.devices import parse_device
+
+        dev = parse_device(request["device"])
+        if dev.name == name:
+            return dev.connectivity
     family = row.get("connectivity_family") or next(
         (f for f in ("all-to-all", "heavy-hex", "line", "ring", "grid", "custom") if name.startswith(f + "-")), None)
     n = int(row.get("variables") or 1)
@@ -538,3 +576,110 @@ def _save(fig: Figure, fmt: str, title: str, desc: str) -> bytes:
     extra = (f'<title id="chart-title">{escape(title)}</title>'
              f'<desc id="chart-desc">{escape(desc)}</desc>').encode()
     return svg[:m.start()] + open_tag + extra + svg[m.end():]
+
+
+# --- a device drawing: the chip at its coordinates, shaded by error -----------------------------
+#: our own sequential scale (pale yellow -> teal -> deep indigo): lightness falls monotonically and
+#: the hue runs along the blue-yellow axis, which red-green colour-vision deficiencies keep apart.
+DEVICE_SCALE = ("#fbf6cf", "#cfe6a8", "#8fcfa0", "#52b0a0", "#2f8798", "#2b5e8c", "#2a3a74", "#1f1b4d")
+
+
+def _scale_colour(x: float) -> str:
+    """Colour of ``x`` in [0, 1] on :data:`DEVICE_SCALE` (linear interpolation between stops)."""
+    x = min(max(x, 0.0), 1.0) * (len(DEVICE_SCALE) - 1)
+    i = min(int(x), len(DEVICE_SCALE) - 2)
+    f = x - i
+    a = [int(DEVICE_SCALE[i][k:k + 2], 16) for k in (1, 3, 5)]
+    b = [int(DEVICE_SCALE[i + 1][k:k + 2], 16) for k in (1, 3, 5)]
+    return "#" + "".join(f"{round(u + (v - u) * f):02x}" for u, v in zip(a, b))
+
+
+def _log_position(v: float, lo: float, hi: float) -> float:
+    import math
+
+    if hi <= lo or v <= 0:
+        return 0.0
+    return (math.log10(max(v, lo)) - math.log10(lo)) / (math.log10(hi) - math.log10(lo))
+
+
+def device_svg(device, row: Mapping[str, Any] | None = None, *, width: int = 760) -> str:
+    """The device at its coordinates: couplers shaded by two-qubit error, qubits by readout error
+    (both log scales, legends with units), and, from ``row``, the placed variables (outlined,
+    labelled) and the couplers where routing put SWAPs (dashed). Plain SVG text."""
+    import math
+
+    prof = device.profile
+    pts = device.coords()
+    xs, ys = [p[0] for p in pts], [p[1] for p in pts]
+    span = max(max(xs) - min(xs), max(ys) - min(ys), 1e-9)
+    margin, legend_h = 40, 110
+    scale = (width - 2 * margin) / span
+    height = int((max(ys) - min(ys)) * scale + 2 * margin + legend_h)
+
+    def xy(q):
+        return margin + (pts[q][0] - min(xs)) * scale, margin + (max(ys) - pts[q][1]) * scale
+
+    e2 = {e: prof.edge(*e).two_qubit_error for e in device.connectivity.edges}
+    ro = {q: (prof.qubit(q).p1_given_0 + prof.qubit(q).p0_given_1) / 2 for q in range(device.num_qubits)}
+    lo2, hi2 = max(min(e2.values(), default=1e-4), 1e-6), max(max(e2.values(), default=1e-2), 1e-5)
+    lor, hir = max(min(ro.values()), 1e-6), max(max(ro.values()), 1e-5)
+    if hi2 <= lo2:
+        hi2 = lo2 * 10
+    if hir <= lor:
+        hir = lor * 10
+    layout = dict((row or {}).get("layout") or {})
+    placed = {int(p): v for v, p in layout.items()}
+    swaps = {tuple(sorted(int(x) for x in k.split("-"))) for k in ((row or {}).get("swap_edges") or {})}
+    r = max(6.0, min(16.0, scale * 0.28))
+    out = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
+           f'viewBox="0 0 {width} {height}" font-family="sans-serif" font-size="11">',
+           f"<title>Device {escape(device.name)}: couplers and qubits shaded by error</title>",
+           f"<desc>{device.num_qubits} qubits, {len(e2)} couplers. Coupler colour: two-qubit error (average gate "
+           "infidelity, log scale); qubit colour: readout error (mean of p(1|0) and p(0|1), log scale). "
+           + ("Outlined qubits hold the row's variables; dashed couplers carry SWAPs. " if row else "")
+           + "Figures from the device file, not a measurement.</desc>",
+           '<rect width="100%" height="100%" fill="white"/>']
+    for (a, b), e in sorted(e2.items()):
+        (x1, y1), (x2, y2) = xy(a), xy(b)
+        out.append(f'<line x1="{x1:.1f}" y1="{y1:.1f}" x2="{x2:.1f}" y2="{y2:.1f}" stroke-width="{r * 0.7:.1f}" '
+                   f'stroke="{_scale_colour(_log_position(e, lo2, hi2))}" stroke-linecap="round">'
+                   f"<title>coupler {a}-{b}: two-qubit error {e:.3g}</title></line>")
+    for a, b in sorted(swaps):
+        if (a, b) in e2:
+            (x1, y1), (x2, y2) = xy(a), xy(b)
+            out.append(f'<line x1="{x1:.1f}" y1="{y1:.1f}" x2="{x2:.1f}" y2="{y2:.1f}" stroke="#d0006f" '
+                       f'stroke-width="2.5" stroke-dasharray="5,3"><title>SWAPs on {a}-{b}</title></line>')
+    for q in range(device.num_qubits):
+        x, y = xy(q)
+        fill = _scale_colour(_log_position(ro[q], lor, hir))
+        p = prof.qubit(q)
+        ring = ' stroke="#d0006f" stroke-width="3.5"' if q in placed else ' stroke="#444" stroke-width="1"'
+        label = escape(str(placed[q])) if q in placed else str(q)
+        dark = _log_position(ro[q], lor, hir) > 0.55
+        out.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="{r:.1f}" fill="{fill}"{ring}>'
+                   f"<title>qubit {q}: readout error {ro[q]:.3g}, T1 {p.t1_us:.3g} us, T2 {p.t2_us:.3g} us, "
+                   f"1q error {p.one_qubit_error:.3g}" + (f"; holds {escape(str(placed[q]))}" if q in placed else "")
+                   + "</title></circle>")
+        out.append(f'<text x="{x:.1f}" y="{y + 4:.1f}" text-anchor="middle" '
+                   f'fill="{"white" if dark else "black"}">{label}</text>')
+    # legends
+    y0 = height - legend_h + 20
+    for k, (title, lo, hi) in enumerate((("two-qubit error (average gate infidelity), couplers", lo2, hi2),
+                                         ("readout error (mean of p(1|0), p(0|1)), qubits", lor, hir))):
+        yy = y0 + k * 45
+        out.append(f'<text x="{margin}" y="{yy - 4}">{escape(title)}, log scale</text>')
+        steps = 40
+        w = (width - 2 * margin) / 2 / steps
+        for i in range(steps):
+            out.append(f'<rect x="{margin + i * w:.1f}" y="{yy}" width="{w + 0.5:.1f}" height="12" '
+                       f'fill="{_scale_colour(i / (steps - 1))}"/>')
+        out.append(f'<text x="{margin}" y="{yy + 25}">{lo:.2g}</text>')
+        out.append(f'<text x="{margin + steps * w:.1f}" y="{yy + 25}" text-anchor="end">{hi:.2g}</text>')
+        mid = 10 ** ((math.log10(lo) + math.log10(hi)) / 2)
+        out.append(f'<text x="{margin + steps * w / 2:.1f}" y="{yy + 25}" text-anchor="middle">{mid:.2g}</text>')
+    if row:
+        out.append(f'<text x="{width / 2 + 20:.0f}" y="{y0 + 8}">outlined: qubits holding variables '
+                   f'(label = variable)</text>')
+        out.append(f'<text x="{width / 2 + 20:.0f}" y="{y0 + 26}">dashed: couplers with SWAPs</text>')
+    out.append("</svg>")
+    return "\n".join(out)

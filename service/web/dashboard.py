@@ -318,7 +318,9 @@ def _drawable(study: Mapping[str, Any], actives: Mapping[int, set[int] | None]) 
 _COLUMNS = [("task_index", "#"), *((k, FIELDS[k].title) for k in DASHBOARD_COLUMNS[:1]), ("status", "status"),
             *((k, FIELDS[k].title) for k in DASHBOARD_COLUMNS[1:])]
 #: what each column means, shown as the header's tooltip (from the row definition)
-_MEANINGS = {k: (FIELDS[k].meaning + (f" ({FIELDS[k].unit})" if FIELDS[k].unit else "")) for k in DASHBOARD_COLUMNS}
+_MEANINGS = {k: (FIELDS[k].meaning + (f" ({FIELDS[k].unit})" if FIELDS[k].unit else ""))
+             for k in (*DASHBOARD_COLUMNS, "family", "angles_fitted", "fit_loss_value", "kl_target_ideal",
+                       "kl_target_noisy")}
 
 
 def _study_context(study: dict, actives: Mapping[int, set[int] | None]) -> dict:
@@ -326,6 +328,13 @@ def _study_context(study: dict, actives: Mapping[int, set[int] | None]) -> dict:
     kinds = charts.available_charts(rows)
     cols = [(k, h) for k, h in _COLUMNS if k in ("task_index", "connectivity", "status")
             or any(r.get(k) is not None for r in rows)]
+    if len({r.get("family") for r in rows if r.get("family")}) > 1:  # a family comparison: side by side
+        cols.insert(2, ("family", FIELDS["family"].title))
+        rows = sorted(rows, key=lambda r: (str(r.get("connectivity")), r.get("noise_scale") or 0,
+                                           str(r.get("family"))))
+    if any(r.get("angles_fitted") for r in rows):
+        cols += [(k, FIELDS[k].title) for k in ("angles_fitted", "fit_loss_value", "kl_target_ideal", "kl_target_noisy")
+                 if any(r.get(k) is not None for r in rows)]
     req = study.get("request") or {}
     profile = next((r.get("profile") for r in rows if r.get("profile")), None) or req.get("profile")
     return dict(study=study, rows=rows, columns=cols, meanings=_MEANINGS, kinds=kinds, titles=charts.CHART_TITLES,
@@ -441,8 +450,14 @@ async def drawing(request: Request, study_id: str, name: str, download: bool = F
         if q.status_code == 200:
             active = await run_in_threadpool(_active_qubits, q.content)
         try:
-            conn = charts.connectivity_for_row(row, study.get("request"))
-            body = await run_in_threadpool(lambda: charts.connectivity_chart(row, conn, active=active, fmt=fmt))
+            req = study.get("request") or {}
+            if req.get("device") and fmt == "svg":  # the chip at its coordinates, shaded by error
+                from toposcout.compiler.devices import parse_device
+
+                body = charts.device_svg(parse_device(req["device"]), row).encode("utf-8")
+            else:
+                conn = charts.connectivity_for_row(row, study.get("request"))
+                body = await run_in_threadpool(lambda: charts.connectivity_chart(row, conn, active=active, fmt=fmt))
         except ToposcoutError as exc:
             return _bad(request, str(exc), exc.field or "connectivity")
         _cache.put(key, body)
@@ -487,7 +502,7 @@ def _form_choices() -> dict:
 
 _FORM_DEFAULTS = {"connectivities": ["line", "grid", "all-to-all"], "extra_connectivities": "", "profile": "",
                   "noise_scales": "1", "fidelity_target": "", "compile_only": False, "gate_set": "cx",
-                  "strategy": "auto", "seeds": "5", "layers": "1"}
+                  "strategy": "auto", "seeds": "5", "layers": "1", "families": ["clique"], "fit": False}
 
 
 @router.get("/submit", response_class=HTMLResponse)
@@ -508,12 +523,13 @@ def _form_field(api_field: str | None) -> str:
         return "connectivities"
     if head in ("noise_scales", "noise_scale"):
         return "noise_scales"
-    if head in ("seeds", "layers", "fidelity_target", "profile", "gate_set", "strategy", "compile_only"):
+    if head in ("seeds", "layers", "fidelity_target", "profile", "gate_set", "strategy", "compile_only", "device",
+                "fit", "families"):
         return head
     return "form"
 
 
-def _check_form(values: dict) -> dict[str, str]:
+def _check_form(values: dict, device_chosen: bool = False) -> dict[str, str]:
     """Every problem of the filled fields at once, by field, with the limits of compiler.options."""
     from toposcout.compiler.options import LIMITS
 
@@ -545,7 +561,7 @@ def _check_form(values: dict) -> dict[str, str]:
     if bad:
         errors["noise_scales"] = (f"noise scales: {', '.join(repr(b) for b in bad)} not "
                                   f"{LIMITS['noise_scale'].describe()}")
-    if not values["connectivities"] and not values["extra_connectivities"].strip():
+    if not device_chosen and not values["connectivities"] and not values["extra_connectivities"].strip():
         errors["connectivities"] = "choose at least one connectivity"
     return errors
 
@@ -565,6 +581,8 @@ async def submit(request: Request):
         "strategy": str(form.get("strategy") or "auto"),
         "seeds": str(form.get("seeds") or ""),
         "layers": str(form.get("layers") or ""),
+        "families": [str(v) for v in form.getlist("families")],
+        "fit": bool(form.get("fit")),
     }
 
     # a refused form keeps the chosen file: its content comes back in a hidden field (a browser cannot
@@ -593,7 +611,8 @@ async def submit(request: Request):
     def again(found: dict[str, str], status: int = 422) -> Response:
         return _page(request, "submit.html", status, values=values, errors=found, kept=kept, **_form_choices())
 
-    errors.update(_check_form(values))
+    device_chosen = bool(getattr(form.get("device_file"), "filename", ""))
+    errors.update(_check_form(values, device_chosen))
     if errors:
         return again(errors)
     conns = values["connectivities"] + [c for c in values["extra_connectivities"].replace(",", " ").split() if c]
@@ -602,7 +621,19 @@ async def submit(request: Request):
     for key in ("profile", "fidelity_target", "gate_set", "strategy", "seeds", "layers"):
         if values[key].strip():
             data[key] = values[key].strip()
+    device = form.get("device_file")
+    if device is not None and hasattr(device, "read") and getattr(device, "filename", ""):
+        try:
+            data["device"] = (await device.read()).decode("utf-8")
+        except UnicodeDecodeError:
+            return again({"device": f"the device file {device.filename!r} is not UTF-8 text"})
+        data.pop("connectivities", None)  # a device fixes the connectivity and the figures
+        data.pop("profile", None)
     data["compile_only"] = "true" if values["compile_only"] else "false"
+    if values["families"]:
+        data["families"] = values["families"]
+    if values["fit"]:
+        data["fit"] = "kl"
     data = {k: v for k, v in data.items() if v != []}
     resp = await _api(request, "POST", "/v1/studies", data=data, files={"file": (filename, content, ctype)})
     if resp.status_code in (200, 201, 202):

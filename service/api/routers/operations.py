@@ -53,25 +53,29 @@ def docs(owner: Owner):
 @router.get("/healthz", response_model=S.Health, summary="Liveness (no token needed)")
 async def healthz(request: Request):
     store: Store = request.app.state.store
+    settings = request.app.state.settings
     return JSONResponse({"status": "ok", "version": __version__, "database": store.dialect,
-                         "executor": type(request.app.state.executor).__name__})
+                         "executor": "DaskExecutor" if settings.dask_address else "LocalExecutor"})
 
 
 @router.get("/metrics", responses=ERRORS_READ | {200: {"content": {"text/plain": {"schema": {"type": "string"}}}}},
             summary="Prometheus text format: studies by status, task durations, queue length")
 def metrics(request: Request, owner: Owner, store: StoreDep):
-    return PlainTextResponse(metrics_text(store, request.app.state.executor),
+    return PlainTextResponse(metrics_text(store),
                              media_type="text/plain; version=0.0.4; charset=utf-8")
 
 
-def metrics_text(store: Store, ex) -> str:
+def metrics_text(store: Store) -> str:
     lines = ["# HELP toposcout_build_info The toposcout version serving.", "# TYPE toposcout_build_info gauge",
              f'toposcout_build_info{{version="{__version__}"}} 1',
              "# HELP toposcout_studies Studies in the store by status.", "# TYPE toposcout_studies gauge"]
     for status, n in store.counts_by_status().items():
         lines.append(f'toposcout_studies{{status="{status}"}} {n}')
-    lines += ["# HELP toposcout_queue_length Tasks queued or running in the executor.",
-              "# TYPE toposcout_queue_length gauge", f"toposcout_queue_length {ex.pending()}"]
+    queue = store.queue_counts()
+    lines += ["# HELP toposcout_queue_length Tasks queued or running (pending rows of all studies).",
+              "# TYPE toposcout_queue_length gauge", f"toposcout_queue_length {queue['pending']}",
+              "# HELP toposcout_tasks_leased Pending tasks a queue worker holds a live lease on (running).",
+              "# TYPE toposcout_tasks_leased gauge", f"toposcout_tasks_leased {queue['leased']}"]
     counts, total, seconds = store.task_seconds_histogram(TASK_BUCKETS)
     lines += ["# HELP toposcout_task_duration_seconds Wall time of computed tasks (cache hits excluded).",
               "# TYPE toposcout_task_duration_seconds histogram"]
@@ -79,10 +83,4 @@ def metrics_text(store: Store, ex) -> str:
         lines.append(f'toposcout_task_duration_seconds_bucket{{le="{b:g}"}} {c}')
     lines += [f'toposcout_task_duration_seconds_bucket{{le="+Inf"}} {total}',
               f"toposcout_task_duration_seconds_sum {seconds:.6f}", f"toposcout_task_duration_seconds_count {total}"]
-    stats = getattr(ex, "stats", None)
-    if stats is not None:
-        lines += ["# HELP toposcout_executor_events_total Executor events since start-up (computed, cached, "
-                  "shared, timeouts, worker_deaths, stopped).", "# TYPE toposcout_executor_events_total counter"]
-        for event in ("computed", "cached", "shared", "timeouts", "worker_deaths", "stopped"):
-            lines.append(f'toposcout_executor_events_total{{event="{event}"}} {int(stats.get(event, 0))}')
     return "\n".join(lines) + "\n"

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import collections
 import io
 import json
+import threading
 from typing import Annotated
 
 from fastapi import APIRouter, Header, Query, Request
@@ -14,11 +16,11 @@ from starlette.concurrency import run_in_threadpool
 from toposcout.compiler.compile import load_qpy
 from toposcout.service.api import schemas as S
 from toposcout.service.api.bodies import FORM_BODY, read_request, validate_request
-from toposcout.service.api.deps import ExecutorDep, FinishedCache, Owner, SettingsDep, StoreDep, StudyId, TaskIndex
+from toposcout.service.api.deps import FinishedCache, Owner, SettingsDep, StoreDep, StudyId, TaskIndex
 from toposcout.service.api.errors import ERROR_BODY, ERRORS_READ, ERRORS_STUDY, ERRORS_SUBMIT, error
-from toposcout.service.api.planning import prepare
+from toposcout.service.api.planning import Prepared, prepare
 from toposcout.service.output import write_csv
-from toposcout.service.store import FINISHED_STATES, Store, TooManyActive, best_connectivity
+from toposcout.service.store import FINISHED_STATES, QueueFull, Store, TooManyActive, best_connectivity
 
 __all__ = ["router"]
 
@@ -31,26 +33,64 @@ IDEMPOTENCY_KEY = Header(alias="Idempotency-Key", min_length=1, max_length=200, 
 @router.post("", status_code=202, response_model=S.StudyCreated,
              responses=ERRORS_SUBMIT | {202: {"headers": {"Location": {"schema": {"type": "string"}}}}},
              openapi_extra=FORM_BODY, summary="Submit a study (JSON body or a model file upload)")
-async def submit_study(request: Request, owner: Owner, settings: SettingsDep, store: StoreDep, executor: ExecutorDep,
+async def submit_study(request: Request, owner: Owner, settings: SettingsDep, store: StoreDep,
                        idempotency_key: Annotated[str | None, IDEMPOTENCY_KEY] = None):
     data, filename = await read_request(request, settings)
-    return await run_in_threadpool(_submit, data, filename, owner, idempotency_key, settings, store, executor)
+    return await run_in_threadpool(_submit, data, filename, owner, idempotency_key, settings, store)
 
 
-def _submit(data: dict, filename: str | None, owner: str, idempotency_key: str | None, settings, store: Store,
-            executor) -> JSONResponse:
-    req = validate_request(data)
-    prep = prepare(req, settings, filename=filename)
+class _PreparedMemo:
+    """The last few prepared requests of this process, by their canonical JSON text: a resubmission
+    (the common case of a cached study) skips validation and task building. Only small bodies
+    (at most ``max_chars``) are kept; a request that failed is never kept."""
+
+    def __init__(self, size: int = 256, max_chars: int = 65536):
+        self.size, self.max_chars = size, max_chars
+        self._d: collections.OrderedDict = collections.OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, data: dict, filename: str | None, settings) -> Prepared:
+        try:
+            key = (json.dumps(data, sort_keys=True, separators=(",", ":")), filename, id(settings))
+        except (TypeError, ValueError, RecursionError):
+            key = None
+        if key is not None and len(key[0]) <= self.max_chars:
+            with self._lock:
+                hit = self._d.get(key)
+                if hit is not None:
+                    self._d.move_to_end(key)
+                    return hit
+        else:
+            key = None
+        prep = prepare(validate_request(data), settings, filename=filename)
+        if key is not None:
+            with self._lock:
+                self._d[key] = prep
+                while len(self._d) > self.size:
+                    self._d.popitem(last=False)
+        return prep
+
+
+_PREPARED = _PreparedMemo()
+
+
+def _submit(data: dict, filename: str | None, owner: str, idempotency_key: str | None, settings,
+            store: Store) -> JSONResponse:
+    """Store the study: its pending rows are the queue the queue workers take tasks from."""
+    prep = _PREPARED.get(data, filename, settings)
     try:
         summary, created, pending = store.create_study(
             owner=owner, request=prep.request, model_name=prep.model.name, tasks=prep.tasks, keys=prep.keys,
-            idempotency_key=idempotency_key, max_active=settings.max_active_studies_per_owner)
+            idempotency_key=idempotency_key, max_active=settings.max_active_studies_per_owner,
+            max_queued=settings.max_queued_tasks)
     except TooManyActive as exc:
         return error(429, f"owner {owner} already has {exc.active} studies queued or running (cap "
                           f"max_active_studies_per_owner={settings.max_active_studies_per_owner}); wait for one "
                           "to finish or cancel one, then retry", None, {"Retry-After": "5"})
-    if pending:
-        executor.submit(summary["id"], pending)
+    except QueueFull as exc:
+        return error(429, f"the service already has {exc.queued} tasks queued and this study's "
+                          f"{len(prep.tasks)} would pass its cap (max_queued_tasks={settings.max_queued_tasks}); "
+                          "retry later", None, {"Retry-After": "30"})
     url = f"/v1/studies/{summary['id']}"
     body = {"id": summary["id"], "url": url, "status": summary["status"], "progress": summary["progress"]}
     return JSONResponse(body, status_code=202, headers={"Location": url})
@@ -88,7 +128,7 @@ def list_studies(owner: Owner, store: StoreDep, status: Annotated[S.StudyStatus 
                responses=ERRORS_STUDY | {403: ERROR_BODY | {"description": "only the owner may cancel a study"},
                                          409: ERROR_BODY | {"description": "the study already finished"}},
                summary="Cancel a study (the record stays, marked cancelled)")
-def cancel_study(study_id: StudyId, owner: Owner, store: StoreDep, executor: ExecutorDep):
+def cancel_study(study_id: StudyId, owner: Owner, store: StoreDep):
     study_owner = store.study_owner(study_id)
     if study_owner is None:
         return error(404, f"no study with id {study_id[:64]!r}", "study_id")
@@ -97,7 +137,7 @@ def cancel_study(study_id: StudyId, owner: Owner, store: StoreDep, executor: Exe
     summary = store.cancel(study_id)
     if summary["status"] in ("done", "failed"):
         return error(409, f"study {study_id} already finished ({summary['status']}); nothing to cancel", "study_id")
-    executor.cancel(study_id)
+    # the queue workers holding its tasks see the status and stop them
     return JSONResponse(summary)
 
 
