@@ -77,6 +77,7 @@ import stim
 from qiskit.circuit.library import get_standard_gate_name_mapping
 from qiskit.quantum_info import Operator
 
+from toposcout.compiler.options import DEFAULT_REQUIREMENT_TOLERANCE
 from toposcout.compiler.errors import ToposcoutError
 from toposcout.compiler.noise import (
     VIRTUAL_GATES,
@@ -506,7 +507,8 @@ def clifford_budget(sched: Scheduled, profile: DeviceProfile, *, rel_se: float =
 
 # --- requirement ------------------------------------------------------------------------
 def clifford_threshold(sched_or_compiled, profile: DeviceProfile, *, fidelity_target: float = 0.5,
-                       rel_tol: float = 0.02, max_evaluations: int = 30, rel_se: float = 0.05,
+                       rel_tol: float = DEFAULT_REQUIREMENT_TOLERANCE, max_evaluations: int = 40,
+                       rel_se: float = 0.05,
                        max_shots: int = 2_000_000, seed: int = 0) -> dict[str, Any]:
     """The largest two-qubit error at which the Clifford estimate of the state fidelity still
     reaches ``fidelity_target``: the bisection of
@@ -543,7 +545,8 @@ def clifford_threshold(sched_or_compiled, profile: DeviceProfile, *, fidelity_ta
               "threshold_noise_scale": None, "upper_noise_scale": None, "fidelity_at_threshold": None,
               "evaluations": 0, "saturated": False, "threshold_two_qubit_error_se": None,
               "threshold_bracket_two_qubit_error": None, "fidelity_at_threshold_se": None,
-              "threshold_shots": 0, "threshold_method": "clifford", "threshold_label": CLIFFORD_LABEL}
+              "threshold_shots": 0, "threshold_method": "clifford", "threshold_label": CLIFFORD_LABEL,
+              "requirement_tolerance": rel_tol}
     if worst <= 0:
         return result
     s_max = 0.75 / worst

@@ -15,7 +15,7 @@ from qiskit import QuantumCircuit
 from toposcout.compiler.errors import CompileError
 from toposcout.compiler.targets import Connectivity, GateSet
 
-__all__ = ["Compiled", "check_coupling", "measured_layout", "qasm3_text", "qpy_bytes", "load_qpy", "NON_GATES"]
+__all__ = ["Compiled", "check_coupling", "measured_layout", "qasm3_text", "qpy_bytes", "load_qpy", "with_layout", "NON_GATES"]
 
 #: instructions that are not gates: not counted in depth or gate counts.
 NON_GATES = ("measure", "barrier", "delay")
@@ -110,12 +110,47 @@ def qasm3_text(compiled: Compiled) -> str:
     return qasm3.dumps(compiled.circuit)
 
 
+def with_layout(compiled: Compiled) -> QuantumCircuit:
+    """The compiled circuit with a qiskit ``TranspileLayout`` whichever strategy produced it.
+
+    The generic strategy's circuit has the one ``transpile`` set; the structured one builds
+    its circuit directly, so its layout is made here from ``initial_layout`` and ``final_layout``:
+    virtual qubit i (variable i) starts on ``initial_layout[i]`` and ends on ``final_layout[i]``;
+    the physical qubits no variable uses are ancillas, matched start-to-end in sorted order."""
+    c = compiled.circuit
+    if c.layout is not None:
+        return c
+    from qiskit.circuit import AncillaRegister, QuantumRegister
+    from qiskit.transpiler import Layout, TranspileLayout
+
+    n, total = len(compiled.initial_layout), c.num_qubits
+    virtual = QuantumRegister(n, "q")
+    ancillas = AncillaRegister(total - n, "ancilla") if total > n else None
+    free_start = [p for p in range(total) if p not in set(compiled.initial_layout)]
+    free_end = [p for p in range(total) if p not in set(compiled.final_layout)]
+    start = {virtual[i]: p for i, p in enumerate(compiled.initial_layout)}
+    mapping = {virtual[i]: i for i in range(n)}
+    for j, p in enumerate(free_start):
+        start[ancillas[j]] = p
+        mapping[ancillas[j]] = n + j
+    initial = Layout(start)
+    initial.add_register(virtual)
+    if ancillas is not None:
+        initial.add_register(ancillas)
+    moved = {c.qubits[p]: q for p, q in zip(compiled.initial_layout, compiled.final_layout)}
+    moved.update({c.qubits[p]: q for p, q in zip(free_start, free_end)})
+    out = c.copy()
+    out._layout = TranspileLayout(initial, mapping, final_layout=Layout(moved), _input_qubit_count=n,
+                                  _output_qubit_list=list(out.qubits))
+    return out
+
+
 def qpy_bytes(compiled: Compiled) -> bytes:
-    """The compiled circuit as QPY (keeps the layout)."""
+    """The compiled circuit as QPY, with its layout (:func:`with_layout`) whichever strategy won."""
     from qiskit import qpy
 
     buf = io.BytesIO()
-    qpy.dump(compiled.circuit, buf)
+    qpy.dump(with_layout(compiled), buf)
     return buf.getvalue()
 
 

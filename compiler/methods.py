@@ -381,7 +381,7 @@ def _threshold(compiled, ansatz, sched, profile, t, budget, threads) -> dict[str
     n, k = sched.num_qubits, len(sched.measured)
     if estimate_memory_bytes(n, k) <= budget:
         r = threshold_two_qubit_error(compiled, ansatz, profile, fidelity_target=t["fidelity_target"],
-                                      memory_budget_bytes=budget, max_parallel_threads=threads)
+                                      rel_tol=_tolerance(t), memory_budget_bytes=budget, max_parallel_threads=threads)
         r["threshold_method"] = "density-matrix"
         return r
     if not _clifford_available():
@@ -389,4 +389,12 @@ def _threshold(compiled, ansatz, sched, profile, t, budget, threads) -> dict[str
                             "or the clifford estimate (not installed)", field="fidelity_target")
     from toposcout.compiler.clifford import clifford_threshold
 
-    return clifford_threshold(compiled, profile, fidelity_target=t["fidelity_target"], seed=int(t.get("seed") or 0))
+    return clifford_threshold(compiled, profile, fidelity_target=t["fidelity_target"], rel_tol=_tolerance(t),
+                              seed=int(t.get("seed") or 0))
+
+
+def _tolerance(t: Mapping[str, Any]) -> float:
+    from toposcout.compiler.options import DEFAULT_REQUIREMENT_TOLERANCE
+
+    tol = t.get("requirement_tolerance")
+    return DEFAULT_REQUIREMENT_TOLERANCE if tol is None else float(tol)

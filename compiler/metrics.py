@@ -38,6 +38,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from toposcout.compiler.options import DEFAULT_REQUIREMENT_TOLERANCE
 from toposcout.compiler.errors import ToposcoutError
 from toposcout.compiler.model import target_distribution
 from toposcout.compiler.noise import SOURCES, NoiseSwitches, Scheduled, operation_errors, readout_matrices, schedule
@@ -297,7 +298,7 @@ def noise_figures(compiled, ansatz, profile: DeviceProfile, *, memory_budget_byt
 
 
 def threshold_two_qubit_error(compiled, ansatz, profile: DeviceProfile, *, fidelity_target: float = 0.5,
-                              rel_tol: float = 0.02, max_evaluations: int = 30,
+                              rel_tol: float = DEFAULT_REQUIREMENT_TOLERANCE, max_evaluations: int = 40,
                               memory_budget_bytes: int | None = None, max_parallel_threads: int = 0) -> dict[str, Any]:
     """The largest two-qubit error rate at which the state fidelity still reaches
     ``fidelity_target``, by bisection on the noise scale (every error rate of the profile is
@@ -305,7 +306,10 @@ def threshold_two_qubit_error(compiled, ansatz, profile: DeviceProfile, *, fidel
 
     Returns ``threshold_two_qubit_error`` (= profile two-qubit error x threshold scale),
     ``threshold_noise_scale``, ``upper_noise_scale`` (a scale known to miss the target),
-    ``fidelity_at_threshold``, ``fidelity_target``, ``evaluations``
+    ``fidelity_at_threshold``, ``fidelity_target``, ``evaluations``,
+    ``threshold_bracket_two_qubit_error`` ([lower, upper]: the final bracket, the threshold lies
+    in it; the requirement is its lower end), ``requirement_tolerance`` (``rel_tol``: the
+    bisection stops when (upper - lower) / upper is below it, default 0.1 %)
     and ``saturated`` (True when even the largest physical scale keeps the target: the
     threshold is then a lower bound). Relies on the fidelity decreasing with the scale."""
     if not 0 < fidelity_target < 1:
@@ -331,7 +335,8 @@ def threshold_two_qubit_error(compiled, ansatz, profile: DeviceProfile, *, fidel
     worst = max([e2] + [dict(items).get("two_qubit_error", e2) for _p, items in base.edge_overrides])
     result = {"fidelity_target": fidelity_target, "threshold_two_qubit_error": None,
               "threshold_noise_scale": None, "upper_noise_scale": None, "fidelity_at_threshold": None,
-              "evaluations": 0, "saturated": False}
+              "evaluations": 0, "saturated": False, "threshold_bracket_two_qubit_error": None,
+              "requirement_tolerance": rel_tol}
     if worst <= 0:
         return result
     s_max = 0.75 / worst
@@ -339,7 +344,8 @@ def threshold_two_qubit_error(compiled, ansatz, profile: DeviceProfile, *, fidel
     while fid(hi) >= fidelity_target:
         if hi >= s_max:
             result.update(threshold_two_qubit_error=e2 * hi, threshold_noise_scale=hi,
-                          fidelity_at_threshold=fid(hi), evaluations=evaluations, saturated=True)
+                          fidelity_at_threshold=fid(hi), evaluations=evaluations, saturated=True,
+                          threshold_bracket_two_qubit_error=[e2 * hi, None])
             return result
         lo, hi = hi, min(hi * 4.0, s_max)
     while hi - lo > rel_tol * hi and evaluations < max_evaluations:
@@ -349,5 +355,6 @@ def threshold_two_qubit_error(compiled, ansatz, profile: DeviceProfile, *, fidel
         else:
             hi = mid
     result.update(threshold_two_qubit_error=e2 * lo, threshold_noise_scale=lo, upper_noise_scale=hi,
-                  fidelity_at_threshold=fid(lo), evaluations=evaluations)
+                  fidelity_at_threshold=fid(lo), evaluations=evaluations,
+                  threshold_bracket_two_qubit_error=[e2 * lo, e2 * hi])
     return result

@@ -765,6 +765,17 @@ def _nodelink_to_dict(obj: Mapping[str, Any], limits: Limits | None = None) -> d
     if len(obj[key]) > limits.max_links:
         raise CapacityError(f"the graph has {len(obj[key])} {key}, more than the cap of {limits.max_links} "
                             f"on {key}", field=key)
+    # networkx adds a node for a link end it has not seen; a model's variables are its declared nodes
+    declared = {n.get("id") if isinstance(n, Mapping) else None for n in obj["nodes"]}
+    links = obj.get(key)
+    for i, link in enumerate(links if isinstance(links, list) else []):
+        if not isinstance(link, Mapping):
+            continue
+        for end in ("source", "target"):
+            v = link.get(end)
+            if end in link and _hashable(v) and v not in declared:
+                raise ModelError(f"{key}[{i}].{end}: node {v!r} is not declared in 'nodes'",
+                                 field=f"{key}[{i}].{end}")
     try:
         g = nx.node_link_graph(dict(obj), edges=key)
     except (KeyError, TypeError, ValueError, AttributeError, nx.NetworkXError) as exc:
@@ -790,6 +801,14 @@ def _nodelink_to_dict(obj: Mapping[str, Any], limits: Limits | None = None) -> d
     if gname:
         out["name"] = str(gname)
     return out
+
+
+def _hashable(v: Any) -> bool:
+    try:
+        hash(v)
+    except TypeError:
+        return False
+    return True
 
 
 # --------------------------------------------------------------------------- distribution

@@ -21,6 +21,9 @@ Conventions (also written at the top of every profile file):
   are clipped at their physical maximum (gate infidelity ``(d-1)/d``, a readout probability 1).
   Gate durations are *not* scaled.
 
+A profile file may start from a built-in profile with ``base = "NAME"`` and give only what
+differs (its tables are merged key by key onto the base's; see :func:`_with_base`).
+
 Per-qubit overrides (``[[qubit]]`` tables with ``index`` and any of ``t1_us``, ``t2_us``,
 ``one_qubit_error``, ``p1_given_0``, ``p0_given_1``, ``one_qubit_ns``) and per-edge overrides (``[[edge]]``
 tables with ``qubits = [a, b]`` and ``two_qubit_error`` and/or ``two_qubit_ns``) address
@@ -242,7 +245,48 @@ MAX_OVERRIDES = 4096
 MAX_OVERRIDE_QUBIT = 9999
 
 _KNOWN_TOP = {"name", "description", "intended_connectivity", "gates", "readout", "coherence",
-              "qubit", "edge", "noise_scale"}
+              "qubit", "edge", "noise_scale", "base"}
+_TABLE_KEYS = {"gates": ("one_qubit_error", "two_qubit_error", "one_qubit_ns", "two_qubit_ns", "measure_ns"),
+               "readout": ("p1_given_0", "p0_given_1"), "coherence": ("t1_us", "t2_us")}
+
+
+def _with_base(d: Mapping[str, Any], depth: int = 0) -> dict[str, Any]:
+    """``d`` on top of its ``base = "NAME"`` (a built-in profile): the tables ``gates``, ``readout``
+    and ``coherence`` are merged key by key, the ``[[qubit]]`` and ``[[edge]]`` overrides are the
+    base's followed by ``d``'s, every other key of ``d`` replaces the base's. Without a name and a
+    description of its own, the result is named ``custom`` and says what it changed."""
+    base_name = d.get("base")
+    if not isinstance(base_name, str) or base_name not in PROFILE_NAMES:
+        raise ProfileError(f"base: {base_name!r} is not a built-in profile; built-in profiles: "
+                           f"{', '.join(PROFILE_NAMES)}", field="base")
+    if depth > 4:
+        raise ProfileError("base: the chain of base profiles is too long (a loop?)", field="base")
+    path = next(p / f"{base_name}.toml" for p in profile_dirs() if (p / f"{base_name}.toml").is_file())
+    base = tomllib.loads(path.read_text(encoding="utf-8"))
+    base.setdefault("name", base_name)
+    if "base" in base:
+        base = _with_base(base, depth + 1)
+    out: dict[str, Any] = {k: v for k, v in base.items() if k not in ("name", "description")}
+    changed = []
+    for key, value in d.items():
+        if key == "base":
+            continue
+        if key in _TABLE_KEYS:
+            if not isinstance(value, Mapping):
+                raise ProfileError(f"{key}: expected a table [{key}]", field=key)
+            for k in value:
+                if k not in _TABLE_KEYS[key]:
+                    raise ProfileError(f"{key}.{k}: unknown key (known: {', '.join(_TABLE_KEYS[key])})",
+                                       field=f"{key}.{k}")
+            out[key] = {**dict(base.get(key) or {}), **dict(value)}
+            changed += [f"{key}.{k}" for k in value]
+        elif key in ("qubit", "edge"):
+            out[key] = list(base.get(key) or []) + list(value or [])
+            changed.append(key)
+        else:
+            out[key] = value
+    out.setdefault("description", f"{base['name']} with {', '.join(changed) or 'no change'}")
+    return out
 
 
 def parse_profile(d: Mapping[str, Any], *, noise_scale: float | None = None, name: str | None = None) -> DeviceProfile:
@@ -253,6 +297,8 @@ def parse_profile(d: Mapping[str, Any], *, noise_scale: float | None = None, nam
     if unknown:
         raise ProfileError(f"{unknown[0]}: unknown profile key (known: {', '.join(sorted(_KNOWN_TOP))})",
                            field=unknown[0])
+    if "base" in d:
+        d = _with_base(d)
     gates, readout, coh = _table(d, "gates"), _table(d, "readout"), _table(d, "coherence")
     for key in ("qubit", "edge"):  # the override tables, counted before they are walked
         entries = d.get(key)

@@ -256,8 +256,9 @@ ROW_FIELDS: tuple[RowField, ...] = (
        group="requirement"),
     _F("threshold_two_qubit_error_se", "standard error of threshold_two_qubit_error (clifford bisection)",
        group="requirement"),
-    _F("threshold_bracket_two_qubit_error", "the bisection's final bracket of two-qubit errors (clifford)",
-       kind="list", group="requirement"),
+    _F("threshold_bracket_two_qubit_error", "the bisection's final bracket [lower, upper] of two-qubit errors: the "
+       "threshold lies in it (lower is the requirement)", kind="list", group="requirement"),
+    _F("requirement_tolerance", "relative width (upper - lower) / upper the bisection stopped at", group="requirement"),
     _F("fidelity_at_threshold_se", "standard error of fidelity_at_threshold (clifford)", group="requirement"),
     _F("threshold_shots", "shots per evaluation of the clifford bisection", "shots", "int", group="requirement"),
     _F("threshold_label", "the caution shown beside a clifford requirement", kind="str", group="requirement"),

@@ -11,7 +11,7 @@ A task::
      "compile_only": False, "profile": "NAME" | {profile dict} | None, "noise_scale": 1.0,
      "memory_budget_bytes": None, "error_budget": True, "fidelity_target": None,
      "keep_circuit": False, "method": "auto", "time_budget_seconds": None, "trajectories": None,
-     "precision": None, "device": None | {device dict}, "placement": None | "errors" | "count",
+     "precision": None, "requirement_tolerance": None, "device": None | {device dict}, "placement": None | "errors" | "count",
      "regions": None | K, "region_rank": 0, "jitter": None | sigma, "jitter_samples": 100}
 
 With ``device`` (the normalised content of a device file, ``toposcout.compiler.devices``) the
@@ -42,16 +42,19 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
+import re
 import time
 from collections import OrderedDict
+from dataclasses import replace
 from typing import Any, Iterable, Mapping, Sequence
 
 from toposcout.compiler.ansatz import FAMILIES, build_ansatz
 from toposcout.compiler.compile import STRATEGIES
 from toposcout.compiler.errors import CapacityError, ModelError, TargetError, ToposcoutError
 from toposcout.compiler.model import Limits, Model, parse_model
-from toposcout.compiler.targets import BUILTIN_FAMILIES, make_connectivity, parse_edge_list, get_gate_set, read_edge_list
+from toposcout.compiler.options import LIMITS, requirement_target
+from toposcout.compiler.targets import (BUILTIN_FAMILIES, NAME_PATTERN, get_gate_set, make_connectivity, name_from_path,
+                                        parse_edge_list, read_edge_list, read_positions)
 from toposcout.compiler.version import __version__
 
 __all__ = ["TASK_DEFAULTS", "normalise_task", "task_key", "make_tasks", "run_task", "connectivity_spec"]
@@ -74,6 +77,7 @@ TASK_DEFAULTS: dict[str, Any] = {
     "time_budget_seconds": None,
     "trajectories": None,
     "precision": None,
+    "requirement_tolerance": None,
     "device": None,
     "placement": None,
     "regions": None,
@@ -84,22 +88,82 @@ TASK_DEFAULTS: dict[str, Any] = {
 
 
 def connectivity_spec(spec: str | Mapping[str, Any]) -> dict:
-    """Turn ``"grid:3x4"``, ``"custom:FILE"`` or a dict into ``{"family", "size", "edges"}``."""
+    """Turn ``"grid:3x4"``, ``"custom:FILE"``, ``"custom:NAME=FILE"`` or a dict into
+    ``{"family", "size", "edges"}`` (and ``"name"`` for a custom one: NAME, else the file's stem)."""
     if isinstance(spec, Mapping):
         d = {"family": spec.get("family"), "size": spec.get("size"), "edges": spec.get("edges")}
+        if spec.get("name") is not None:
+            d["name"] = str(spec["name"])
+        if spec.get("positions") is not None:
+            d["positions"] = [[float(x), float(y)] for x, y in spec["positions"]]
     else:
         family, _, size = str(spec).partition(":")
         d = {"family": family.strip(), "size": size or None, "edges": None}
         if d["family"] == "custom":
             if not size:
-                raise TargetError("custom needs an edge-list file: custom:PATH", field="connectivity")
-            d["edges"] = [list(e) for e in read_edge_list(size)]
+                raise TargetError("custom needs an edge-list file: custom:PATH or custom:NAME=PATH",
+                                  field="connectivity")
+            name, path = _custom_name(size)
+            d["edges"] = [list(e) for e in read_edge_list(path)]
+            pos = read_positions(path)
+            if pos is not None:
+                d["positions"] = pos
             d["size"] = None
+            d["name"] = name or name_from_path(path)
     if isinstance(d["edges"], str):
         d["edges"] = [list(e) for e in parse_edge_list(d["edges"])]
     if d["size"] is not None:
         d["size"] = str(d["size"])
     return d
+
+
+def _custom_name(text: str) -> tuple[str | None, str]:
+    """``NAME=PATH`` → (NAME, PATH); a plain path → (None, PATH)."""
+    name, eq, path = text.partition("=")
+    if eq and re.fullmatch(NAME_PATTERN, name) and path:
+        return name, path
+    return None, text
+
+
+def _explicit_name(spec: str | Mapping[str, Any]) -> bool:
+    if isinstance(spec, Mapping):
+        return spec.get("name") is not None
+    family, _, size = str(spec).partition(":")
+    return family.strip() == "custom" and _custom_name(size)[0] is not None
+
+
+def _unique_names(specs: list[dict], conns: list, explicit: list[bool]) -> None:
+    """One row name per coupling graph: a derived custom name that another graph of the study
+    already has gets ``-2``, ``-3``, ...; a NAME given twice for different graphs is refused."""
+    graphs: dict[str, tuple] = {}
+    for i, (spec, conn) in enumerate(zip(specs, conns)):
+        graph = (conn.num_qubits, tuple(conn.edges))
+        name = conn.name
+        if graphs.get(name, graph) == graph:
+            graphs[name] = graph
+            continue
+        if explicit[i] or spec["family"] != "custom":
+            other = "a built-in connectivity" if spec["family"] != "custom" else "another coupling graph"
+            raise TargetError(f"connectivity name {name!r} is taken by {other} of this study; give each custom "
+                              "graph its own name (custom:NAME=FILE)", field="connectivity")
+        k = 2
+        while f"{name}-{k}" in graphs and graphs[f"{name}-{k}"] != graph:
+            k += 1
+        spec["name"] = f"{name}-{k}"
+        graphs[spec["name"]] = graph
+
+
+def resolve_connectivities(connectivities: Sequence[str | Mapping[str, Any]] | None, num_variables: int
+                           ) -> tuple[list[dict], list]:
+    """The specs and the Connectivity objects of a study's connectivities, with the row names the
+    study gives them (:func:`_unique_names`); raises TargetError before any work."""
+    given = list(connectivities or BUILTIN_FAMILIES)
+    specs = [connectivity_spec(c) for c in given]
+    conns = [make_connectivity(spec["family"], num_variables, size=spec["size"], edges=spec["edges"],
+                               name=spec.get("name"), positions=spec.get("positions")) for spec in specs]
+    _unique_names(specs, conns, [_explicit_name(c) for c in given])
+    conns = [replace(c, name=s["name"]) if s.get("name") and c.name != s["name"] else c for s, c in zip(specs, conns)]
+    return specs, conns
 
 
 def normalise_task(task: Mapping[str, Any]) -> dict:
@@ -132,11 +196,12 @@ def make_tasks(
     regions_simulated: int = 3,
     **options: Any,
 ) -> list[dict]:
-    """One task per (connectivity, noise scale); options are task fields.
+    """One task per (connectivity, profile, noise scale); options are task fields.
 
     connectivities: default None: every built-in family, sized to the model (with a
         ``device`` option: the device's chip, and ``connectivities`` must be None).
     noise_scales: default None: one task per connectivity at ``options["noise_scale"]``.
+    ``options["profile"]`` may be a list of profiles (names or dicts): one study, every profile.
     regions_simulated: default 3; with ``regions`` = K, one task per rank 0..min(K, this)-1
         (the best regions by ESP are the ones simulated).
     """
@@ -149,19 +214,35 @@ def make_tasks(
         device.check_fits(m.num_variables)
         options["device"] = device.to_dict()
         connectivities = [{"family": "custom", "size": None, "edges": [list(e) for e in device.connectivity.edges]}]
-    specs = [connectivity_spec(c) for c in (connectivities or BUILTIN_FAMILIES)]
+    if device is None:
+        specs, _conns = resolve_connectivities(connectivities, m.num_variables)
+    else:  # the device's chip is the one connectivity; run_task takes it from the device
+        specs = [connectivity_spec(c) for c in connectivities]
     scales = list(noise_scales) if noise_scales else [options.pop("noise_scale", 1.0)]
+    given_profiles = options.get("profile")
+    profiles = list(given_profiles) if isinstance(given_profiles, (list, tuple)) else [given_profiles]
+    if not profiles:
+        raise ModelError("profile: give at least one profile (or none for the default)", field="profile")
+    options["profile"] = profiles[0]
     # check every combination before any expensive work starts
     probe = dict(TASK_DEFAULTS)
     probe.update(options)
+    if probe["fidelity_target"] is not None:  # a bad target is refused even where it would not be used
+        LIMITS["fidelity_target"].check(probe["fidelity_target"])
+    target = requirement_target(probe["fidelity_target"], scales, probe["compile_only"])
+    if target is not None or "fidelity_target" in options:
+        options["fidelity_target"] = probe["fidelity_target"] = target
     for s in scales:
         _check_options({**probe, "noise_scale": s})
-    if device is None:
-        for spec in specs:
-            make_connectivity(spec["family"], m.num_variables, size=spec["size"], edges=spec["edges"])
     get_gate_set(probe["gate_set"])
+    names = []
+    for prof in profiles:
+        if prof is not None or not probe["compile_only"]:
+            names.append(_profile(prof, 1.0).name)  # an unknown profile is refused with compile_only too
+    if len(set(names)) != len(names):
+        raise ModelError(f"profile: {sorted(n for n in names if names.count(n) > 1)[0]!r} is given twice; rows of "
+                         "two profiles are told apart by the profile's name", field="profile")
     if not probe["compile_only"]:
-        _profile(probe["profile"], 1.0)
         if probe["method"] == "density-matrix":
             from toposcout.compiler.simulate import capacity_message, default_memory_budget_bytes, estimate_memory_bytes
 
@@ -173,14 +254,16 @@ def make_tasks(
     ranks = range(min(options["regions"], max(1, regions_simulated))) if options.get("regions") else [None]
     tasks = []
     for spec in specs:
-        for k, s in enumerate(scales):
-            for r in ranks:
-                t = {"model": m.to_dict(), "connectivity": spec, **options, "noise_scale": float(s)}
-                if r is not None:
-                    t["region_rank"] = r
-                if options.get("fidelity_target") is not None and k > 0:
-                    t["fidelity_target"] = None  # the threshold is searched once per connectivity
-                tasks.append(t)
+        for prof in profiles:
+            for k, s in enumerate(scales):
+                for r in ranks:
+                    t = {"model": m.to_dict(), "connectivity": spec, **options, "profile": prof,
+                         "noise_scale": float(s)}
+                    if r is not None:
+                        t["region_rank"] = r
+                    if options.get("fidelity_target") is not None and k > 0:
+                        t["fidelity_target"] = None  # the threshold is searched once per connectivity and profile
+                    tasks.append(t)
     return tasks
 
 
@@ -190,10 +273,11 @@ def _check_options(t: Mapping[str, Any]) -> None:
                          field="strategy")
     if t["family"] not in FAMILIES:
         raise ModelError(f"unknown family {t['family']!r}; choose one of {', '.join(FAMILIES)}", field="family")
-    for name in ("seeds", "layers"):
-        v = t[name]
-        if not isinstance(v, int) or isinstance(v, bool) or v < 1 or v > 64:
-            raise ModelError(f"{name} must be an integer from 1 to 64, got {v!r}", field=name)
+    for name in ("seeds", "layers", "seed"):
+        LIMITS[name].check(t[name])
+    for name in ("fidelity_target", "requirement_tolerance"):
+        if t.get(name) is not None:
+            LIMITS[name].check(t[name])
     from toposcout.compiler.methods import check_method_options
 
     check_method_options(t["method"], precision=t["precision"], trajectories=t["trajectories"],
@@ -201,9 +285,7 @@ def _check_options(t: Mapping[str, Any]) -> None:
     from toposcout.compiler.regions import check_placement_options
 
     check_placement_options(t)
-    ns = t["noise_scale"]
-    if not isinstance(ns, (int, float)) or isinstance(ns, bool) or not math.isfinite(ns) or ns < 0:
-        raise ModelError(f"noise_scale must be a finite number >= 0, got {ns!r}", field="noise_scale")
+    LIMITS["noise_scale"].check(t["noise_scale"])
 
 
 def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
@@ -283,7 +365,8 @@ _COMPILED_SIZE = 8
 def task_connectivity(t: dict[str, Any], model, spec: Mapping[str, Any]):
     """(connectivity, device name or None) of a task; a device's figures become ``t["profile"]``."""
     if t.get("device") is None:
-        return make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"]), None
+        return make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"],
+                                 name=spec.get("name"), positions=spec.get("positions")), None
     from toposcout.compiler.devices import parse_device  # only device tasks need the device reader
 
     dev = parse_device(t["device"])

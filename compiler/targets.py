@@ -18,8 +18,9 @@ Examples:
 from __future__ import annotations
 
 import math
+import re
 import tomllib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
 from typing import Sequence
@@ -93,6 +94,8 @@ class Connectivity:
     num_qubits: int
     edges: tuple[tuple[int, int], ...]
     size: str | None = None  # the size argument that rebuilds it (e.g. "3x4", "5")
+    #: drawing positions of a custom graph's qubits, from its file (``pos Q X Y`` lines); None: computed
+    positions: tuple[tuple[float, float], ...] | None = field(default=None, compare=False)
 
     def coupling_map(self) -> CouplingMap:
         """A bidirectional qiskit CouplingMap."""
@@ -111,8 +114,17 @@ class Connectivity:
         return g
 
     def coords(self) -> list[tuple[float, float]]:
-        """Drawing coordinates for each physical qubit (lattice positions where natural)."""
+        """Drawing coordinates for each physical qubit: lattice positions (line, ring, grid,
+        heavy-hex as its brick-wall lattice with every coupling of unit length), a custom graph's
+        positions from its file, else a planar straight-line layout when the graph is planar
+        (networkx), and only otherwise a force-directed one."""
         n = self.num_qubits
+        if self.positions is not None and len(self.positions) == n:
+            return [(float(x), float(y)) for x, y in self.positions]
+        if self.family == "heavy-hex":
+            pos = _heavy_hex_coords(self)
+            if pos is not None:
+                return pos
         if self.family == "line":
             return [(float(i), 0.0) for i in range(n)]
         if self.family in ("ring", "all-to-all"):
@@ -120,12 +132,41 @@ class Connectivity:
         if self.family == "grid":
             _, cols = (int(x) for x in self.size.split("x"))
             return [(float(i % cols), -float(i // cols)) for i in range(n)]
-        pos = nx.kamada_kawai_layout(self.graph())
+        g = self.graph()
+        planar, _ = nx.check_planarity(g)
+        pos = nx.planar_layout(g) if planar else nx.kamada_kawai_layout(g)
         return [(float(pos[i][0]), float(pos[i][1])) for i in range(n)]
 
     def to_dict(self) -> dict:
         return {"name": self.name, "family": self.family, "num_qubits": self.num_qubits,
                 "edges": [list(e) for e in self.edges], "size": self.size}
+
+
+def _heavy_hex_coords(conn: "Connectivity") -> list[tuple[float, float]] | None:
+    """The heavy-hex lattice drawn as a brick wall: qiskit's ``from_heavy_hex(d)`` numbers the d x d
+    data qubits first (row-major); they go on a grid of spacing 2, every other qubit at the mean of
+    its placed neighbours (flag qubits between two data qubits, syndrome qubits between two flags).
+    None when the result is not a lattice drawing (positions collide or a coupling is not of unit
+    length), e.g. if the numbering changes."""
+    d = int(conn.size) if conn.size and conn.size.isdigit() else 0
+    n = conn.num_qubits
+    if d < 3 or d * d > n:
+        return None
+    nb: dict[int, set[int]] = {i: set() for i in range(n)}
+    for a, b in conn.edges:
+        nb[a].add(b)
+        nb[b].add(a)
+    pos = {i: (2.0 * (i % d), -2.0 * (i // d)) for i in range(d * d)}
+    for _ in range(4):
+        for q in range(n):
+            placed = [pos[x] for x in nb[q] if x in pos]
+            if q not in pos and len(placed) >= 2:
+                pos[q] = (sum(p[0] for p in placed) / len(placed), sum(p[1] for p in placed) / len(placed))
+    if len(pos) != n or len(set(pos.values())) != n:
+        return None
+    if any(abs(math.dist(pos[a], pos[b]) - 1.0) > 1e-9 for a, b in conn.edges):
+        return None
+    return [pos[i] for i in range(n)]
 
 
 def heavy_hex_qubits(distance: int) -> int:
@@ -158,6 +199,20 @@ def _positive_int(size, family: str) -> int:
     if v < 1 or str(v) != str(size).strip():
         raise TargetError(f"{family} size {size!r} must be a positive integer", field="connectivity")
     return v
+
+
+#: a custom connectivity's name (its row name and its --qasm-dir file name)
+NAME_PATTERN = r"[A-Za-z0-9][A-Za-z0-9._-]{0,47}"
+
+
+def name_from_path(path: str | Path) -> str:
+    """A custom connectivity's default name: the file's stem, other characters turned into '-'.
+
+    >>> name_from_path("chips/lab ladder (v2).txt")
+    'lab-ladder-v2'
+    """
+    stem = re.sub(r"[^A-Za-z0-9._-]+", "-", Path(path).stem).strip("-._")[:48]
+    return stem or "custom"
 
 
 def read_edge_list(path: str | Path) -> list[tuple[int, int]]:
@@ -210,6 +265,36 @@ def check_edge_list(edges: Sequence[Sequence[int]], where: str = "edges") -> lis
     return out
 
 
+def read_positions(path: str | Path) -> list[list[float]] | None:
+    """Drawing positions from an edge-list file's ``pos Q X Y`` lines (one per qubit), or None
+    when it has none; raises TargetError naming the line of a malformed one."""
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except (FileNotFoundError, IsADirectoryError, UnicodeDecodeError):
+        return None
+    found: dict[int, list[float]] = {}
+    for lineno, line in enumerate(text.splitlines(), start=1):
+        parts = line.split("#", 1)[0].replace(",", " ").split()
+        if not parts or parts[0] != "pos":
+            continue
+        try:
+            q, x, y = int(parts[1]), float(parts[2]), float(parts[3])
+            if len(parts) != 4 or q < 0 or not (math.isfinite(x) and math.isfinite(y)):
+                raise ValueError
+        except (ValueError, IndexError):
+            raise TargetError(f"{path} line {lineno}: expected 'pos QUBIT X Y', found {line.strip()!r}",
+                              field=f"line {lineno}") from None
+        found[q] = [x, y]
+    if not found:
+        return None
+    n = max(found) + 1
+    missing = [q for q in range(n) if q not in found]
+    if missing:
+        raise TargetError(f"{path}: positions are given for some qubits but not for {missing[:5]}; give a "
+                          "'pos Q X Y' line for every qubit or none", field="connectivity")
+    return [found[q] for q in range(n)]
+
+
 def parse_edge_list(text: str, where: str = "edge list") -> list[tuple[int, int]]:
     edges = []
     first: dict[tuple[int, int], int] = {}
@@ -218,6 +303,8 @@ def parse_edge_list(text: str, where: str = "edge list") -> list[tuple[int, int]
         if not line:
             continue
         parts = line.replace(",", " ").split()
+        if parts[0] == "pos":  # a drawing position (read_positions), not an edge
+            continue
         if len(parts) != 2 or not all(p.isdigit() for p in parts):
             raise TargetError(f"{where} line {lineno}: expected two qubit indices 'a b', found {line!r}",
                               field=f"line {lineno}")
@@ -246,6 +333,8 @@ def make_connectivity(
     *,
     size: int | str | Sequence[int] | None = None,
     edges: Sequence[Sequence[int]] | None = None,
+    name: str | None = None,
+    positions: Sequence[Sequence[float]] | None = None,
 ) -> Connectivity:
     """The connectivity of ``family`` sized for ``num_variables`` (or to ``size``).
 
@@ -253,6 +342,7 @@ def make_connectivity(
         number of qubits; grid: ``"RxC"``, ``(R, C)`` or one number for a square; heavy-hex:
         the odd code distance.
     edges: the edge list of a ``custom`` connectivity.
+    name: a ``custom`` connectivity's row name (:data:`NAME_PATTERN`); default ``custom-Q``.
     """
     n = num_variables
     if family not in CONNECTIVITY_FAMILIES:
@@ -316,7 +406,14 @@ def make_connectivity(
             parts = nx.number_connected_components(g)
             raise TargetError(f"the custom coupling graph has {parts} disconnected parts; every qubit must be "
                               f"reachable from every other", field="connectivity")
-        c = Connectivity(f"custom-{q}", family, q, e, None)
+        if name is not None and not re.fullmatch(NAME_PATTERN, str(name)):
+            raise TargetError(f"custom connectivity name {str(name)[:60]!r}: use letters, digits, '.', '_' and '-' "
+                              "(at most 48, starting with a letter or digit)", field="connectivity")
+        if positions is not None and len(positions) != q:
+            raise TargetError(f"the custom coupling graph has {q} qubits but {len(positions)} drawing positions; "
+                              "give one position per qubit or none", field="connectivity")
+        pos = None if positions is None else tuple((float(x), float(y)) for x, y in positions)
+        c = Connectivity(str(name) if name else f"custom-{q}", family, q, e, None, positions=pos)
     if c.num_qubits < n:
         raise _too_small(n, c.name, c.num_qubits)
     return c
@@ -329,7 +426,10 @@ def parse_connectivity(spec: str, num_variables: int) -> Connectivity:
     if family == "custom":
         if not size:
             raise TargetError("custom needs an edge-list file: custom:PATH", field="connectivity")
-        return make_connectivity("custom", num_variables, edges=read_edge_list(size))
+        name, eq, path = size.partition("=")
+        if eq and re.fullmatch(NAME_PATTERN, name) and path:
+            return make_connectivity("custom", num_variables, edges=read_edge_list(path), name=name)
+        return make_connectivity("custom", num_variables, edges=read_edge_list(size), name=name_from_path(size))
     return make_connectivity(family, num_variables, size=size or None)
 
 

@@ -43,6 +43,7 @@ import numpy as np
 from qiskit_aer import AerSimulator
 
 from toposcout.compiler.errors import CapacityError, ToposcoutError
+from toposcout.compiler.options import LIMITS
 from toposcout.compiler.metrics import (
     apply_readout,
     clique_figures,
@@ -84,7 +85,7 @@ GROUPS = 20
 #: default stopping rule: standard error of the state fidelity below this.
 DEFAULT_PRECISION = 0.01
 #: hard cap on trajectories of one run.
-MAX_TRAJECTORIES = 20000
+MAX_TRAJECTORIES = int(LIMITS["trajectories"].high)  # the one table of limits
 #: matrix-product-state bond-dimension cap and singular-value truncation threshold.
 MPS_MAX_BOND = 256
 MPS_TRUNCATION = 1e-10

@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any, Sequence
 
 from toposcout.compiler.errors import ToposcoutError
+from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, DEFAULT_REQUIREMENT_TOLERANCE, LIMITS
 from toposcout.compiler.targets import BUILTIN_FAMILIES, GATE_SETS
 from toposcout.service.output import CAUTION, rows_table, sort_rows, write_csv, write_json
 
@@ -38,23 +39,33 @@ def _parser() -> argparse.ArgumentParser:
     c = sub.add_parser("compare", help="compile (and simulate) a model on several connectivities")
     c.add_argument("model", help="model file: our JSON format, UAI (.uai) or networkx node-link JSON")
     c.add_argument("--connectivity", "-c", action="append", metavar="NAME[:SIZE]",
-                   help=f"repeatable; one of {', '.join(BUILTIN_FAMILIES)}, or custom:EDGEFILE; "
+                   help=f"repeatable; one of {', '.join(BUILTIN_FAMILIES)}, or custom:EDGEFILE (named by its stem) or "
+                        f"custom:NAME=EDGEFILE; "
                         f"default: all built-in families")
     c.add_argument("--gate-set", default="cx", choices=GATE_SETS, help="native gate set (default cx)")
     c.add_argument("--strategy", default=None, choices=("generic", "structured", "auto"),
                    help="compilation strategy (default auto: the better of generic and structured; with --device "
                         "one row per generic and structured)")
-    c.add_argument("--seeds", type=int, default=5, help="transpiler seeds tried by generic (default 5)")
+    c.add_argument("--seeds", type=int, default=5,
+                   help=f"transpiler seeds tried by generic, {LIMITS['seeds'].describe()} (default 5)")
     c.add_argument("--family", action="append", choices=("clique", "pairwise"),
                    help="circuit family; repeat for rows of each (family, connectivity) (default clique)")
-    c.add_argument("--layers", type=int, default=1, help="repetitions of block + rotations (default 1)")
+    c.add_argument("--layers", type=int, default=1,
+                   help=f"repetitions of block + rotations, {LIMITS['layers'].describe()} (default 1)")
     c.add_argument("--seed", type=int, default=0, help="seed of the random angles (default 0)")
     c.add_argument("--max-order", type=int, help="keep only terms of at most this order")
-    c.add_argument("--profile", help="device profile name or TOML file (default: the superconducting-like class)")
+    c.add_argument("--profile", action="append", metavar="NAME|FILE",
+                   help="device profile name or TOML file (default: the superconducting-like class); repeat to "
+                        "compare device classes in one study")
     c.add_argument("--noise-scale", type=float, action="append", metavar="X",
                    help="multiply every error rate by X; repeat for a sweep (default 1)")
     c.add_argument("--fidelity-target", type=float, default=None,
-                   help="with a sweep, find the largest 2q error reaching this state fidelity (default 0.5)")
+                   help="find the largest 2q error reaching this state fidelity, "
+                        f"{LIMITS['fidelity_target'].describe()} (default {DEFAULT_FIDELITY_TARGET} with a sweep "
+                        "of two or more noise scales, else none)")
+    c.add_argument("--requirement-tolerance", type=float, metavar="FRACTION",
+                   help="the requirement's bisection stops when its bracket (upper - lower) / upper is below this "
+                        f"(default {DEFAULT_REQUIREMENT_TOLERANCE}); rows report the bracket")
     c.add_argument("--compile-only", action="store_true", help="skip the noise simulation")
     c.add_argument("--device", metavar="FILE",
                    help="a device file (TOML: chip, coordinates, per-qubit and per-coupler figures) or an example "
@@ -91,6 +102,7 @@ def _parser() -> argparse.ArgumentParser:
     _fit_arguments(c, compare=True)
     c.add_argument("--server", metavar="URL", help="run the study on a toposcout server instead")
     c.add_argument("--token", help="bearer token for --server (default: $TOPOSCOUT_TOKEN)")
+    c.add_argument("--label", help="with --server: a label for the study (the study list shows and filters it)")
 
     f = sub.add_parser("fit", help="fit a model's angles to its target (KL) or to samples (MMD)")
     f.add_argument("model", help="model file: our JSON format, UAI (.uai) or networkx node-link JSON")
@@ -322,63 +334,83 @@ def _compare(args, out, err) -> int:
     if args.memory_budget is not None:
         options["memory_budget_bytes"] = int(args.memory_budget * 2**30)
     scales = args.noise_scale or [1.0]
-    if len(scales) > 1 or args.fidelity_target is not None:
-        options["fidelity_target"] = 0.5 if args.fidelity_target is None else args.fidelity_target
-    if args.profile and Path(args.profile).suffix == ".toml":
+    if args.fidelity_target is not None:  # else make_tasks applies the one default (compiler.options)
+        options["fidelity_target"] = args.fidelity_target
+    if args.requirement_tolerance is not None:
+        options["requirement_tolerance"] = args.requirement_tolerance
+    if args.profile:
         from toposcout.compiler.profiles import load_profile
 
-        options["profile"] = load_profile(args.profile).to_dict()
+        profiles = [load_profile(p).to_dict() if Path(p).suffix == ".toml" else p for p in args.profile]
+        options["profile"] = profiles[0] if len(profiles) == 1 else profiles
     if args.qasm_dir:
         options["keep_circuit"] = True  # the rows bring their compiled circuits for the files
-    if device is not None:
-        options.update(device=device.to_dict(), profile=None)
-        if args.gate_set == "cx" and "--gate-set" not in (args.argv or ()):
-            options["gate_set"] = device.native_gate
-    options.update(placement=args.placement, regions=args.regions, jitter=args.jitter,
-                   jitter_samples=args.jitter_samples)
-    # a device fixes the connectivity; with no --strategy its rows compare both strategies
-    strategies = [options["strategy"]] if args.strategy or device is None else ["generic", "structured"]
-    connectivities = None if device is not None else args.connectivity
-    families = args.family or ["clique"]
+    try:
+        if device is not None:
+            options.update(device=device.to_dict(), profile=None)
+            if args.gate_set == "cx" and "--gate-set" not in (args.argv or ()):
+                options["gate_set"] = device.native_gate
+        options.update(placement=args.placement, regions=args.regions, jitter=args.jitter,
+                       jitter_samples=args.jitter_samples)
+        # a device fixes the connectivity; with no --strategy its rows compare both strategies
+        strategies = [options["strategy"]] if args.strategy or device is None else ["generic", "structured"]
+        connectivities = None if device is not None else args.connectivity
+        families = args.family or ["clique"]
 
-    def build(**extra: Any) -> list[dict]:
-        return [t for st in strategies for t in make_tasks(model, connectivities, noise_scales=scales,
-                                                           **{**options, "strategy": st, **extra})]
+        def build(**extra: Any) -> list[dict]:
+            return [t for st in strategies for t in make_tasks(model, connectivities, noise_scales=scales,
+                                                               **{**options, "strategy": st, **extra})]
 
-    if args.fit and args.server:  # the server fits (in its workers): the tasks carry the fit request
-        settings = _fit_settings(args, model)
-        request = {"loss": settings.loss, "restarts": settings.restarts, "max_iter": settings.max_iter,
-                   "tol": settings.tol, "optimizer": settings.optimizer, "seed": settings.seed,
-                   "bandwidths": list(settings.bandwidths),
-                   "samples": None if settings.samples is None else [int(x) for x in settings.samples]}
-        tasks = [t for fam in families for t in build(family=fam, fit_request=request)]
-    elif args.fit:
-        from toposcout.service.fitting import FitCache, default_cache_dir, fitted_tasks, format_report
+        if args.fit and args.server:  # the server fits (in its workers): the tasks carry the fit request
+            settings = _fit_settings(args, model)
+            request = {"loss": settings.loss, "restarts": settings.restarts, "max_iter": settings.max_iter,
+                       "tol": settings.tol, "optimizer": settings.optimizer, "seed": settings.seed,
+                       "bandwidths": list(settings.bandwidths),
+                       "samples": None if settings.samples is None else [int(x) for x in settings.samples]}
+            tasks = [t for fam in families for t in build(family=fam, fit_request=request)]
+        elif args.fit:
+            from toposcout.service.fitting import FitCache, default_cache_dir, fitted_tasks, format_report
 
-        settings = _fit_settings(args, model)
-        cache = FitCache(None if args.no_fit_cache else (args.fit_cache or default_cache_dir()))
-        cb, close = _fit_progress(err, settings.restarts * settings.max_iter * len(families), "fit")
-        tasks, reports = [], []
-        try:
-            for st in strategies:  # one fit per family: the cache answers the second strategy
-                got, reps = fitted_tasks(model, connectivities, families, settings, cache, noise_scales=scales,
-                                         progress=(lambda fam, e: cb(e)) if cb else None,
-                                         **{**options, "strategy": st})
-                tasks += got
-                reports = reports or reps
-        finally:
-            close()
-        if not args.json:
-            for rep in reports:
-                out.write(format_report(rep) + "\n")
-    else:
-        tasks = [t for fam in families for t in build(family=fam)]
+            settings = _fit_settings(args, model)
+            cache = FitCache(None if args.no_fit_cache else (args.fit_cache or default_cache_dir()))
+            cb, close = _fit_progress(err, settings.restarts * settings.max_iter * len(families), "fit")
+            tasks, reports = [], []
+            try:
+                for st in strategies:  # one fit per family: the cache answers the second strategy
+                    got, reps = fitted_tasks(model, connectivities, families, settings, cache, noise_scales=scales,
+                                             progress=(lambda fam, e: cb(e)) if cb else None,
+                                             **{**options, "strategy": st})
+                    tasks += got
+                    reports = reports or reps
+            finally:
+                close()
+            if not args.json:
+                for rep in reports:
+                    out.write(format_report(rep) + "\n")
+        else:
+            tasks = [t for fam in families for t in build(family=fam)]
+    except ToposcoutError as exc:  # name the command-line option, not the task field
+        flag = _FLAGS.get(exc.field or "")
+        if flag is None:
+            raise
+        text = str(exc)
+        if text.startswith(f"{exc.field}: "):
+            text = f"{flag}: {text[len(exc.field) + 2:]}"
+        elif text.startswith(f"{exc.field} "):
+            text = flag + text[len(exc.field):]
+        else:
+            text = f"{flag}: {text}"
+        raise type(exc)(text, field=flag) from None
     show_progress = not args.json and hasattr(err, "isatty") and err.isatty()
     if args.server:
         from toposcout.service.client import Client
 
         client = Client(args.server, token=args.token or os.environ.get("TOPOSCOUT_TOKEN"))
-        rows = client.run_tasks(model, tasks, progress=show_progress)
+        def announce(h) -> None:  # on stderr, so --json output stays one document
+            err.write(f"study {h.id}: {h.dashboard_url}\n")
+            err.flush()
+
+        rows = client.run_tasks(model, tasks, progress=show_progress, on_submit=announce, label=args.label)
     else:
         from toposcout.service.execution.runner import run_tasks
 
@@ -412,6 +444,14 @@ def _compare(args, out, err) -> int:
             out.write(CAUTION + "\n")
     failed = [r for r in rows if r.get("error")]
     return EXIT_FAILED_ROWS if failed and len(failed) == len(rows) else EXIT_OK
+
+
+#: task fields → the ``compare`` option that sets them (errors name the option the user typed)
+_FLAGS = {"seeds": "--seeds", "layers": "--layers", "seed": "--seed", "fidelity_target": "--fidelity-target",
+          "requirement_tolerance": "--requirement-tolerance",
+          "noise_scale": "--noise-scale", "profile": "--profile", "strategy": "--strategy", "family": "--family",
+          "gate_set": "--gate-set", "method": "--method", "precision": "--precision", "trajectories": "--trajectories",
+          "time_budget_seconds": "--time-budget", "connectivity": "--connectivity"}
 
 
 def _device_options(args):

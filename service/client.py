@@ -31,6 +31,7 @@ from toposcout.compiler.errors import ToposcoutError
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
+    from matplotlib.figure import Figure
     from qiskit import QuantumCircuit
 
 __all__ = ["Client", "StudyHandle", "ToposcoutClientError", "model_payload", "request_from_tasks", "API_ONLY_COLUMNS"]
@@ -181,10 +182,11 @@ class Client:
         return self._json("GET", "/v1/profiles")
 
     def studies(self, *, status: str | None = None, owner: str | None = None, limit: int = 20,
-                offset: int = 0) -> dict:
-        """One page of the study list: ``{"items", "total", "limit", "offset"}``, newest first."""
-        params = {k: v for k, v in dict(status=status, owner=owner, limit=limit, offset=offset).items()
-                  if v is not None}
+                offset: int = 0, model: str | None = None, label: str | None = None) -> dict:
+        """One page of the study list: ``{"items", "total", "limit", "offset"}``, newest first;
+        ``model`` and ``label`` filter by the model's name and the study's label."""
+        params = {k: v for k, v in dict(status=status, owner=owner, limit=limit, offset=offset, model=model,
+                                        label=label).items() if v is not None}
         return self._json("GET", "/v1/studies", params=params)
 
     def study(self, study_id: str) -> "StudyHandle":
@@ -216,9 +218,21 @@ class Client:
     def compare(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None, *,
                 profile: str | None = None, progress: bool = True, timeout: float | None = None,
                 **options: Any) -> "pd.DataFrame":
-        """Submit, wait (with a progress bar unless ``progress=False``) and return the rows as a DataFrame."""
+        """Submit, wait (with a progress bar unless ``progress=False``) and return the rows as a DataFrame.
+
+        The study itself (:class:`StudyHandle`: a readable summary in a notebook, ``plot(kind)`` for
+        the dashboard's charts) is ``df.attrs["study"]``; :meth:`run` returns it directly."""
+        h = self.run(model, connectivities, profile=profile, progress=progress, timeout=timeout, **options)
+        df = h.rows()
+        df.attrs["study"] = h
+        return df
+
+    def run(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None, *,
+            profile: str | None = None, progress: bool = True, timeout: float | None = None,
+            **options: Any) -> "StudyHandle":
+        """Submit and wait; returns the finished :class:`StudyHandle` (``.rows()``, ``.plot(kind)``)."""
         h = self.submit(model, connectivities, profile=profile, **options)
-        return h.wait(progress=progress, timeout=timeout).rows()
+        return h.wait(progress=progress, timeout=timeout)
 
     def compile(self, model: Any, connectivities: Sequence[str | Mapping[str, Any]] | None = None,
                 **options: Any) -> list[dict]:
@@ -264,17 +278,22 @@ class Client:
                 "key": row.get("fit_key")}
 
     def run_tasks(self, model: Any, tasks: Sequence[Mapping[str, Any]], *, progress: bool = False,
-                  timeout: float | None = None) -> list[dict]:
+                  timeout: float | None = None, on_submit: Any = None, label: str | None = None) -> list[dict]:
         """Run the study that ``toposcout.compiler.study.make_tasks`` built as ``tasks`` on the server.
 
         This is what ``toposcout compare --server URL`` calls. The tasks are turned back into
         one request (their connectivities, noise scales and shared options); the rows come
-        back in task order as plain dicts without the API-only columns.
+        back in task order as plain dicts without the API-only columns. ``on_submit``, when given,
+        is called with the :class:`StudyHandle` as soon as the server has accepted the study.
         """
         if not tasks:
             return []
         body = request_from_tasks(tasks)
+        if label is not None:
+            body["label"] = label
         h = self.submit(model, body.pop("connectivities"), **body)
+        if on_submit is not None:
+            on_submit(h)
         h.wait(progress=progress, timeout=timeout)
         rows = sorted(h.row_dicts(), key=lambda r: r.get("task_index", 0))
         return [{k: v for k, v in r.items() if k not in API_ONLY_COLUMNS} for r in rows]
@@ -289,6 +308,9 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
         spec = dict(t["connectivity"])
         if spec.get("edges"):
             c: Any = {"family": spec["family"], "edges": spec["edges"]}
+            for key in ("name", "positions"):
+                if spec.get(key):
+                    c[key] = spec[key]
         else:
             c = spec["family"] + (f":{spec['size']}" if spec.get("size") else "")
         if c not in conns:
@@ -296,14 +318,16 @@ def request_from_tasks(tasks: Sequence[Mapping[str, Any]]) -> dict:
         s = float(t.get("noise_scale", 1.0))
         if s not in scales:
             scales.append(s)
-    profile = first.get("profile")
-    if isinstance(profile, Mapping):
-        raise ToposcoutClientError(
-            "a profile read from a local file cannot be sent to a server; name one of the server's profiles "
-            "(GET /v1/profiles lists them) or run without --server", field="profile")
+    profiles: list[Any] = []  # names, or profiles read from local files: sent as their content
+    for t in tasks:
+        p = t.get("profile")
+        p = dict(p) if isinstance(p, Mapping) else p
+        if p not in profiles:
+            profiles.append(p)
+    profile = profiles[0] if len(profiles) == 1 else profiles
     body: dict[str, Any] = {"connectivities": conns, "noise_scales": scales}
     for key in ("gate_set", "strategy", "seeds", "family", "layers", "seed", "compile_only", "fidelity_target",
-                "method", "time_budget_seconds", "trajectories", "precision"):
+                "requirement_tolerance", "method", "time_budget_seconds", "trajectories", "precision"):
         if key in first:
             body[key] = first[key]
     if profile is not None:
@@ -363,6 +387,17 @@ class StudyHandle:
     def __repr__(self) -> str:
         return f"StudyHandle(id={self.id!r}, status={self._data.get('status')!r})"
 
+    def __deepcopy__(self, memo) -> "StudyHandle":  # a handle names a study on the server: copies share it
+        return self  # (pandas deep-copies DataFrame.attrs, where compare() keeps the handle)
+
+    def __copy__(self) -> "StudyHandle":
+        return self
+
+    @property
+    def dashboard_url(self) -> str:
+        """The study's page on the server's dashboard."""
+        return f"{self.client.url}/studies/{self.id}"
+
     def refresh(self) -> dict:
         """Fetch the study (summary, progress and rows) and return it."""
         self._data = self.client._json("GET", f"/v1/studies/{self.id}")
@@ -411,6 +446,49 @@ class StudyHandle:
         finally:
             if bar is not None:
                 bar.close()
+
+    def summary(self) -> dict:
+        """What the study is, in a few fields: id, status, model, profile(s), noise scales,
+        connectivities, progress and the dashboard page."""
+        if not self._data.get("request"):
+            self.refresh()
+        req = self._data.get("request") or {}
+        prof = req.get("profile")
+        conns = [c if isinstance(c, str) else (c.get("name") or c.get("family", "?")) + (
+            f":{c['size']}" if isinstance(c, Mapping) and c.get("size") else "") for c in req.get("connectivities") or []]
+        done, total = self.progress
+        return {"id": self.id, "status": self.status, "model": self._data.get("model_name"),
+                "profile": prof.get("name") if isinstance(prof, Mapping) else (prof or "server default"),
+                "noise_scales": req.get("noise_scales"), "connectivities": conns or "every built-in family",
+                "compile_only": req.get("compile_only"), "rows": f"{done}/{total}",
+                "best_connectivity": self._data.get("best_connectivity"), "dashboard": self.dashboard_url}
+
+    def _repr_html_(self) -> str:
+        """A notebook's view of the study: its summary as a small table."""
+        from html import escape
+
+        cells = "".join(f"<tr><th style='text-align:left'>{escape(k.replace('_', ' '))}</th>"
+                        f"<td style='text-align:left'>{escape(', '.join(map(str, v)) if isinstance(v, list) else str(v))}"
+                        f"</td></tr>" for k, v in self.summary().items() if k != "dashboard")
+        url = escape(self.dashboard_url)
+        return (f"<table><caption style='text-align:left'>toposcout study</caption>{cells}"
+                f"<tr><th style='text-align:left'>dashboard</th><td><a href='{url}'>{url}</a></td></tr></table>")
+
+    def charts(self) -> list[str]:
+        """The chart kinds this study's rows can fill (the dashboard's charts)."""
+        from toposcout.service.web.charts import available_charts
+
+        return available_charts(self.row_dicts())
+
+    def plot(self, kind: str = "gates") -> "Figure":
+        """A dashboard chart as a matplotlib Figure (``gates``, ``fidelity``, ``budget``, ``sweep``):
+        the same drawing as the dashboard's, so a notebook needs no plotting code of its own.
+        Raises ToposcoutError (field ``chart``) when the rows cannot fill it."""
+        from toposcout.service.web.charts import chart_figure
+
+        if self.status not in _FINAL:
+            self.refresh()
+        return chart_figure(kind, self.row_dicts())
 
     def row_dicts(self) -> list[dict]:
         """The rows as the API gives them (with ``task_index``, ``status``, ``cached``)."""

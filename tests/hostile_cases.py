@@ -90,9 +90,10 @@ CASES: list[Case] = [
     Case("nodelink-20001-links", model({"nodes": [{"id": 0}, {"id": 1}],
                                         "links": [{"source": 0, "target": 1}] * 20001}), 422, "model.links",
          ("worst",)),
-    Case("nodelink-links-name-300-nodes", model({"nodes": [{"id": 0}],
-                                                 "links": [{"source": i, "target": i + 1} for i in range(300)]}),
-         422, "model.links"),
+    Case("nodelink-links-name-300-undeclared-nodes", model({"nodes": [{"id": 0}],
+                                                            "links": [{"source": i, "target": i + 1}
+                                                                      for i in range(300)]}),
+         422, "model.links[0].target"),
     Case("nodelink-65-nodes-over-server-cap", model({"nodes": [{"id": i} for i in range(65)], "links": []}),
          422, "model.nodes"),
     Case("uai-1e9-functions", model("MARKOV\n2\n2 2\n999999999\n"), 422, "model.factors"),

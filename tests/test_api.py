@@ -113,3 +113,16 @@ def test_token_file_format(tmp_path):
     with pytest.raises(Exception) as exc:
         parse_tokens(["alice:short"])
     assert "short" not in str(exc.value)  # the message never shows the token
+
+
+def test_custom_graphs_of_one_size_get_apart_names(client, small_model):
+    ring = [[0, 1], [1, 2], [2, 3], [3, 0]]
+    line = [[0, 1], [1, 2], [2, 3]]
+    r = client.post("/v1/compile", json={"model": small_model, "seeds": 1, "strategy": "generic", "connectivities": [
+        {"family": "custom", "edges": ring}, {"family": "custom", "edges": line},
+        {"family": "custom", "edges": line, "name": "lab-line"}]})
+    assert r.status_code == 200, r.text
+    assert sorted(row["connectivity"] for row in r.json()["rows"]) == ["custom-4", "custom-4-2", "lab-line"]
+    r = client.post("/v1/compile", json={"model": small_model, "seeds": 1, "connectivities": [
+        {"family": "custom", "edges": ring, "name": "lab"}, {"family": "custom", "edges": line, "name": "lab"}]})
+    assert r.status_code == 422 and "'lab'" in r.json()["detail"] and r.json()["field"] == "connectivity"

@@ -57,8 +57,15 @@ def test_quick_json_structure(quick):
     # the table names every model and connectivity, and the checks
     for p in doc["pairs"]:
         assert p["connectivity"] in text and p["model"] in text
-    for k in doc["checks"]:
-        assert k in text
+    # every check reads as a comparison with its target (met / not met), not an internal word
+    from toposcout.compiler.bench import CHECK_GOALS
+
+    for k, v in doc["checks"].items():
+        what, goal = CHECK_GOALS[k]
+        line = next(x for x in text.splitlines() if what in x)
+        assert line.strip().startswith("met" if v["ok"] else "not met") and f"target {goal}" in line
+        assert "measured" in line
+    assert "FAIL" not in text and "PASS" not in text and "_" not in text.split("targets (met", 1)[1]
 
 
 def test_lb_is_the_number_of_distinct_terms_of_order_two_or_more(quick):

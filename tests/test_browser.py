@@ -11,6 +11,7 @@ import io
 import json
 import os
 import re
+import sys
 from pathlib import Path
 from urllib.parse import urlparse
 
@@ -27,6 +28,10 @@ MODEL = {"name": "pond-sensors", "variables": ["inlet", "reeds", "dock", "outlet
 KINDS = ("gates", "fidelity", "budget", "sweep")
 
 
+#: what the browser tests need, as one line (the skip reason and the README say it)
+INSTALL = "sudo apt-get install chromium"
+
+
 def _require_browser():
     required = os.environ.get("TOPOSCOUT_REQUIRE_BROWSER") == "1"
     try:
@@ -34,11 +39,11 @@ def _require_browser():
     except ImportError:
         if required:
             pytest.fail("TOPOSCOUT_REQUIRE_BROWSER=1 but the python package playwright is not installed")
-        pytest.skip("playwright is not installed")
+        pytest.skip("browser tests need the playwright package: pip install -e '.[test]'")
     if not Path(CHROMIUM).exists():
         if required:
-            pytest.fail(f"TOPOSCOUT_REQUIRE_BROWSER=1 but {CHROMIUM} is missing (apt-get install chromium)")
-        pytest.skip(f"{CHROMIUM} is missing")
+            pytest.fail(f"TOPOSCOUT_REQUIRE_BROWSER=1 but {CHROMIUM} is missing (install it: {INSTALL})")
+        pytest.skip(f"browser tests need Chromium at {CHROMIUM}; install it with: {INSTALL}")
 
 
 @pytest.fixture(scope="module")
@@ -163,7 +168,8 @@ def test_study_list_loads(page, server):
     assert resp.status == 200
     assert page.locator("h1").inner_text() == "Studies"
     assert page.locator("#studies thead th").all_inner_texts() == [
-        "Model", "Status", "Progress", "Owner", "Submitted", "Best connectivity"]
+        "compare", "Label", "Model", "Connectivities", "Profiles", "Noise scales", "Status", "Progress", "Owner",
+        "Submitted", "Best connectivity"]
     _check_accessible(page)
     _shot(page, "study-list")
 
@@ -173,9 +179,10 @@ def test_submitted_study_appears_and_finishes_without_reload(submitted, server, 
     page.goto(server.url + "/")
     row = page.locator(f"#studies tbody tr[data-id='{submitted['id']}']")
     assert row.locator(".status").inner_text() == "done"
-    cells = row.locator("td").all_inner_texts()
-    assert cells[0] == "pond-sensors" and cells[3] == "carol"
-    assert cells[5] in ("line-4", "grid-2x2")  # the best connectivity
+    cells = row.locator("td").all_inner_texts()  # after a refresh by the page's script too
+    assert cells[2] == "pond-sensors" and cells[8] == "carol"
+    assert "line" in cells[3] and cells[5] == "0.5, 2"  # the submitted sweep (page and script agree)
+    assert cells[10] in ("line-4", "grid-2x2")  # the best connectivity
     _shot(page, "study-list-after-submit")
     page.close()
 
@@ -310,8 +317,54 @@ def test_pages_need_the_token(browser, server):
     ctx.close()
 
 
+def test_api_docs_work_with_the_network_blocked(browser, server):
+    # Every request that does not go to the server is aborted, as on a machine with no internet:
+    # /docs must still render the API's operations from the assets the package ships.
+    host = urlparse(server.url).netloc
+    blocked: list[str] = []
+    ctx = browser.new_context(viewport={"width": 1200, "height": 900})
+
+    def gate(route):
+        if urlparse(route.request.url).netloc == host or route.request.url.startswith("data:"):
+            route.continue_()
+        else:
+            blocked.append(route.request.url)
+            route.abort()
+
+    ctx.route("**/*", gate)
+    try:
+        p = ctx.new_page()
+        p.goto(f"{server.url}/?token={TOKEN}")
+        p.goto(f"{server.url}/docs")
+        p.wait_for_selector(".swagger-ui .opblock", timeout=30000)
+        title = p.locator(".swagger-ui .info .title").inner_text()
+        assert "toposcout" in title and "OAS 3.1" in title
+        assert p.locator(".swagger-ui .opblock").count() >= 10
+        SHOTS.mkdir(parents=True, exist_ok=True)
+        p.screenshot(path=str(SHOTS / "api-docs-offline.png"))
+    finally:
+        ctx.close()
+    assert not blocked, f"/docs asked for outside resources: {blocked}"
+
+
 def test_no_external_requests(requests_seen, server, submitted):
     assert requests_seen, "no requests were recorded"
     host = urlparse(server.url).netloc
     outside = [u for u in requests_seen if not u.startswith("data:") and urlparse(u).netloc != host]
     assert not outside, f"requests left 127.0.0.1: {outside}"
+
+
+def test_the_skip_reason_and_the_readme_say_how_to_install_chromium(monkeypatch):
+    # On a fresh machine without Chromium the browser tests skip; the reason must name the fix.
+    pytest.importorskip("playwright")
+    monkeypatch.setenv("TOPOSCOUT_REQUIRE_BROWSER", "0")
+    monkeypatch.setattr(sys.modules[__name__], "CHROMIUM", "/nonexistent/chromium")
+    try:
+        _require_browser()
+    except pytest.skip.Exception as exc:
+        assert INSTALL in str(exc)
+    else:
+        raise AssertionError("no skip without Chromium")
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text(encoding="utf-8")
+    after_command = readme.split("# (b) set up and run the tests", 1)[1][:900]
+    assert INSTALL in after_command

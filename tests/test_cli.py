@@ -202,5 +202,108 @@ def test_custom_connectivity_from_the_example_edge_list():
                          "--compile-only", "--json")
     assert code == 0, err
     (row,) = json.loads(out)["rows"]
-    assert row["connectivity"] == "custom-10" and row["physical_qubits"] == 10
+    assert row["connectivity"] == "ladder-chip" and row["physical_qubits"] == 10  # named by the file's stem
     assert set(row["layout"].values()) <= set(range(10))
+
+
+@pytest.mark.parametrize("extra, needle", [
+    (("--fidelity-target", "1.5"), "--fidelity-target"),
+    (("--fidelity-target", "1.5", "--compile-only"), "--fidelity-target"),
+    (("--profile", "quantum-toaster", "--compile-only"), "--profile"),
+    (("--layers", "9"), "--layers"),
+    (("--seeds", "17"), "--seeds"),
+    (("--requirement-tolerance", "0", "--fidelity-target", "0.8"), "--requirement-tolerance"),
+])
+def test_bad_options_refused_before_any_work(tmp_path, monkeypatch, extra, needle):
+    # Validation before work: the study must not start (no task runs), exit 2, the option named.
+    import toposcout.service.execution.runner as runner
+
+    def no_work(*a, **k):
+        raise AssertionError("a task ran before the options were checked")
+
+    monkeypatch.setattr(runner, "run_tasks", no_work)
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", *extra)
+    assert code == 2, err
+    assert needle in err and "Traceback" not in err
+
+
+def test_one_fidelity_target_default_for_a_sweep(tmp_path, monkeypatch):
+    # The CLI takes its default from compiler.options, as make_tasks does for the API and client.
+    from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET
+    import toposcout.service.execution.runner as runner
+
+    seen = {}
+
+    def capture(tasks, **k):
+        seen["tasks"] = tasks
+        return [{"connectivity": "line", "error": "not run"} for _ in tasks]
+
+    monkeypatch.setattr(runner, "run_tasks", capture)
+    path = write(tmp_path, "m.json", SMALL)
+    run("compare", path, "-c", "line", "--noise-scale", "1", "--noise-scale", "2", "--json")
+    assert seen["tasks"][0]["fidelity_target"] == DEFAULT_FIDELITY_TARGET
+    run("compare", path, "-c", "line", "--json")
+    assert seen["tasks"][0].get("fidelity_target") is None
+
+
+@pytest.mark.parametrize("strategy", ["generic", "structured"])
+def test_qasm_dir_qpy_keeps_the_layout_of_either_strategy(tmp_path, strategy):
+    # Reference library: qiskit's QPY reader and TranspileLayout; the layout read back must be the
+    # row's layout (variable -> physical qubit at the start and at the end).
+    from qiskit import qpy
+
+    qdir = tmp_path / "circuits"
+    code, out, err = run("compare", "examples/orchard-frost.json", "--compile-only", "--strategy", strategy,
+                         "--seeds", "1", "-c", "line", "--qasm-dir", str(qdir), "--json")
+    assert code == 0, err
+    (row,) = json.loads(out)["rows"]
+    assert row["strategy"] == strategy
+    with open(qdir / "line-8.qpy", "rb") as fh:
+        (circuit,) = qpy.load(fh)
+    assert circuit.layout is not None
+    variables = list(row["layout"])
+    assert circuit.layout.initial_index_layout(filter_ancillas=True) == [row["layout"][v] for v in variables]
+    assert circuit.layout.final_index_layout() == [row["final_layout"][v] for v in variables]
+
+
+def test_two_custom_graphs_of_one_size_keep_apart_names_and_files(tmp_path):
+    # Two different 10-qubit graphs used to share the name custom-10: one .qpy overwrote the other.
+    a = tmp_path / "a"
+    b = tmp_path / "b"
+    a.mkdir()
+    b.mkdir()
+    (a / "chip.edges").write_text((ROOT / "examples" / "ladder-chip.edges").read_text())
+    (b / "chip.edges").write_text("\n".join(f"{i} {i + 1}" for i in range(9)))  # a 10-qubit line
+    qdir = tmp_path / "circuits"
+    code, out, err = run("compare", "examples/orchard-frost.json", "-c", f"custom:{a / 'chip.edges'}",
+                         "-c", f"custom:{b / 'chip.edges'}", "-c", f"custom:lab={b / 'chip.edges'}",
+                         "--compile-only", "--strategy", "generic", "--seeds", "1", "--json", "--qasm-dir", str(qdir))
+    assert code == 0, err
+    names = sorted(r["connectivity"] for r in json.loads(out)["rows"])
+    assert names == ["chip", "chip-2", "lab"]
+    assert sorted(p.name for p in qdir.glob("*.qpy")) == ["chip-2.qpy", "chip.qpy", "lab.qpy"]
+    # an explicit name given to two different graphs is refused, before any work
+    code, out, err = run("compare", "examples/orchard-frost.json", "-c", f"custom:lab={a / 'chip.edges'}",
+                         "-c", f"custom:lab={b / 'chip.edges'}", "--compile-only")
+    assert code == 2 and "'lab'" in err and "custom:NAME=FILE" in err
+
+
+def test_one_study_holds_several_profiles(tmp_path):
+    path = write(tmp_path, "m.json", SMALL)
+    code, out, err = run("compare", path, "-c", "line", "-c", "ring", "--profile", "superconducting", "--profile",
+                         "trapped_ion", "--strategy", "generic", "--seeds", "1", "--json")
+    assert code == 0, err
+    rows = json.loads(out)["rows"]
+    assert sorted((r["connectivity"], r["profile"]) for r in rows) == [
+        ("line-4", "superconducting"), ("line-4", "trapped_ion"), ("ring-4", "superconducting"),
+        ("ring-4", "trapped_ion")]
+    by = {(r["connectivity"], r["profile"]): r for r in rows}
+    # the same compiled circuit under two device classes: equal compile figures, different noise figures
+    assert by[("line-4", "superconducting")]["two_qubit_gates"] == by[("line-4", "trapped_ion")]["two_qubit_gates"]
+    assert by[("line-4", "superconducting")]["state_fidelity"] != by[("line-4", "trapped_ion")]["state_fidelity"]
+    code, _, err = run("compare", path, "-c", "line", "--profile", "trapped_ion", "--profile", "trapped_ion")
+    assert code == 2 and "given twice" in err
+    code, _, err = run("compare", path, "-c", "line", "--profile", "trapped_ion", "--profile", "toaster",
+                       "--compile-only")
+    assert code == 2 and "toaster" in err

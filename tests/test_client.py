@@ -5,12 +5,15 @@ from __future__ import annotations
 import io
 import json
 import math
+import re
+from pathlib import Path
 
 import httpx
 import networkx as nx
 import pandas as pd
 import pytest
 
+from toposcout.compiler.errors import ToposcoutError
 from toposcout.service import cli
 from toposcout.service.client import API_ONLY_COLUMNS, Client, StudyHandle, ToposcoutClientError, model_payload
 
@@ -178,3 +181,57 @@ def test_cli_compare_on_a_server_with_a_wrong_token_is_a_clean_error(server, tmp
     assert "401" in err.getvalue() and "token" in err.getvalue()
     assert "Traceback" not in err.getvalue()
 
+
+
+def test_cli_compare_on_a_server_names_the_study_and_sends_a_local_profile(server, tmp_path, small_model):
+    # The study id and its dashboard page are printed; a profile file is sent as its content.
+    path = tmp_path / "kite.json"
+    path.write_text(json.dumps(small_model))
+    src = (Path(__file__).resolve().parent.parent / "topologies" / "profiles" / "superconducting.toml").read_text()
+    prof = tmp_path / "lab.toml"
+    prof.write_text(src.replace('name = "superconducting"', 'name = "lab-chip"'))
+    out, err = io.StringIO(), io.StringIO()
+    code = cli.main(["compare", str(path), "-c", "line", "--strategy", "generic", "--seeds", "1", "--profile",
+                     str(prof), "--json", "--server", server.url, "--token", TOKEN], out=out, err=err)
+    assert code == 0, err.getvalue()
+    m = re.search(r"study (\S+): (\S+)", err.getvalue())
+    assert m and m.group(2) == f"{server.url}/studies/{m.group(1)}"
+    study = _api_study(server, m.group(1))
+    assert study["request"]["profile"]["name"] == "lab-chip"
+    assert {r["profile"] for r in json.loads(out.getvalue())["rows"]} == {"lab-chip"}
+    page = httpx.get(m.group(2), headers={"Authorization": f"Bearer {TOKEN}"})
+    assert page.status_code == 200 and m.group(1) in page.text
+
+
+def test_the_study_object_summarises_itself_and_draws_the_dashboards_charts(client, small_model):
+    from matplotlib.figure import Figure
+
+    from toposcout.service.web import charts
+
+    df = client.compare(small_model, ["line"], noise_scales=[0.5, 1.0], strategy="generic", seeds=1, progress=False)
+    h = df.attrs["study"]
+    assert isinstance(h, StudyHandle) and h.status == "done"
+    page = h._repr_html_()
+    assert small_model["name"] in page and h.dashboard_url in page and "0.5, 1.0" in page
+    assert h.charts() == ["gates", "fidelity", "budget", "sweep"]
+    rows = h.row_dicts()
+    for kind in h.charts():
+        fig = h.plot(kind)
+        assert isinstance(fig, Figure)
+        assert fig.get_suptitle() == charts.CHART_TITLES[kind]
+        # the same drawing as the dashboard's chart of the same rows
+        ref = charts.chart_figure(kind, rows)
+        assert [a.get_title() for a in fig.axes] == [a.get_title() for a in ref.axes]
+        assert [len(a.patches) + len(a.lines) for a in fig.axes] == [len(a.patches) + len(a.lines) for a in ref.axes]
+    assert [a.get_title() for a in h.plot("budget").axes] == ["noise scale 0.5x", "noise scale 1x"]
+    with pytest.raises(ToposcoutError):
+        h.plot("pie")
+
+
+def test_request_from_tasks_keeps_every_profile(small_model):
+    from toposcout.compiler.study import make_tasks
+    from toposcout.service.client import request_from_tasks
+
+    tasks = make_tasks(small_model, ["line"], profile=["superconducting", "trapped_ion"], noise_scales=[1.0, 2.0])
+    body = request_from_tasks(tasks)
+    assert body["profile"] == ["superconducting", "trapped_ion"] and body["noise_scales"] == [1.0, 2.0]

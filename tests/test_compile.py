@@ -128,3 +128,17 @@ def test_swap_edges_are_coupling_edges_next_to_data(family):
     for key in where:
         a, b = map(int, key.split("-"))
         assert (a, b) in edges and (a in active or b in active)
+
+
+@pytest.mark.parametrize("strategy", ["generic", "structured"])
+def test_exported_qpy_carries_the_layout_whichever_strategy(strategy):
+    # Reference library: qiskit's TranspileLayout read back from QPY. Its initial virtual layout must
+    # put variable i on initial_layout[i] and final_index_layout() must give final_layout[i], for the
+    # structured strategy (which builds its circuit without transpile) as for generic.
+    m = load_model("examples/warehouse-doors.uai")
+    c = compile_ansatz(build_ansatz(m), make_connectivity("grid", 6), get_gate_set("cx"), strategy=strategy, seeds=1)
+    assert c.strategy == strategy
+    back = load_qpy(qpy_bytes(c))
+    assert back.layout is not None
+    assert back.layout.final_index_layout() == list(c.final_layout)
+    assert back.layout.initial_index_layout(filter_ancillas=True) == list(c.initial_layout)

@@ -117,3 +117,70 @@ def test_live_fragment_has_the_table(app_client, studies):
     r = app_client.get(f"/studies/{studies[0]}/live")
     assert r.status_code == 200
     assert 'id="rows"' in r.text and 'id="study-status"' in r.text and "<html" not in r.text
+
+
+def test_sign_in_page_shows_no_error_and_no_sign_out_to_a_visitor(app_client):
+    app_client.cookies.clear()
+    for r in (app_client.get("/signin"), app_client.get("/")):
+        assert 'role="alert"' not in r.text, r.url
+        assert "Sign out" not in r.text and "/signout" not in r.text, r.url
+    # a token that was tried and refused is an error; still no sign-out for someone not signed in
+    app_client.cookies.set("toposcout_token", "not-the-token")
+    r = app_client.get("/")
+    assert r.status_code == 401 and 'role="alert"' in r.text and "not accepted" in r.text
+    assert "/signout" not in r.text
+    app_client.cookies.clear()
+
+
+def test_a_refused_form_keeps_file_and_fields_and_lists_every_error_by_its_field(app_client):
+    import json as _json
+
+    app_client.cookies.clear()
+    model = _json.dumps({"name": "kept", "variables": ["a", "b"], "cliques": [["a", "b"]]}).encode()
+    form = {"connectivities": ["line"], "extra_connectivities": "grid:2x2", "noise_scales": "1 lots",
+            "fidelity_target": "2", "seeds": "many", "layers": "99", "compile_only": "true"}
+    r = app_client.post("/submit", data=form, files={"file": ("kept.json", model, "application/json")}, headers=AUTH)
+    assert r.status_code == 422
+    page = html.unescape(r.text)
+    for name, needle in (("seeds", "'many'"), ("layers", "99"), ("fidelity_target", "2"),
+                         ("noise_scales", "'lots'")):
+        m = re.search(rf'<p class="field-error" id="{name}-error">(.*?)</p>', page, re.S)
+        assert m and needle in m.group(1), name
+        assert re.search(rf'id="{name}"[^>]*aria-invalid="true"[^>]*aria-describedby="{name}-error"', page), name
+    assert page.count("<li>") == 4  # all at once, in the summary too
+    assert 'value="grid:2x2"' in page and 'value="many"' in page and 'value="1 lots"' in page
+    kept = re.search(r'name="kept_file_b64" value="([^"]+)"', page).group(1)
+    assert "kept.json" in page
+    # the second try needs no new file: the kept one is sent
+    fixed = {**form, "kept_file_name": "kept.json", "kept_file_b64": kept, "noise_scales": "1", "fidelity_target": "",
+             "seeds": "1", "layers": "1"}
+    r = app_client.post("/submit", data=fixed, headers=AUTH, follow_redirects=False)
+    assert r.status_code == 303 and r.headers["location"].startswith("/studies/"), r.text[:500]
+
+
+def test_labels_filters_and_the_compare_view(app_client, wait_study):
+    app_client.cookies.clear()
+    other = {"name": "pair", "variables": ["a", "b"], "cliques": [["a", "b"]]}
+    ids = []
+    for label, model, conns in (("lab-A", MODEL, ["line"]), ("lab-A", other, ["ring", "line"]), ("lab-B", MODEL, ["line"])):
+        r = app_client.post("/v1/studies", json={"model": model, "connectivities": conns, "compile_only": True,
+                                                "seeds": 1, "label": label}, headers=AUTH)
+        assert r.status_code == 202, r.text
+        ids.append(r.json()["id"])
+    for i in ids:
+        wait_study(app_client, i, 60, headers=AUTH)
+    got = app_client.get("/v1/studies", params={"label": "lab-A"}, headers=AUTH).json()
+    assert {s["id"] for s in got["items"]} == set(ids[:2]) and got["total"] == 2
+    got = app_client.get("/v1/studies", params={"label": "lab-A", "model": "pair"}, headers=AUTH).json()
+    assert [s["id"] for s in got["items"]] == [ids[1]]
+    assert got["items"][0]["connectivities"] == ["ring", "line"] and got["items"][0]["profiles"] == []
+    page = html.unescape(app_client.get("/", params={"label": "lab-A"}, headers=AUTH).text)
+    assert ids[0] in page and ids[1] in page and ids[2] not in page
+    assert "ring, line" in page and 'name="label" type="text" value="lab-A"' in page
+    r = app_client.get("/compare", params={"ids": [ids[0], ids[2]]}, headers=AUTH)
+    assert r.status_code == 200
+    rows = re.findall(r'<tr( class="differs")?><th scope="row">([^<]*)', r.text)
+    differs = {title.strip() for cls, title in rows if cls}
+    same = {title.strip() for cls, title in rows if not cls}
+    assert "label" in differs and "model" in same and "connectivities" in same
+    assert app_client.get("/compare", params={"ids": ids[0]}, headers=AUTH).status_code == 422

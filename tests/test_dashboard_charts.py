@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import re
 import xml.etree.ElementTree as ET
 
@@ -88,10 +89,71 @@ def test_sweep_marks_target_and_threshold(sweep_rows):
     assert "noise scale (multiple of the profile's error rates)" in texts
 
 
-def test_per_connectivity_charts_use_the_row_nearest_scale_one(sweep_rows):
+def test_bar_charts_facet_by_noise_scale_and_profile(sweep_rows):
+    # rows of different noise scales are never side by side: one panel per (profile, scale)
     desc = charts.chart_description("fidelity", sweep_rows)
-    assert "line-5: state fidelity 0.800" in desc  # 0.8 ** 1.0, not the 0.5 or 2.0 rows
+    assert "noise scale 1x: line-5: state fidelity 0.800" in desc  # 0.8 ** 1.0 in the scale-1 panel
+    assert "noise scale 2x: line-5: state fidelity 0.640" in desc
     assert "grid-2x3" not in desc  # the failed row is left out
+    for kind in ("fidelity", "budget"):
+        root = ET.fromstring(charts.render_chart(kind, sweep_rows))
+        titles = [t for t in _texts(charts.render_chart(kind, sweep_rows)) if t.startswith("noise scale")]
+        assert titles == ["noise scale 0.5x", "noise scale 1x", "noise scale 2x"], kind
+        assert root is not None
+    two = [dict(r, profile="trapped_ion") for r in sweep_rows if r.get("noise_scale") == 1.0] + [
+        r for r in sweep_rows if r.get("noise_scale") == 1.0]
+    titles = [t for t in _texts(charts.render_chart("budget", two)) if t.startswith("noise scale")]
+    assert titles == ["noise scale 1x, profile trapped_ion", "noise scale 1x, profile superconducting"]
+
+
+def test_budget_bars_are_not_stacked_and_say_they_are_separate_estimates(sweep_rows):
+    # the parts are separate estimates (fidelity regained with one source off; metrics.py) that need
+    # not add up to the total loss, so no bar may start on top of another
+    rows = [r for r in sweep_rows if r.get("noise_scale") == 1.0]
+    svg = charts.render_chart("budget", rows)
+    assert "not stacked" in " ".join(_texts(svg)).replace("\n", " ")
+    assert "separate estimate" in charts.chart_description("budget", rows)
+    from matplotlib.figure import Figure
+
+    fig = Figure()
+    charts._draw_budget(fig, rows)
+    (ax,) = fig.axes
+    bars = [p for p in ax.patches if p.get_height() > 0]
+    assert len(bars) == 4 * len(rows)
+    assert all(p.get_y() == 0 for p in bars)
+
+
+def test_palette_is_colour_blind_safe_by_machado_2009():
+    # Reference: Machado, Oliveira & Fernandes (2009), "A physiologically-based model for simulation of
+    # color vision deficiency" (IEEE TVCG 15(6)), as implemented by colorspacious; distances in CAM02-UCS.
+    # Colours that share a chart must stay apart for protanopia, deuteranopia and tritanopia (severity 100).
+    import itertools
+
+    import numpy as np
+    from colorspacious import cspace_convert
+
+    def rgb(h):
+        return np.array([int(h[i:i + 2], 16) / 255 for i in (1, 3, 5)])
+
+    def seen(h, cvd):
+        c = rgb(h) if cvd is None else np.clip(
+            cspace_convert(rgb(h), {"name": "sRGB1+CVD", "cvd_type": cvd, "severity": 100}, "sRGB1"), 0, 1)
+        return cspace_convert(c, "sRGB1", "CAM02-UCS")
+
+    need = {"budget": 25.0, "fidelity": 25.0, "gates": 15.0, "drawing": 15.0}
+    worst = {}
+    for group, roles in charts.PALETTE_GROUPS.items():
+        for cvd in (None, "protanomaly", "deuteranomaly", "tritanomaly"):
+            d = min(np.linalg.norm(seen(charts.PALETTE[a], cvd) - seen(charts.PALETTE[b], cvd))
+                    for a, b in itertools.combinations(roles, 2))
+            worst[(group, cvd)] = d
+            assert d >= need[group], (group, cvd, d)
+    # the budget colours are those of the chart and of the drawing's SWAP couplings
+    assert [c for _, _, c in charts._BUDGET] == [charts.PALETTE[k] for k in charts.PALETTE_GROUPS["budget"]]
+    # the office-suite palette the budget used before fails the same check (deuteranopia: about 6)
+    old = ["#c0504d", "#e8a33d", "#4f81bd", "#8064a2"]
+    assert min(np.linalg.norm(seen(a, "deuteranomaly") - seen(b, "deuteranomaly"))
+               for a, b in itertools.combinations(old, 2)) < 10
 
 
 @pytest.mark.parametrize("kind, fmt, field", [("pie", "svg", "chart"), ("gates", "gif", "format"),
@@ -149,3 +211,74 @@ def test_swap_couplings_outside_the_circuits_qubits_are_not_drawn():
     desc = ET.fromstring(svg).find(f"{SVG}desc").text
     assert "q0-q1 (1)" in desc and "q4-q5" not in desc and "1 recorded SWAP coupling(s)" in desc
     assert any("never uses" in t for t in texts)
+
+
+def test_sweep_legend_names_the_threshold_markers(sweep_rows):
+    # the dashed vertical threshold lines have legend entries saying what they mark
+    from matplotlib.figure import Figure
+
+    fig = Figure()
+    charts._draw_sweep(fig, charts.usable_rows(sweep_rows))
+    (ax,) = fig.axes
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    for name in ("line-5", "ring-5"):
+        assert f"{name}: threshold 3.2x (largest scale reaching the target)" in labels
+    assert "fidelity target 0.5" in labels
+
+
+def test_custom_drawings_are_rebuilt_with_the_studys_names_and_positions():
+    ring = [[0, 1], [1, 2], [2, 3], [3, 0]]
+    line = [[0, 1], [1, 2], [2, 3]]
+    request = {"connectivities": [{"family": "custom", "edges": ring, "size": None},
+                                  {"family": "custom", "edges": line, "size": None,
+                                   "positions": [[0, 0], [1, 0], [2, 0], [3, 0]]}]}
+    row = {"connectivity": "custom-4-2", "connectivity_family": "custom", "variables": 3}
+    conn = charts.connectivity_for_row(row, request)
+    assert conn.edges == ((0, 1), (1, 2), (2, 3))
+    assert conn.coords() == [(0.0, 0.0), (1.0, 0.0), (2.0, 0.0), (3.0, 0.0)]
+    assert charts.connectivity_for_row({**row, "connectivity": "custom-4"}, request).edges == (
+        (0, 1), (0, 3), (1, 2), (2, 3))
+
+
+@pytest.mark.parametrize("conn_spec", ["line", "ring", "grid", "heavy-hex", "ladder"])
+def test_drawing_labels_overlap_no_node_and_no_other_label(conn_spec):
+    # Bounding boxes as matplotlib's renderer lays them out (the same boxes the SVG gets): every
+    # variable label and SWAP label stays clear of every qubit marker and of every other label.
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.transforms import Bbox
+
+    from toposcout.compiler.study import connectivity_spec
+    from toposcout.compiler.targets import make_connectivity
+
+    names = ["inlet", "reeds", "dock", "outlet", "weir", "sluice", "heron", "moss"]
+    model = {"name": "pond", "variables": names,
+             "cliques": [names[i:i + 3] for i in range(0, 6, 2)] + [["heron", "moss"], ["moss", "inlet"]]}
+    if conn_spec == "ladder":
+        spec = connectivity_spec("custom:examples/ladder-chip.edges")
+        conn = make_connectivity("custom", 8, edges=spec["edges"], positions=spec["positions"])
+        spec = {"family": "custom", "edges": spec["edges"], "size": None}
+    else:
+        conn = make_connectivity(conn_spec, 8)
+        spec = conn_spec
+    (task,) = make_tasks(model, [spec], compile_only=True, strategy="generic", seeds=1)
+    row = run_task(task)
+    fig = charts.connectivity_figure(row, conn)
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    (ax,) = fig.axes
+    marks = [c for c in ax.collections if len(c.get_offsets()) == 1]  # one marker per qubit
+    assert len(marks) == conn.num_qubits
+    nodes = []
+    for c in marks:
+        (x, y), = ax.transData.transform(c.get_offsets())
+        r = (c.get_sizes()[0] ** 0.5) / 2 * fig.dpi / 72  # a marker's size is its area in points^2
+        nodes.append(Bbox.from_extents(x - r, y - r, x + r, y + r))
+    labels = [t for t in ax.texts if t.get_text() in names or t.get_text().endswith("SWAP")]
+    assert {t.get_text() for t in labels} >= set(row["layout"])
+    boxes = [(t.get_text(), t.get_window_extent(renderer)) for t in labels]
+    for name, box in boxes:
+        for q, node in enumerate(nodes):
+            assert not box.overlaps(node), (conn_spec, name, "over qubit", q)
+    for (a, ba), (b, bb) in itertools.combinations(boxes, 2):
+        assert not ba.overlaps(bb), (conn_spec, a, b)

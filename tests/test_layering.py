@@ -24,7 +24,7 @@ import toposcout.compiler as compiler
 ROOT = Path(__file__).resolve().parent.parent
 FOLDERS = {"toposcout": ROOT / "toposcout", "toposcout.compiler": ROOT / "compiler",
            "toposcout.service": ROOT / "service", "toposcout.topologies": ROOT / "topologies"}
-ORDER = ["version", "errors", "rows", "model", "ansatz", "targets", "profiles", "devices", "compiled", "synthesis",
+ORDER = ["version", "errors", "options", "rows", "model", "ansatz", "targets", "profiles", "devices", "compiled", "synthesis",
          "compile", "noise", "simulate", "metrics", "fit", "trajectories", "clifford", "methods", "regions", "study", "parts", "bench"]
 
 

@@ -173,3 +173,26 @@ def test_threshold_brackets_the_target():
     f_hi = noise_figures(compiled, ansatz, prof.scaled(hi), error_budget=False)["state_fidelity"]
     assert f_lo >= 0.6 > f_hi
     assert res["fidelity_at_threshold"] == pytest.approx(f_lo, abs=1e-12)
+
+
+def test_requirement_default_tolerance_brackets_the_true_threshold():
+    # Reference library: scipy.optimize.brentq finds the scale where the state fidelity crosses
+    # the target (to 1e-10); the default bisection's bracket must contain it and be at most
+    # 0.1 % wide, and the row must report that bracket and the tolerance used.
+    from scipy.optimize import brentq
+
+    from toposcout.compiler.options import DEFAULT_REQUIREMENT_TOLERANCE
+
+    ansatz, compiled = setup_row(n=3)
+    prof = load_profile("superconducting")
+    res = threshold_two_qubit_error(compiled, ansatz, prof, fidelity_target=0.6)
+    assert res["requirement_tolerance"] == DEFAULT_REQUIREMENT_TOLERANCE == 0.001
+    lower, upper = res["threshold_bracket_two_qubit_error"]
+    assert lower == res["threshold_two_qubit_error"] and (upper - lower) / upper <= 0.001
+
+    def f(s):
+        return noise_figures(compiled, ansatz, prof.scaled(s), error_budget=False)["state_fidelity"] - 0.6
+
+    true_scale = brentq(f, res["threshold_noise_scale"] * 0.5, res["upper_noise_scale"] * 1.5, xtol=1e-10)
+    true_error = prof.two_qubit_error * true_scale
+    assert lower <= true_error <= upper

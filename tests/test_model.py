@@ -236,3 +236,13 @@ def test_every_subset_counted():
     assert count_terms([5], None) == 31
     assert count_terms([5], 2) == 15
     assert all(count_terms([n], None) == 2**n - 1 for n in range(1, 12))
+
+
+def test_nodelink_link_to_an_undeclared_node_is_refused_by_name():
+    # networkx.node_link_graph would silently add "e" as a new node (a new variable); a model's
+    # variables are the nodes it declares, so the typo is an error naming the link and the node.
+    data = {"nodes": [{"id": x} for x in "abc"],
+            "links": [{"source": "a", "target": "b"}, {"source": "b", "target": "e"}]}
+    with pytest.raises(ModelError, match=r"links\[1\]\.target: node 'e' is not declared") as info:
+        parse_model(data, "nodelink")
+    assert info.value.field == "links[1].target"

@@ -115,3 +115,56 @@ def test_a_regular_install_finds_code_and_data(tmp_path):
                          capture_output=True, text=True, timeout=300)
     assert run.returncode == 0, run.stderr[-3000:]
     assert "line-3" in run.stdout
+
+
+def _requirement_name(req: str) -> str:
+    import re
+
+    return re.split(r"[\[<>=!~;\s]", req, maxsplit=1)[0].lower().replace("_", "-").replace(".", "-")
+
+
+def _third_party_imports(folders: tuple[str, ...]) -> dict[str, set[str]]:
+    import ast
+
+    found: dict[str, set[str]] = {}
+    for folder in folders:
+        for path in (ROOT / folder).rglob("*.py"):
+            for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+                names = []
+                if isinstance(node, ast.Import):
+                    names = [a.name for a in node.names]
+                elif isinstance(node, ast.ImportFrom) and node.level == 0 and node.module:
+                    names = [node.module]
+                for n in names:
+                    top = n.split(".")[0]
+                    if top not in sys.stdlib_module_names and top not in ("toposcout", "tests", "__future__"):
+                        found.setdefault(top, set()).add(path.relative_to(ROOT).as_posix())
+    return found
+
+
+def test_every_imported_module_is_a_declared_dependency():
+    # Common practice (PEP 621 dependencies): what the package imports must be declared, or a
+    # clean install breaks. The import name -> distribution map is the installed metadata's.
+    from importlib.metadata import packages_distributions
+
+    with open(ROOT / "pyproject.toml", "rb") as fh:
+        project = tomllib.load(fh)["project"]
+    main = {_requirement_name(r) for r in project["dependencies"]}
+    test = main | {_requirement_name(r) for r in project["optional-dependencies"]["test"]}
+    dists = {k: {_requirement_name(d) for d in v} for k, v in packages_distributions().items()}
+    for folders, declared, what in ((("compiler", "service", "toposcout", "topologies"), main, "dependencies"),
+                                    (("tests", "benchmarks"), test, "dependencies or the test extra")):
+        for module, where in sorted(_third_party_imports(folders).items()):
+            assert module in dists, f"{module} (imported by {sorted(where)[0]}) is not installed"
+            assert dists[module] & declared, (f"{module} (imported by {sorted(where)[0]}) comes from "
+                                              f"{sorted(dists[module])}, not declared in {what}")
+
+
+def test_every_declared_dependency_says_why():
+    text = (ROOT / "pyproject.toml").read_text(encoding="utf-8")
+    body = text.split("\ndependencies = [", 1)[1].split("\n[project.scripts]", 1)[0]
+    lines = [ln for ln in body.splitlines() if ln.strip().startswith('"')]
+    assert len(lines) >= 20
+    for ln in lines:
+        reason = ln.split("#", 1)[1].strip() if "#" in ln else ""
+        assert len(reason) > 10, f"no reason beside {ln.strip()}"

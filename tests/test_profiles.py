@@ -175,3 +175,24 @@ def test_relaxation_exceeding_the_gate_error_clips_depolarizing_at_zero():
     expected = relaxation_average_infidelity(100.0, 80.0, 2000)
     assert 1 - average_gate_fidelity(e) == pytest.approx(expected, rel=1e-9) and expected > 1e-5
     assert np.isfinite(expected)
+
+
+def test_a_profile_file_may_start_from_a_builtin_and_change_only_what_differs(tmp_path):
+    # base = "NAME": every value not given is the built-in's; the given ones replace it, key by key.
+    f = tmp_path / "slow-readout.toml"
+    f.write_text('base = "superconducting"\n[readout]\np0_given_1 = 0.05\n[coherence]\nt1_us = 90.0\n')
+    mine, base = load_profile(str(f)), load_profile("superconducting")
+    assert mine.name == "slow-readout"
+    assert (mine.p0_given_1, mine.t1_us) == (0.05, 90.0)
+    assert (mine.p1_given_0, mine.t2_us, mine.two_qubit_error, mine.two_qubit_ns) == (
+        base.p1_given_0, base.t2_us, base.two_qubit_error, base.two_qubit_ns)
+    assert "superconducting" in mine.description and "readout.p0_given_1" in mine.description
+    assert DeviceProfile.from_dict(mine.to_dict()) == mine  # the merged form travels as a plain object
+    # the merge is validated like any profile, and names what is wrong
+    for text, field in (('base = "superconducting"\n[coherence]\nt2_us = 400.0\n', "coherence.t2_us"),
+                        ('base = "superconducting"\n[gates]\ntwo_qbit_error = 0.01\n', "gates.two_qbit_error"),
+                        ('base = "toaster"\n', "base")):
+        f.write_text(text)
+        with pytest.raises(ProfileError) as e:
+            load_profile(str(f))
+        assert e.value.field == field, text

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import networkx as nx
 import pytest
 from qiskit.transpiler import CouplingMap
@@ -106,3 +108,46 @@ def test_gate_set_targets(name):
 def test_unknown_gate_set():
     with pytest.raises(TargetError, match="unknown gate set"):
         get_gate_set("toffoli")
+
+
+@pytest.mark.parametrize("d", [3, 5, 7])
+def test_heavy_hex_is_drawn_as_its_lattice(d):
+    # Reference: qiskit's CouplingMap.from_heavy_hex; drawn as a brick wall, every coupling has unit
+    # length and no two qubits share a position (a lattice, not a force-directed picture)
+    import math
+
+    conn = make_connectivity("heavy-hex", 1, size=d)
+    xy = conn.coords()
+    assert len(set(xy)) == conn.num_qubits
+    assert all(abs(math.dist(xy[a], xy[b]) - 1.0) < 1e-9 for a, b in conn.edges)
+
+
+def test_custom_graph_is_drawn_at_the_positions_of_its_file_or_planar(tmp_path):
+    # the example ladder keeps its rails (file positions); without positions, a planar graph gets
+    # a drawing without crossing couplings (networkx.check_planarity / planar_layout)
+    import itertools
+
+    import networkx as nx
+
+    from toposcout.compiler.study import connectivity_spec
+
+    root = Path(__file__).resolve().parent.parent
+    spec = connectivity_spec(f"custom:{root / 'examples' / 'ladder-chip.edges'}")
+    conn = make_connectivity("custom", 4, edges=spec["edges"], positions=spec["positions"])
+    assert conn.coords()[:5] == [(float(i), 0.0) for i in range(5)] and conn.coords()[7] == (2.0, -1.0)
+    plain = make_connectivity("custom", 4, edges=spec["edges"])
+    assert nx.check_planarity(plain.graph())[0]
+    xy = plain.coords()
+
+    def cross(p1, p2, p3, p4):
+        def orient(a, b, c):
+            return (b[0] - a[0]) * (c[1] - a[1]) - (b[1] - a[1]) * (c[0] - a[0])
+        return (orient(p1, p2, p3) * orient(p1, p2, p4) < 0) and (orient(p3, p4, p1) * orient(p3, p4, p2) < 0)
+
+    for (a, b), (c, d) in itertools.combinations(plain.edges, 2):
+        if len({a, b, c, d}) == 4:
+            assert not cross(xy[a], xy[b], xy[c], xy[d]), ((a, b), (c, d))
+    bad = tmp_path / "half.edges"
+    bad.write_text("0 1\n1 2\npos 0 0 0\npos 2 1 0\n")
+    with pytest.raises(TargetError, match="not for \\[1\\]"):
+        connectivity_spec(f"custom:{bad}")

@@ -26,9 +26,9 @@ FORM_SCHEMA = {
         "file": {"type": "string", "format": "binary", "description": "the model file (JSON, UAI or node-link)"},
         "connectivities": {"type": "array", "items": {"type": "string"}},
         "noise_scales": {"type": "array", "items": {"type": "string"}},
-        **{k: {"type": "string"} for k in ("model_format", "gate_set", "strategy", "profile", "compile_only", "seeds",
+        **{k: {"type": "string"} for k in ("label", "model_format", "gate_set", "strategy", "profile", "compile_only", "seeds",
                                            "family", "layers", "seed", "max_order", "fidelity_target",
-                                           "method", "time_budget_seconds", "trajectories", "precision")},
+                                           "requirement_tolerance", "method", "time_budget_seconds", "trajectories", "precision")},
     },
 }
 FORM_BODY = {"requestBody": {"required": True, "content": {

@@ -18,6 +18,7 @@ from typing import Any, Mapping
 
 from toposcout.compiler.errors import CapacityError, ModelError, ProfileError, TargetError
 from toposcout.compiler.model import Limits, Model, parse_model
+from toposcout.compiler.options import LIMITS
 from toposcout.compiler.study import make_tasks, task_key
 from toposcout.compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, check_edge_list, heavy_hex_qubits
 
@@ -76,6 +77,15 @@ def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables:
     else:
         d = {"family": spec.family, "size": None if spec.size is None else str(spec.size),
              "edges": [list(e) for e in spec.edges] if spec.edges is not None else None}
+        if spec.name is not None:
+            if spec.family != "custom":
+                raise TargetError(f"{where}.name: only a custom connectivity takes a name", field=f"{where}.name")
+            d["name"] = spec.name
+        if spec.positions is not None:
+            if spec.family != "custom":
+                raise TargetError(f"{where}.positions: only a custom connectivity takes positions",
+                                  field=f"{where}.positions")
+            d["positions"] = [list(p) for p in spec.positions]
         if d["size"] is not None and not re.match(r"^[0-9]{1,4}(x[0-9]{1,4})?$", d["size"]):
             raise TargetError(f"{where}.size: {d['size'][:40]!r} is not a size (e.g. 12, '3x4')", field=f"{where}.size")
     family = d["family"]
@@ -98,9 +108,13 @@ def _connectivity(i: int, spec: str | ConnectivitySpec, settings, num_variables:
     return d
 
 
-def _profile(profile: str | dict | None) -> str | dict | None:
+def _profile(profile: str | dict | list | None) -> str | dict | list | None:
     if profile is None:
         return None
+    if isinstance(profile, list):
+        if not 1 <= len(profile) <= 8:
+            raise ProfileError("profile: give from 1 to 8 profiles", field="profile")
+        return [_profile(p) for p in profile]
     from toposcout.compiler.profiles import PROFILE_NAMES, load_profile
 
     if isinstance(profile, str):
@@ -241,9 +255,7 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
         raise CapacityError(f"noise_scales: {len(scales)} scales is over this server's cap of "
                             f"{settings.max_noise_scales}", field="noise_scales")
     for i, s in enumerate(scales):
-        if not math.isfinite(s) or s < 0 or s > 1000:
-            raise ModelError(f"noise_scales[{i}]: {s!r} must be a finite number from 0 to 1000",
-                             field=f"noise_scales[{i}]")
+        LIMITS["noise_scale"].check(s, field=f"noise_scales[{i}]")
     # every task carries the model (its key hashes it, the store keeps it): bound tasks x model size
     _study_size(len(specs) * len(scales), len(json.dumps(model.to_dict(), separators=(",", ":"))))
     profile = None if compile_only else _profile(req.profile)
@@ -258,6 +270,8 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
         options["memory_budget_bytes"] = int(memory_budget)
     if req.fidelity_target is not None and not compile_only:
         options["fidelity_target"] = req.fidelity_target
+    if req.requirement_tolerance is not None and not compile_only:
+        options["requirement_tolerance"] = req.requirement_tolerance
     if not compile_only:
         options.update(method=req.method, time_budget_seconds=req.time_budget_seconds,
                        trajectories=req.trajectories, precision=req.precision)
@@ -269,10 +283,12 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
     for fam in families:
         tasks += make_tasks(model, specs, noise_scales=scales, **{**options, "family": fam})
     keys = [task_key({**t, "model": model}) for t in tasks]  # the parsed model: no second parse per task
-    normalised = {"model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
+    normalised = {"label": req.label, "model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
                   "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
                   "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
-                  "max_order": model.max_order, "fidelity_target": options.get("fidelity_target"),
+                  "max_order": model.max_order,
+                  "fidelity_target": tasks[0].get("fidelity_target") if tasks else None,  # after the one default
+                  "requirement_tolerance": req.requirement_tolerance,
                   "method": req.method, "time_budget_seconds": req.time_budget_seconds,
                   "trajectories": req.trajectories, "precision": req.precision,
                   "device": None if device is None else device.to_dict(), "placement": req.placement,
@@ -367,7 +383,7 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
                 out[key] = int(v)
             except ValueError:
                 raise ModelError(f"{key}: {v[:40]!r} is not an integer", field=key) from None
-        elif key in ("fidelity_target", "time_budget_seconds", "precision", "jitter"):
+        elif key in ("fidelity_target", "requirement_tolerance", "time_budget_seconds", "precision", "jitter"):
             if v:
                 out[key] = _form_float(key, v)
         elif key == "compile_only":

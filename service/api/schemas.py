@@ -14,7 +14,9 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from toposcout.compiler.ansatz import FAMILIES
 from toposcout.compiler.compile import STRATEGIES
+from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, DEFAULT_REQUIREMENT_TOLERANCE, LIMITS
 from toposcout.compiler.rows import ROW_FIELDS
+from toposcout.compiler.targets import NAME_PATTERN
 from toposcout.service.store import ROW_STATES, STUDY_STATES
 
 __all__ = ["ConnectivitySpec", "FitBlock", "StudyRequest", "ErrorBody", "Progress", "StudySummary", "StudyCreated",
@@ -39,6 +41,12 @@ class ConnectivitySpec(BaseModel):
     size: str | int | None = Field(default=None, description="e.g. 12 (line), '3x4' (grid), 5 (heavy-hex)")
     edges: list[Annotated[list[int], Field(min_length=2, max_length=2)]] | None = Field(
         default=None, max_length=5000, description="custom only: undirected edges [a, b] of qubit indices")
+    name: str | None = Field(default=None, pattern=f"^{NAME_PATTERN}$",
+                             description="custom only: the row name (default custom-Q; two graphs of one size get "
+                                         "custom-Q and custom-Q-2); one name for two graphs is refused")
+    positions: list[Annotated[list[float], Field(min_length=2, max_length=2)]] | None = Field(
+        default=None, max_length=5000, description="custom only: drawing position [x, y] of every qubit (the "
+                                                   "dashboard's drawing; default: a planar layout)")
 
 
 class FitBlock(BaseModel):
@@ -64,6 +72,8 @@ class StudyRequest(BaseModel):
 
     model: dict[str, Any] | str = Field(
         description="the model: a JSON model object, or the text of a model file (UAI, JSON or node-link)")
+    label: str | None = Field(default=None, min_length=1, max_length=80, pattern=r"^[^\x00-\x1f\x7f]+$",
+                              description="a label of your choice, shown in the study list and usable as a filter")
     model_format: Literal["json", "uai", "nodelink"] | None = Field(
         default=None, description="default null: guessed from the content")
     connectivities: list[str | ConnectivitySpec] | None = Field(
@@ -71,31 +81,38 @@ class StudyRequest(BaseModel):
         description="default null: every built-in family, sized to the model")
     gate_set: str = Field(default="cx", max_length=32)
     strategy: Literal[STRATEGIES] = "auto"
-    profile: str | dict[str, Any] | None = Field(
-        default=None, description="a built-in profile name, or a profile object; null: the default profile")
+    profile: str | dict[str, Any] | list[str | dict[str, Any]] | None = Field(
+        default=None, description="a built-in profile name, or a profile object, or a list of them (one study "
+                                  "compares the device classes: rows per profile); null: the default profile")
     noise_scales: list[float] = Field(default_factory=lambda: [1.0], min_length=1, max_length=64,
                                       description="one row per connectivity and scale; every error rate x scale")
     compile_only: bool = Field(default=False, description="skip the noise simulation")
-    seeds: int = Field(default=5, ge=1, le=16, description="transpiler seeds tried by the generic strategy")
+    seeds: int = Field(default=5, **LIMITS["seeds"].pydantic(), description="transpiler seeds tried by the generic strategy")
     family: Literal[FAMILIES] = "clique"
     families: list[Literal[FAMILIES]] | None = Field(
         default=None, min_length=1, max_length=len(FAMILIES),
         description="several families: rows for each (family, connectivity); overrides family")
     fit: FitBlock | None = Field(default=None, description="fit the angles first (null: angles as given)")
-    layers: int = Field(default=1, ge=1, le=8)
-    seed: int = Field(default=0, ge=0, le=2**31 - 1, description="seed of the random angles")
-    max_order: int | None = Field(default=None, ge=1, le=16, description="keep only terms of at most this order")
-    fidelity_target: float | None = Field(default=None, gt=0, lt=1,
-                                          description="also find the largest 2q error reaching this state fidelity")
+    layers: int = Field(default=1, **LIMITS["layers"].pydantic(), description=LIMITS["layers"].meaning)
+    seed: int = Field(default=0, **LIMITS["seed"].pydantic(), description="seed of the random angles")
+    max_order: int | None = Field(default=None, **LIMITS["max_order"].pydantic(), description="keep only terms of at most this order")
+    fidelity_target: float | None = Field(default=None, **LIMITS["fidelity_target"].pydantic(),
+                                          description="also find the largest 2q error reaching this state fidelity "
+                                                      f"(null: {DEFAULT_FIDELITY_TARGET} with two or more noise "
+                                                      "scales, else no requirement)")
+    requirement_tolerance: float | None = Field(
+        default=None, **LIMITS["requirement_tolerance"].pydantic(),
+        description="relative width (upper - lower) / upper at which the requirement's bisection stops "
+                    f"(null: {DEFAULT_REQUIREMENT_TOLERANCE}); the row reports the bracket")
     method: Literal["auto", "density-matrix", "trajectories", "clifford"] = Field(
         default="auto", description="how noise figures are computed; auto: density-matrix within the memory budget, "
                                     "else trajectories within time_budget_seconds, else clifford (an estimate)")
-    time_budget_seconds: float | None = Field(default=None, gt=0, le=3600,
+    time_budget_seconds: float | None = Field(default=None, **LIMITS["time_budget_seconds"].pydantic(),
                                               description="wall time the noise figures of one row may take "
                                                           "(null: 300)")
-    trajectories: int | None = Field(default=None, ge=1, le=20000,
+    trajectories: int | None = Field(default=None, **LIMITS["trajectories"].pydantic(),
                                      description="trajectories method: run exactly this many trajectories")
-    precision: float | None = Field(default=None, gt=0, lt=1,
+    precision: float | None = Field(default=None, **LIMITS["precision"].pydantic(),
                                     description="trajectories method: stop when the state fidelity's standard "
                                                 "error is below this (null: 0.01)")
     device: str | None = Field(default=None, max_length=2_000_000,
@@ -131,6 +148,10 @@ class StudySummary(BaseModel):
     updated_at: str
     progress: Progress
     best_connectivity: str | None = None  # set when the study finishes; live in GET /v1/studies/{id}
+    label: str | None = None
+    connectivities: list[str] = Field(default_factory=list, description="the study's connectivities as requested")
+    profiles: list[str] = Field(default_factory=list, description="profile names (empty: compile-only)")
+    noise_scales: list[float] = Field(default_factory=list)
 
 
 class StudyCreated(BaseModel):

@@ -48,7 +48,7 @@ from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sess
 from sqlalchemy.types import TypeDecorator
 
 __all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "QueueFull", "best_connectivity", "STUDY_STATES", "FINISHED_STATES",
-           "UNFINISHED", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow",
+           "UNFINISHED", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow", "request_summary",
            "new_study_id"]
 
 STUDY_STATES = ("queued", "running", "done", "failed", "cancelled")
@@ -404,10 +404,16 @@ class Store:
             return s.scalar(select(StudyRecord.owner).where(StudyRecord.id == study_id))
 
     def list_studies(self, *, status: str | None = None, owner: str | None = None, limit: int = 20,
-                     offset: int = 0) -> tuple[list[dict], int]:
-        """Summaries, newest first, and the total matching the filters."""
+                     offset: int = 0, model: str | None = None, label: str | None = None) -> tuple[list[dict], int]:
+        """Summaries, newest first, and the total matching the filters (``model``: the model's
+        name; ``label``: the request's label, both exact)."""
         q = select(StudyRecord)
         c = select(func.count()).select_from(StudyRecord)
+        if model is not None:
+            q, c = q.where(StudyRecord.model_name == model), c.where(StudyRecord.model_name == model)
+        if label is not None:
+            cond = StudyRecord.request["label"].as_string() == label
+            q, c = q.where(cond), c.where(cond)
         if status is not None:
             q, c = q.where(StudyRecord.status == status), c.where(StudyRecord.status == status)
         if owner is not None:
@@ -634,7 +640,23 @@ class Store:
         return {"id": rec.id, "status": rec.status, "owner": rec.owner, "model_name": rec.model_name,
                 "created_at": _iso(rec.created_at), "updated_at": _iso(rec.updated_at),
                 "progress": {"done": rec.done, "total": rec.total},
-                "best_connectivity": rec.best_connectivity}
+                "best_connectivity": rec.best_connectivity, **request_summary(rec.request)}
+
+
+def request_summary(request: Mapping[str, Any] | None) -> dict:
+    """What the study list shows of a stored request: label, connectivities, profiles, scales."""
+    req = request or {}
+    conns = []
+    for c in req.get("connectivities") or []:
+        if isinstance(c, Mapping):
+            conns.append(str(c.get("name") or c.get("family")) + (f":{c['size']}" if c.get("size") else ""))
+        else:
+            conns.append(str(c))
+    prof = req.get("profile")
+    profs = prof if isinstance(prof, list) else ([] if prof is None and req.get("compile_only") else [prof])
+    names = [p.get("name", "custom") if isinstance(p, Mapping) else (p or "default") for p in profs]
+    return {"label": req.get("label"), "connectivities": conns or ["every built-in family"],
+            "profiles": [str(n) for n in names], "noise_scales": [float(s) for s in req.get("noise_scales") or []]}
 
 
 def best_connectivity(rows: list[dict]) -> str | None:

@@ -38,9 +38,8 @@ from html import escape
 from typing import Any, Iterable, Mapping, Sequence
 
 import matplotlib
-
-matplotlib.use("Agg")
-
+# no matplotlib.use(): the charts use the object API (Figure, savefig picks its canvas by format), so
+# importing this module in a notebook leaves the notebook's backend alone
 from matplotlib.figure import Figure  # noqa: E402
 
 from toposcout.compiler.errors import ToposcoutError  # noqa: E402
@@ -71,11 +70,35 @@ CHART_TITLES: dict[str, str] = {
 }
 FORMATS: tuple[str, ...] = ("svg", "png")
 
-_BUDGET = (("budget_two_qubit", "two-qubit gates", "#c0504d"),
-           ("budget_one_qubit", "one-qubit gates", "#e8a33d"),
-           ("budget_idle", "idling (T1/T2)", "#4f81bd"),
-           ("budget_readout", "readout", "#8064a2"))
-_BLUE, _ORANGE, _GREY = "#2f6db3", "#d9822b", "#b5b5b5"
+#: our colours, one per meaning, the same in every chart and drawing. Chosen by hand for this project
+#: and checked with the colour-vision-deficiency simulation of Machado, Oliveira & Fernandes (2009)
+#: (tests/test_dashboard_charts.py: the colours that share a chart stay apart in CAM02-UCS for
+#: protanopia, deuteranopia and tritanopia at full severity).
+PALETTE: dict[str, str] = {
+    "two_qubit": "#a23b2a",      # two-qubit gates: their count, their budget share, couplings that carried SWAPs
+    "one_qubit": "#e3b341",      # one-qubit gates
+    "idle": "#2d6a9f",           # idling (T1/T2 relaxation)
+    "readout": "#8fd0c8",        # readout
+    "state": "#3f2a73",          # state fidelity
+    "distribution": "#d4a6c8",   # Hellinger fidelity of the measured distribution
+    "depth": "#8a8a8a",          # circuit depth
+    "placed": "#1d3557",         # drawing: a qubit holding a variable
+    "routing": "#a8c5e0",        # drawing: a qubit used for routing only
+    "unused": "#e6e6e6",         # drawing: a qubit no gate touches
+    "ink": "#222222",            # reference lines: totals, targets, bounds
+}
+#: the chart groups whose colours appear together (the colour-blindness test checks each group)
+PALETTE_GROUPS: dict[str, tuple[str, ...]] = {
+    "budget": ("two_qubit", "one_qubit", "idle", "readout"),
+    "fidelity": ("state", "distribution"),
+    "gates": ("two_qubit", "depth"),
+    "drawing": ("placed", "routing", "unused", "two_qubit"),
+}
+_BUDGET = (("budget_two_qubit", "two-qubit gates", PALETTE["two_qubit"]),
+           ("budget_one_qubit", "one-qubit gates", PALETTE["one_qubit"]),
+           ("budget_idle", "idling (T1/T2)", PALETTE["idle"]),
+           ("budget_readout", "readout", PALETTE["readout"]))
+_GREY = "#9a9a9a"  # outline of an unused qubit
 _MARKERS = ("o", "s", "^", "D", "v", "P", "X")  # distinct shapes keep overlapping curves apart
 
 
@@ -146,20 +169,24 @@ def chart_description(kind: str, rows: Iterable[Mapping[str, Any]]) -> str:
         body = "; ".join(f"{r['connectivity']}: {r['two_qubit_gates']} two-qubit gates, depth {r.get('depth')}"
                          for r in per)
     elif kind == "fidelity":
-        body = "; ".join(f"{r['connectivity']}: state fidelity {_fmt(r.get('state_fidelity'))}, "
-                         f"Hellinger fidelity {_fmt(r.get('hellinger_fidelity'))}" for r in per)
+        several = len({k[0] for k, _ in facets(ok)}) > 1
+        body = "; ".join(f"{_facet_title(key, several)}: " + "; ".join(
+            f"{r['connectivity']}: state fidelity {_fmt(r.get('state_fidelity'))}, "
+            f"Hellinger fidelity {_fmt(r.get('hellinger_fidelity'))}" for r in g) for key, g in facets(ok))
     elif kind == "fit":
         body = "; ".join(f"{fam}: {len(c)} iterations, final {r.get('fit_loss')} loss {_fmt(c[-1])}"
                          for fam, (r, c) in _fit_curves(ok).items())
     elif kind == "budget":
-        body = "; ".join(f"{r['connectivity']}: " + ", ".join(f"{label} {_fmt(r.get(k))}" for k, label, _ in _BUDGET)
-                         for r in per)
+        several = len({k[0] for k, _ in facets(ok)}) > 1
+        body = "; ".join(f"{_facet_title(key, several)}: " + "; ".join(
+            f"{r['connectivity']}: " + ", ".join(f"{label} {_fmt(r.get(k))}" for k, label, _ in _BUDGET)
+            + f", total loss {_fmt(None if r.get('hellinger_fidelity') is None else 1 - r['hellinger_fidelity'])}"
+            for r in g) for key, g in facets(ok)) + f" ({BUDGET_NOTE})"
     elif kind == "sweep":
         parts = []
         for name, pts in _sweep_series(ok).items():
             s = ", ".join(f"{x:g}x -> {_fmt(y)}" for x, y in pts)
-            thr = next((r.get("threshold_noise_scale") for r in ok if r.get("connectivity") == name
-                        and r.get("threshold_noise_scale") is not None), None)
+            thr = _threshold_of(name, ok)
             parts.append(f"{name}: {s}" + (f"; target reached up to noise scale {thr:.3g}" if thr else ""))
         body = "; ".join(parts)
     else:
@@ -179,6 +206,14 @@ def render_chart(kind: str, rows: Iterable[Mapping[str, Any]], *, fmt: str = "sv
     """
     if fmt not in FORMATS:
         raise ToposcoutError(f"unknown chart format {fmt!r}; choose svg or png", field="format")
+    ok = usable_rows(rows)
+    fig = chart_figure(kind, ok)
+    return _save(fig, fmt, CHART_TITLES[kind], chart_description(kind, ok))
+
+
+def chart_figure(kind: str, rows: Iterable[Mapping[str, Any]]) -> Figure:
+    """Chart ``kind`` of the rows as a matplotlib Figure (what the dashboard serves; the notebook
+    client's ``StudyHandle.plot`` shows it). Raises ToposcoutError as :func:`render_chart`."""
     if kind not in CHART_KINDS:
         raise ToposcoutError(f"unknown chart {kind!r}; choose one of {', '.join(CHART_KINDS)}", field="chart")
     ok = usable_rows(rows)
@@ -191,12 +226,13 @@ def render_chart(kind: str, rows: Iterable[Mapping[str, Any]], *, fmt: str = "sv
     draw = {"gates": _draw_gates, "fidelity": _draw_fidelity, "budget": _draw_budget, "sweep": _draw_sweep,
             "fit": _draw_fit}[kind]
     per = per_connectivity(ok)
-    width = max(6.4, 1.1 * len(per) + 2.5) if kind != "sweep" else 7.0
+    panels = len(facets(ok)) if kind in ("fidelity", "budget") else 1
+    width = max(6.4, panels * (1.1 * len(per) + 1.5) + 1.0) if kind != "sweep" else 7.0
     fig = Figure(figsize=(min(width, 14.0), 4.6), layout="constrained")
     draw(fig, ok)
     fig.suptitle(CHART_TITLES[kind], fontsize=11)
     _caption(fig, caption(ok, kind=kind))
-    return _save(fig, fmt, CHART_TITLES[kind], chart_description(kind, ok))
+    return fig
 
 
 def _caption(fig: Figure, text: str) -> None:
@@ -236,15 +272,15 @@ def _draw_gates(fig: Figure, rows) -> None:
     names = _names(per)
     ax1, ax2 = fig.subplots(1, 2)
     x = range(len(per))
-    bars = ax1.bar(x, [r["two_qubit_gates"] for r in per], color=_BLUE)
+    bars = ax1.bar(x, [r["two_qubit_gates"] for r in per], color=PALETTE["two_qubit"])
     ax1.bar_label(bars, fontsize=8)
     lb = next((r.get("lower_bound_two_qubit") for r in per if r.get("lower_bound_two_qubit") is not None), None)
     if lb is not None:
-        ax1.axhline(lb, color="#333333", linestyle=":", linewidth=1, label=f"lower bound ({lb})")
+        ax1.axhline(lb, color=PALETTE["ink"], linestyle=":", linewidth=1, label=f"lower bound ({lb})")
         ax1.legend(fontsize=8, loc="upper left")
     ax1.set_ylabel("two-qubit gates (count)")
     ax1.set_title("Two-qubit gate count", fontsize=10)
-    bars = ax2.bar(x, [r.get("depth") or 0 for r in per], color=_ORANGE, label="depth")
+    bars = ax2.bar(x, [r.get("depth") or 0 for r in per], color=PALETTE["depth"], label="depth")
     ax2.bar_label(bars, fontsize=8)
     ax2.set_ylabel("circuit depth (layers of gates)")
     ax2.set_title("Depth (without measurement)", fontsize=10)
@@ -254,45 +290,79 @@ def _draw_gates(fig: Figure, rows) -> None:
         ax.margins(y=0.15)
 
 
+def facets(rows: Sequence[Mapping[str, Any]]) -> list[tuple[tuple[str | None, float], list[Mapping[str, Any]]]]:
+    """The rows grouped by (profile, noise scale), one row per connectivity in each group, in
+    first-seen order: rows of different scales or profiles are never compared side by side."""
+    groups: dict[tuple[str | None, float], dict[str, Mapping[str, Any]]] = {}
+    for r in rows:
+        key = (str(r["profile"]) if r.get("profile") else None, float(r.get("noise_scale") or 0.0))
+        groups.setdefault(key, {}).setdefault(str(r.get("connectivity")), r)
+    return [(k, list(v.values())) for k, v in groups.items()]
+
+
+def _facet_title(key: tuple[str | None, float], several_profiles: bool) -> str:
+    profile, scale = key
+    return f"noise scale {scale:g}x" + (f", profile {profile}" if several_profiles and profile else "")
+
+
 def _draw_fidelity(fig: Figure, rows) -> None:
-    per = [r for r in per_connectivity(rows) if r.get("state_fidelity") is not None]
-    names = _names(per)
-    ax = fig.subplots()
+    groups = [(k, [r for r in g if r.get("state_fidelity") is not None]) for k, g in facets(rows)]
+    groups = [(k, g) for k, g in groups if g]
+    several = len({k[0] for k, _ in groups}) > 1
+    axes = fig.subplots(1, len(groups), sharey=True, squeeze=False)[0]
     w = 0.38
-    xs = list(range(len(per)))
-    b1 = ax.bar([i - w / 2 for i in xs], [r["state_fidelity"] for r in per], w, color=_BLUE, label="state fidelity")
-    b2 = ax.bar([i + w / 2 for i in xs], [r.get("hellinger_fidelity") or 0 for r in per], w, color=_ORANGE,
-                label="Hellinger fidelity")
-    ax.bar_label(b1, fmt="%.3f", fontsize=7)
-    ax.bar_label(b2, fmt="%.3f", fontsize=7)
-    scales = sorted({r.get("noise_scale") for r in per})
-    ax.set_xticks(xs, names, rotation=30, ha="right", fontsize=8)
-    ax.set_xlabel("connectivity (instance)" + (f", noise scale {scales[0]:g}x" if len(scales) == 1 else ""))
-    ax.set_ylabel("fidelity (dimensionless, 0 to 1)")
-    ax.set_ylim(0, 1.12)
-    ax.legend(fontsize=8, loc="upper right", ncols=2)
+    for ax, (key, per) in zip(axes, groups):
+        xs = list(range(len(per)))
+        b1 = ax.bar([i - w / 2 for i in xs], [r["state_fidelity"] for r in per], w, color=PALETTE["state"],
+                    label="state fidelity")
+        b2 = ax.bar([i + w / 2 for i in xs], [r.get("hellinger_fidelity") or 0 for r in per], w,
+                    color=PALETTE["distribution"], label="Hellinger fidelity")
+        ax.bar_label(b1, fmt="%.3f", fontsize=7)
+        ax.bar_label(b2, fmt="%.3f", fontsize=7)
+        ax.set_xticks(xs, _names(per), rotation=30, ha="right", fontsize=8)
+        ax.set_title(_facet_title(key, several), fontsize=9)
+        ax.set_xlabel("connectivity (instance)")
+        ax.set_ylim(0, 1.12)
+    axes[0].set_ylabel("fidelity (dimensionless, 0 to 1)")
+    axes[0].legend(fontsize=8, loc="upper right", ncols=2)
+
+
+#: how the budget chart says what its bars are (also in the README's error-budget paragraph)
+BUDGET_NOTE = ("each bar is a separate estimate: the Hellinger fidelity regained when only that source is "
+               "switched off; sources interact, so the bars are not stacked and need not add up to the total loss")
 
 
 def _draw_budget(fig: Figure, rows) -> None:
-    per = [r for r in per_connectivity(rows) if any(r.get(k) is not None for k, _, _ in _BUDGET)]
-    names = _names(per)
-    ax = fig.subplots()
-    xs = list(range(len(per)))
-    bottom = [0.0] * len(per)
-    for key, label, colour in _BUDGET:
-        vals = [max(0.0, float(r.get(key) or 0.0)) for r in per]
-        ax.bar(xs, vals, 0.6, bottom=bottom, color=colour, label=label)
-        bottom = [b + v for b, v in zip(bottom, vals)]
-    for i, r in enumerate(per):
-        if r.get("hellinger_fidelity") is not None:
-            ax.plot([i - 0.3, i + 0.3], [1 - r["hellinger_fidelity"]] * 2, color="#222222", linewidth=1.2,
-                    label="total loss (1 - Hellinger fidelity)" if i == 0 else None)
-    ax.set_xticks(xs, names, rotation=30, ha="right", fontsize=8)
-    ax.set_xlabel("connectivity (instance)")
-    ax.set_ylabel("Hellinger fidelity lost (absolute, 0 to 1)")
-    top = max(bottom + [1 - float(r.get("hellinger_fidelity") or 1.0) for r in per] + [1e-9])
-    ax.set_ylim(0, top * 1.5)  # room for the legend above the tallest bar
-    ax.legend(fontsize=8, loc="upper left", ncols=2)
+    groups = [(k, [r for r in g if any(r.get(b) is not None for b, _, _ in _BUDGET)]) for k, g in facets(rows)]
+    groups = [(k, g) for k, g in groups if g]
+    several = len({k[0] for k, _ in groups}) > 1
+    axes = fig.subplots(1, len(groups), sharey=True, squeeze=False)[0]
+    w = 0.8 / len(_BUDGET)
+    top = 1e-9
+    for ax, (key, per) in zip(axes, groups):
+        xs = list(range(len(per)))
+        for j, (bkey, label, colour) in enumerate(_BUDGET):
+            vals = [max(0.0, float(r.get(bkey) or 0.0)) for r in per]
+            ax.bar([i - 0.4 + w * (j + 0.5) for i in xs], vals, w, color=colour, label=label)
+            top = max([top] + vals)
+        for i, r in enumerate(per):
+            if r.get("hellinger_fidelity") is not None:
+                loss = 1 - r["hellinger_fidelity"]
+                ax.plot([i - 0.42, i + 0.42], [loss] * 2, color=PALETTE["ink"], linewidth=1.2, linestyle="--",
+                        label="total loss (1 - Hellinger fidelity)" if i == 0 else None)
+                top = max(top, loss)
+        ax.set_xticks(xs, _names(per), rotation=30, ha="right", fontsize=8)
+        ax.set_title(_facet_title(key, several), fontsize=9)
+        ax.set_xlabel("connectivity (instance)")
+    axes[0].set_ylabel("Hellinger fidelity (absolute, 0 to 1)")
+    axes[0].set_ylim(0, top * 1.6)  # room for the legend above the tallest bar
+    axes[0].legend(fontsize=8, loc="upper left", ncols=2, title=textwrap.fill(BUDGET_NOTE, 70), title_fontsize=7)
+
+
+def _series_key(r: Mapping[str, Any], rows) -> str:
+    """A sweep curve: a connectivity, and its profile when the study has several."""
+    several = len({x.get("profile") for x in rows if x.get("profile")}) > 1
+    return str(r.get("connectivity")) + (f" ({r.get('profile')})" if several and r.get("profile") else "")
 
 
 def _sweep_series(rows) -> dict[str, list[tuple[float, float]]]:
@@ -300,8 +370,13 @@ def _sweep_series(rows) -> dict[str, list[tuple[float, float]]]:
     for r in rows:
         if r.get("state_fidelity") is None or r.get("noise_scale") is None:
             continue
-        series.setdefault(str(r["connectivity"]), []).append((float(r["noise_scale"]), float(r["state_fidelity"])))
+        series.setdefault(_series_key(r, rows), []).append((float(r["noise_scale"]), float(r["state_fidelity"])))
     return {k: sorted(v) for k, v in series.items()}
+
+
+def _threshold_of(name: str, rows) -> float | None:
+    return next((r.get("threshold_noise_scale") for r in rows if _series_key(r, rows) == name
+                 and r.get("threshold_noise_scale") is not None), None)
 
 
 def _draw_sweep(fig: Figure, rows) -> None:
@@ -310,18 +385,17 @@ def _draw_sweep(fig: Figure, rows) -> None:
     colours = matplotlib.colormaps["tab10"]
     for i, (name, pts) in enumerate(series.items()):
         c = colours(i % 10)
-        thr = next((r.get("threshold_noise_scale") for r in rows if str(r.get("connectivity")) == name
-                    and r.get("threshold_noise_scale") is not None), None)
-        label = name if thr is None else f"{name} (target reached up to {thr:.3g}x)"
-        ax.plot([p[0] for p in pts], [p[1] for p in pts], marker=_MARKERS[i % len(_MARKERS)], color=c, label=label,
+        thr = _threshold_of(name, rows)
+        ax.plot([p[0] for p in pts], [p[1] for p in pts], marker=_MARKERS[i % len(_MARKERS)], color=c, label=name,
                 linestyle=("-", "--", "-.", ":")[i % 4], markersize=7 - (i % 3), markerfacecolor="none" if i % 2 else c)
-        if thr is not None:
-            ax.axvline(thr, color=c, linestyle="--", linewidth=1)
+        if thr is not None:  # the marker has its own legend entry, saying what it marks
+            ax.axvline(thr, color=c, linestyle=(0, (2, 2)), linewidth=1,
+                       label=f"{name}: threshold {thr:.3g}x (largest scale reaching the target)")
             ax.annotate(f"threshold {thr:.3g}x", (thr, 0.03 + 0.06 * (i % 4)), color=c, fontsize=7,
                         ha="right", va="bottom", xytext=(-3, 0), textcoords="offset points")
     target = next((r.get("fidelity_target") for r in rows if r.get("fidelity_target") is not None), None)
     if target is not None:
-        ax.axhline(target, color="#222222", linestyle=":", linewidth=1.2, label=f"fidelity target {target:g}")
+        ax.axhline(target, color=PALETTE["ink"], linestyle=":", linewidth=1.2, label=f"fidelity target {target:g}")
     ax.set_xlabel("noise scale (multiple of the profile's error rates)")
     ax.set_ylabel("state fidelity (dimensionless, 0 to 1)")
     ax.set_ylim(0, 1.05)
@@ -347,14 +421,15 @@ def connectivity_for_row(row: Mapping[str, Any], request: Mapping[str, Any] | No
         (f for f in ("all-to-all", "heavy-hex", "line", "ring", "grid", "custom") if name.startswith(f + "-")), None)
     n = int(row.get("variables") or 1)
     if family == "custom":
-        for spec in (request or {}).get("connectivities") or []:
-            if isinstance(spec, Mapping) and spec.get("edges"):
-                try:
-                    c = make_connectivity("custom", n, edges=spec["edges"])
-                except ToposcoutError:
-                    continue
-                if c.name == name:
-                    return c
+        from toposcout.compiler.study import resolve_connectivities  # the names the study gave its rows
+
+        try:
+            _specs, conns = resolve_connectivities((request or {}).get("connectivities") or [], n)
+        except ToposcoutError:
+            conns = []
+        for c in conns:
+            if c.family == "custom" and c.name == name:
+                return c
         raise ToposcoutError(f"cannot rebuild the custom connectivity {name!r}: its edges are not in the request",
                              field="connectivity")
     if not family or not name.startswith(family + "-"):
@@ -396,6 +471,14 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
     """
     if fmt not in FORMATS:
         raise ToposcoutError(f"unknown chart format {fmt!r}; choose svg or png", field="format")
+    fig = connectivity_figure(row, conn, active=active)
+    act = set(active) if active is not None else _active_guess(row)
+    return _save(fig, fmt, f"{conn.name}: variables on physical qubits",
+                 drawing_description(row, conn, act if active is not None else None))
+
+
+def connectivity_figure(row: Mapping[str, Any], conn: Connectivity, *, active: Iterable[int] | None = None) -> Figure:
+    """The drawing of :func:`connectivity_chart` as a matplotlib Figure."""
     layout = {str(v): int(p) for v, p in (row.get("layout") or {}).items()}
     by_qubit = {p: v for v, p in layout.items()}
     act = set(active) if active is not None else _active_guess(row)
@@ -410,10 +493,10 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
     for a, b in conn.edges:
         (x1, y1), (x2, y2) = xy[a], xy[b]
         if (a, b) in swaps:
-            ax.plot([x1, x2], [y1, y2], color=_ORANGE, linewidth=3.5, zorder=2, solid_capstyle="round")
-            ax.text((x1 + x2) / 2, (y1 + y2) / 2, f"{swaps[(a, b)]} SWAP", fontsize=7, color="#7a3f00",
+            ax.plot([x1, x2], [y1, y2], color=PALETTE["two_qubit"], linewidth=3.5, zorder=2, solid_capstyle="round")
+            ax.text((x1 + x2) / 2, (y1 + y2) / 2, f"{swaps[(a, b)]} SWAP", fontsize=7, color=PALETTE["two_qubit"],
                     ha="center", va="center", zorder=5,
-                    bbox=dict(boxstyle="round,pad=0.15", fc="white", ec=_ORANGE, lw=0.8))
+                    bbox=dict(boxstyle="round,pad=0.15", fc="white", ec=PALETTE["two_qubit"], lw=0.8))
         else:
             ax.plot([x1, x2], [y1, y2], color="#cfcfcf" if dense else "#9a9a9a",
                     linewidth=0.6 if dense else 1.2, zorder=1)
@@ -421,26 +504,26 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
     for q in range(n):
         x, y = xy[q]
         if q in by_qubit:
-            face, edge = _BLUE, "#17375e"
+            face, edge = PALETTE["placed"], PALETTE["ink"]
         elif q in act:
-            face, edge = "#9cc3e6", _BLUE
+            face, edge = PALETTE["routing"], PALETTE["placed"]
         else:
-            face, edge = "#e6e6e6", _GREY
+            face, edge = PALETTE["unused"], _GREY
         ax.scatter([x], [y], s=size, c=face, edgecolors=edge, linewidths=1.2, zorder=3)
         ax.text(x, y, str(q), fontsize=5 if big else 7, ha="center", va="center", zorder=4,
                 color="white" if q in by_qubit else "#555555")
         if q in by_qubit:
             ax.annotate(by_qubit[q], (x, y), xytext=(0, 9 if big else 13), textcoords="offset points",
-                        fontsize=7 if big else 8, ha="center", va="bottom", color="#17375e", zorder=6,
+                        fontsize=7 if big else 8, ha="center", va="bottom", color=PALETTE["placed"], zorder=6,
                         fontweight="bold")
     # legend proxies
-    ax.scatter([], [], s=60, c=_BLUE, edgecolors="#17375e", label="variable placed (initial layout)")
+    ax.scatter([], [], s=60, c=PALETTE["placed"], edgecolors=PALETTE["ink"], label="variable placed (initial layout)")
     if act - set(by_qubit):
-        ax.scatter([], [], s=60, c="#9cc3e6", edgecolors=_BLUE, label="used for routing only")
+        ax.scatter([], [], s=60, c=PALETTE["routing"], edgecolors=PALETTE["placed"], label="used for routing only")
     if set(range(n)) - act - set(by_qubit):
-        ax.scatter([], [], s=60, c="#e6e6e6", edgecolors=_GREY, label="idle qubit")
+        ax.scatter([], [], s=60, c=PALETTE["unused"], edgecolors=_GREY, label="idle qubit")
     if swaps:
-        ax.plot([], [], color=_ORANGE, linewidth=3.5, label="coupling that carried SWAPs")
+        ax.plot([], [], color=PALETTE["two_qubit"], linewidth=3.5, label="coupling that carried SWAPs")
     ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncols=2, frameon=False)
     ax.set_aspect("equal", adjustable="datalim")
     ax.margins(0.12)
@@ -455,7 +538,7 @@ def connectivity_chart(row: Mapping[str, Any], conn: Connectivity, *, active: It
             if mismatch else "")
     ax.set_title(title + note, fontsize=10)
     _caption(fig, caption([row], kind="gates"))
-    return _save(fig, fmt, title, drawing_description(row, conn, act if active is not None else None))
+    return fig
 
 
 def _swaps_on(row: Mapping[str, Any], active: set[int] | None) -> tuple[dict[tuple[int, int], int], int]:

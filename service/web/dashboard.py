@@ -20,6 +20,8 @@ HTTP-only cookie that the API also accepts, and the token is removed from the ad
 
 from __future__ import annotations
 
+import base64
+import binascii
 import datetime as dt
 import io
 import json
@@ -45,7 +47,13 @@ __all__ = ["router", "COOKIE", "PAGE_SIZE"]
 COOKIE = "toposcout_token"
 PAGE_SIZE = 20
 _HERE = Path(__file__).resolve().parent
-_STATIC = {"dashboard.js": "text/javascript; charset=utf-8", "dashboard.css": "text/css; charset=utf-8"}
+_STATIC = {"dashboard.js": "text/javascript; charset=utf-8", "dashboard.css": "text/css; charset=utf-8",
+           "favicon.svg": "image/svg+xml",
+           # Swagger UI for /docs, shipped in the package (see static/swagger-ui.README.txt)
+           "swagger-ui-bundle.js": "text/javascript; charset=utf-8", "swagger-ui.css": "text/css; charset=utf-8",
+           "swagger-ui.LICENSE": "text/plain; charset=utf-8", "swagger-ui.NOTICE": "text/plain; charset=utf-8",
+           "swagger-ui-bundle.js.LICENSE.txt": "text/plain; charset=utf-8",
+           "swagger-ui.README.txt": "text/plain; charset=utf-8"}
 _CSP = ("default-src 'self'; img-src 'self' data:; style-src 'self'; script-src 'self'; connect-src 'self'; "
         "font-src 'self'; form-action 'self'; frame-ancestors 'none'; base-uri 'self'")
 _FINAL = ("done", "failed", "cancelled")
@@ -129,8 +137,10 @@ def _page(request: Request, template: str, code: int = 200, **ctx: Any) -> HTMLR
 def _problem(request: Request, resp: httpx.Response) -> Response:
     """The page for an API error: sign-in on 401, else the message with the API's status."""
     msg, field = _detail(resp)
-    if resp.status_code == 401:
-        return _page(request, "signin.html", 401, message=msg, next=str(request.url.path))
+    if resp.status_code == 401:  # an error box only when a token was tried; a visitor is not signed in
+        tried = _token_of(request) is not None
+        return _page(request, "signin.html", 401, message=f"the token was not accepted: {msg}" if tried else None,
+                     next=str(request.url.path), signed_in=False)
     return _page(request, "error.html", resp.status_code, status=resp.status_code, message=msg, field=field)
 
 
@@ -200,17 +210,22 @@ async def study_list(request: Request):
         return redirect
     page = _positive_int(request.query_params.get("page"), 1)
     status = request.query_params.get("status") or None
+    model = (request.query_params.get("model") or "").strip() or None
+    label = (request.query_params.get("label") or "").strip() or None
     params: dict[str, Any] = {"limit": PAGE_SIZE, "offset": (page - 1) * PAGE_SIZE}
-    if status:
-        params["status"] = status
+    for key, value in (("status", status), ("model", model), ("label", label)):
+        if value:
+            params[key] = value
     resp = await _api(request, "GET", "/v1/studies", params=params)
     if resp.status_code != 200:
         return _problem(request, resp)
     data = resp.json()
     total = int(data.get("total", 0))
     pages = max(1, math.ceil(total / PAGE_SIZE))
+    filters = urlencode({k: v for k, v in (("status", status), ("model", model), ("label", label)) if v})
     return _page(request, "studies.html", items=data.get("items", []), total=total, page=page, pages=pages,
-                 status=status, api_url="/v1/studies?" + urlencode(params),
+                 status=status, model=model or "", label=label or "", filters=filters,
+                 api_url="/v1/studies?" + urlencode(params),
                  statuses=("queued", "running", "done", "failed", "cancelled"))
 
 
@@ -220,6 +235,47 @@ def _positive_int(raw: str | None, default: int) -> int:
     except (TypeError, ValueError):
         return default
     return v if v >= 1 else default
+
+
+#: what the compare view puts side by side, per study
+_COMPARE_FIELDS = (("label", "label"), ("model_name", "model"), ("connectivities", "connectivities"),
+                   ("profiles", "profiles"), ("noise_scales", "noise scales"), ("status", "status"),
+                   ("created_at", "submitted"), ("best_connectivity", "best connectivity"))
+
+
+@router.get("/compare", response_class=HTMLResponse)
+async def compare_studies(request: Request):
+    """Two or more studies side by side: the same columns, the values that differ highlighted."""
+    ids = [i for v in request.query_params.getlist("ids") for i in v.replace(",", " ").split()]
+    if len(ids) < 2:
+        return _page(request, "error.html", 422, status=422, field="ids",
+                     message="choose two or more studies to compare (tick them in the study list)")
+    studies = []
+    for sid in ids[:8]:
+        study, problem = await _study(request, sid)
+        if problem is not None:
+            return problem
+        studies.append(study)
+    fields = []
+    for key, title in _COMPARE_FIELDS:
+        values = [s.get(key) for s in studies]
+        fields.append((title, values, len({json.dumps(v, sort_keys=True, default=str) for v in values}) > 1))
+    # per connectivity: the key figures of each study's row nearest noise scale 1
+    names: list[str] = []
+    per = []
+    for s in studies:
+        best = {str(r["connectivity"]): r for r in charts.per_connectivity(charts.usable_rows(s.get("rows") or []))}
+        per.append(best)
+        names += [n for n in best if n not in names]
+    figures = []
+    for name in names:
+        for key, title in (("two_qubit_gates", "2q gates"), ("depth", "depth"), ("state_fidelity", "state fidelity"),
+                           ("hellinger_fidelity", "Hellinger fidelity")):
+            values = [p.get(name, {}).get(key) for p in per]
+            if all(v is None for v in values):
+                continue
+            figures.append((f"{name}: {title}", values, len(set(values)) > 1))
+    return _page(request, "compare.html", studies=studies, fields=fields, figures=figures)
 
 
 # --- a study -----------------------------------------------------------------------------
@@ -435,8 +491,11 @@ def _form_choices() -> dict:
         profiles = profile_catalogue()
     except ImportError:  # pragma: no cover - profiles ship with the package
         DEFAULT_PROFILE, profiles = None, {}
+    from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
+
     cat = connectivity_catalogue()
-    return dict(families=[(f, cat[f]["description"]) for f in BUILTIN_FAMILIES], gate_sets=GATE_SETS,
+    return dict(limits=LIMITS, default_fidelity_target=DEFAULT_FIDELITY_TARGET,
+                families=[(f, cat[f]["description"]) for f in BUILTIN_FAMILIES], gate_sets=GATE_SETS,
                 profiles=profiles, default_profile=DEFAULT_PROFILE,
                 strategies=("auto", "generic", "structured"))
 
@@ -451,7 +510,60 @@ async def submit_form(request: Request):
     redirect = _with_token_cookie(request)
     if redirect:
         return redirect
-    return _page(request, "submit.html", values=_FORM_DEFAULTS, error=None, field=None, **_form_choices())
+    return _page(request, "submit.html", values=_FORM_DEFAULTS, errors={}, kept=None, **_form_choices())
+
+
+def _form_field(api_field: str | None) -> str:
+    """The submit form's field for an API error field (``noise_scales[1]`` → ``noise_scales``)."""
+    f = api_field or ""
+    head = f.split(".", 1)[0].split("[", 1)[0]
+    if head in ("file", "model", "body") or f.startswith("line"):
+        return "file"
+    if head in ("connectivities", "connectivity"):
+        return "connectivities"
+    if head in ("noise_scales", "noise_scale"):
+        return "noise_scales"
+    if head in ("seeds", "layers", "fidelity_target", "profile", "gate_set", "strategy", "compile_only", "device",
+                "fit", "families"):
+        return head
+    return "form"
+
+
+def _check_form(values: dict, device_chosen: bool = False) -> dict[str, str]:
+    """Every problem of the filled fields at once, by field, with the limits of compiler.options."""
+    from toposcout.compiler.options import LIMITS
+
+    errors: dict[str, str] = {}
+    for key in ("seeds", "layers"):
+        v = values[key].strip()
+        if not v:
+            continue
+        try:
+            LIMITS[key].check(int(v))
+        except ValueError:
+            errors[key] = f"{key}: {v[:40]!r} is not a whole number; give {LIMITS[key].describe()}"
+        except ToposcoutError as exc:
+            errors[key] = str(exc)
+    v = values["fidelity_target"].strip()
+    if v:
+        try:
+            LIMITS["fidelity_target"].check(float(v))
+        except ValueError:
+            errors["fidelity_target"] = f"fidelity_target: {v[:40]!r} is not a number"
+        except ToposcoutError as exc:
+            errors["fidelity_target"] = str(exc)
+    bad = []
+    for x in values["noise_scales"].replace(",", " ").split():
+        try:
+            LIMITS["noise_scale"].check(float(x))
+        except (ValueError, ToposcoutError):
+            bad.append(x[:20])
+    if bad:
+        errors["noise_scales"] = (f"noise scales: {', '.join(repr(b) for b in bad)} not "
+                                  f"{LIMITS['noise_scale'].describe()}")
+    if not device_chosen and not values["connectivities"] and not values["extra_connectivities"].strip():
+        errors["connectivities"] = "choose at least one connectivity"
+    return errors
 
 
 @router.post("/submit")
@@ -473,14 +585,36 @@ async def submit(request: Request):
         "fit": bool(form.get("fit")),
     }
 
-    def again(message: str, field: str | None, status: int = 422) -> Response:
-        return _page(request, "submit.html", status, values=values, error=message, field=field, **_form_choices())
+    # a refused form keeps the chosen file: its content comes back in a hidden field (a browser cannot
+    # refill a file input), used unless another file is chosen
+    kept: dict[str, str] | None = None
+    errors: dict[str, str] = {}
+    content, filename, ctype = b"", "", "application/octet-stream"
+    if upload is not None and hasattr(upload, "read") and getattr(upload, "filename", ""):
+        content, filename = await upload.read(), upload.filename
+        ctype = upload.content_type or ctype
+        if not content:
+            errors["file"] = f"the model file {filename!r} is empty"
+    elif form.get("kept_file_b64"):
+        try:
+            content = base64.b64decode(str(form.get("kept_file_b64")), validate=True)
+        except (binascii.Error, ValueError):
+            content = b""
+        filename = str(form.get("kept_file_name") or "model")
+        if not content:
+            errors["file"] = "choose the model file again"
+    else:
+        errors["file"] = "choose a model file (our JSON format, UAI or networkx node-link JSON)"
+    if content:
+        kept = {"name": filename, "b64": base64.b64encode(content).decode("ascii")}
 
-    if upload is None or not hasattr(upload, "read") or not getattr(upload, "filename", ""):
-        return again("choose a model file (our JSON format, UAI or networkx node-link JSON)", "file")
-    content = await upload.read()
-    if not content:
-        return again(f"the model file {upload.filename!r} is empty", "file")
+    def again(found: dict[str, str], status: int = 422) -> Response:
+        return _page(request, "submit.html", status, values=values, errors=found, kept=kept, **_form_choices())
+
+    device_chosen = bool(getattr(form.get("device_file"), "filename", ""))
+    errors.update(_check_form(values, device_chosen))
+    if errors:
+        return again(errors)
     conns = values["connectivities"] + [c for c in values["extra_connectivities"].replace(",", " ").split() if c]
     data: dict[str, Any] = {"connectivities": conns,
                             "noise_scales": values["noise_scales"].replace(",", " ").split()}
@@ -492,7 +626,7 @@ async def submit(request: Request):
         try:
             data["device"] = (await device.read()).decode("utf-8")
         except UnicodeDecodeError:
-            return again(f"the device file {device.filename!r} is not UTF-8 text", "device")
+            return again({"device": f"the device file {device.filename!r} is not UTF-8 text"})
         data.pop("connectivities", None)  # a device fixes the connectivity and the figures
         data.pop("profile", None)
     data["compile_only"] = "true" if values["compile_only"] else "false"
@@ -501,14 +635,13 @@ async def submit(request: Request):
     if values["fit"]:
         data["fit"] = "kl"
     data = {k: v for k, v in data.items() if v != []}
-    resp = await _api(request, "POST", "/v1/studies", data=data,
-                      files={"file": (upload.filename, content, upload.content_type or "application/octet-stream")})
+    resp = await _api(request, "POST", "/v1/studies", data=data, files={"file": (filename, content, ctype)})
     if resp.status_code in (200, 201, 202):
         return RedirectResponse(f"/studies/{resp.json()['id']}", status_code=303)
     if resp.status_code == 401:
         return _problem(request, resp)
     message, field = _detail(resp)
-    return again(message, field, resp.status_code if 400 <= resp.status_code < 500 else 422)
+    return again({_form_field(field): message}, resp.status_code if 400 <= resp.status_code < 500 else 422)
 
 
 def _json_attr(value: Any) -> str:

@@ -44,7 +44,10 @@ def openapi_json(request: Request, owner: Owner):
 
 @router.get("/docs", include_in_schema=False)
 def docs(owner: Owner):
-    return get_swagger_ui_html(openapi_url="/openapi.json", title="toposcout API")
+    # the assets come from the package (service/web/static), not a content network: /docs works offline
+    return get_swagger_ui_html(openapi_url="/openapi.json", title="toposcout API",
+                               swagger_js_url="/static/swagger-ui-bundle.js", swagger_css_url="/static/swagger-ui.css",
+                               swagger_favicon_url="/static/favicon.svg")
 
 
 @router.get("/healthz", response_model=S.Health, summary="Liveness (no token needed)")

@@ -116,8 +116,11 @@ async def get_study(study_id: StudyId, owner: Owner, store: StoreDep, finished: 
 def list_studies(owner: Owner, store: StoreDep, status: Annotated[S.StudyStatus | None, Query()] = None,
                  owner_filter: Annotated[str | None, Query(alias="owner", min_length=1, max_length=64)] = None,
                  limit: Annotated[int, Query(ge=1, le=100)] = 20,
-                 offset: Annotated[int, Query(ge=0, le=10**9)] = 0):
-    items, total = store.list_studies(status=status, owner=owner_filter, limit=limit, offset=offset)
+                 offset: Annotated[int, Query(ge=0, le=10**9)] = 0,
+                 model: Annotated[str | None, Query(min_length=1, max_length=200)] = None,
+                 label: Annotated[str | None, Query(min_length=1, max_length=80)] = None):
+    items, total = store.list_studies(status=status, owner=owner_filter, limit=limit, offset=offset, model=model,
+                                      label=label)
     return JSONResponse({"items": items, "total": total, "limit": limit, "offset": offset})
 
 

@@ -26,9 +26,18 @@
   }
 
   // --- the study list ---------------------------------------------------------------
-  function studyRow(s) {
+  function studyRow(s, ticked) {
     var tr = el("tr", { "data-id": s.id });
+    var pick = el("td");
+    var box = el("input", { type: "checkbox", name: "ids", value: s.id, id: "pick-" + s.id,
+      "aria-label": "compare " + (s.label || s.model_name) });
+    box.checked = !!ticked;
+    pick.appendChild(box); tr.appendChild(pick);
+    tr.appendChild(el("td", {}, s.label || ""));
     var name = el("td"); name.appendChild(el("a", { href: "/studies/" + s.id }, s.model_name)); tr.appendChild(name);
+    tr.appendChild(el("td", {}, (s.connectivities || []).join(", ")));
+    tr.appendChild(el("td", {}, (s.profiles || []).join(", ") || "\u2013"));
+    tr.appendChild(el("td", {}, (s.noise_scales || []).join(", ")));
     var st = el("td"); st.appendChild(el("span", { "class": "status status-" + s.status }, s.status)); tr.appendChild(st);
     var pr = el("td");
     pr.appendChild(el("progress", { max: String(s.progress.total || 1), value: String(s.progress.done),
@@ -51,16 +60,19 @@
         var body = table.tBodies[0];
         if (data.items.length) {
           var known = {};  // best connectivity shown by the server-rendered page, if the list lacks it
+          var ticked = {};  // studies ticked for comparison stay ticked
           Array.prototype.forEach.call(body.rows, function (tr) {
             var id = tr.getAttribute("data-id");
-            if (id && tr.cells.length > 5) { known[id] = tr.cells[5].textContent; }
+            if (id && tr.cells.length > 10) { known[id] = tr.cells[10].textContent; }
+            var box = tr.querySelector("input[type=checkbox]");
+            if (id && box && box.checked) { ticked[id] = true; }
           });
           var rows = document.createDocumentFragment();
           data.items.forEach(function (s) {
             if (s.best_connectivity === undefined && known[s.id] && known[s.id] !== "\u2013") {
               s.best_connectivity = known[s.id];
             }
-            rows.appendChild(studyRow(s));
+            rows.appendChild(studyRow(s, ticked[s.id]));
           });
           body.replaceChildren(rows);
         }
