@@ -37,72 +37,7 @@ def _parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     c = sub.add_parser("compare", help="compile (and simulate) a model on several connectivities")
-    c.add_argument("model", help="model file: our JSON format, UAI (.uai) or networkx node-link JSON")
-    c.add_argument("--connectivity", "-c", action="append", metavar="NAME[:SIZE]",
-                   help=f"repeatable; one of {', '.join(BUILTIN_FAMILIES)}, or custom:EDGEFILE (named by its stem) or "
-                        f"custom:NAME=EDGEFILE; "
-                        f"default: all built-in families")
-    c.add_argument("--gate-set", default="cx", choices=GATE_SETS, help="native gate set (default cx)")
-    c.add_argument("--strategy", default=None, choices=("generic", "structured", "auto"),
-                   help="compilation strategy (default auto: the better of generic and structured; with --device "
-                        "one row per generic and structured)")
-    c.add_argument("--seeds", type=int, default=5,
-                   help=f"transpiler seeds tried by generic, {LIMITS['seeds'].describe()} (default 5)")
-    c.add_argument("--family", action="append", choices=("clique", "pairwise"),
-                   help="circuit family; repeat for rows of each (family, connectivity) (default clique)")
-    c.add_argument("--layers", type=int, default=1,
-                   help=f"repetitions of block + rotations, {LIMITS['layers'].describe()} (default 1)")
-    c.add_argument("--seed", type=int, default=0, help="seed of the random angles (default 0)")
-    c.add_argument("--max-order", type=int, help="keep only terms of at most this order")
-    c.add_argument("--profile", action="append", metavar="NAME|FILE",
-                   help="device profile name or TOML file (default: the superconducting-like class); repeat to "
-                        "compare device classes in one study")
-    c.add_argument("--noise-scale", type=float, action="append", metavar="X",
-                   help="multiply every error rate by X; repeat for a sweep (default 1)")
-    c.add_argument("--fidelity-target", type=float, default=None,
-                   help="find the largest 2q error reaching this state fidelity, "
-                        f"{LIMITS['fidelity_target'].describe()} (default {DEFAULT_FIDELITY_TARGET} with a sweep "
-                        "of two or more noise scales, else none)")
-    c.add_argument("--requirement-tolerance", type=float, metavar="FRACTION",
-                   help="the requirement's bisection stops when its bracket (upper - lower) / upper is below this "
-                        f"(default {DEFAULT_REQUIREMENT_TOLERANCE}); rows report the bracket")
-    c.add_argument("--compile-only", action="store_true", help="skip the noise simulation")
-    c.add_argument("--device", metavar="FILE",
-                   help="a device file (TOML: chip, coordinates, per-qubit and per-coupler figures) or an example "
-                        "device name; fixes the connectivity and the profile")
-    c.add_argument("--placement", choices=("errors", "count"), default=None,
-                   help="placement objective: errors (highest estimated success probability under per-element "
-                        "figures; the default when there are any) or count (fewest two-qubit gates)")
-    c.add_argument("--regions", type=int, metavar="K",
-                   help="compile K placements spread over the chip, rank them by ESP, simulate the best 3")
-    c.add_argument("--jitter", type=float, metavar="SIGMA",
-                   help="redraw every error rate and coherence time log-normally (sigma) and report the ESP spread")
-    c.add_argument("--jitter-samples", type=int, default=100, metavar="N", help="redraws for --jitter (default 100)")
-    c.add_argument("--plot", metavar="FILE.svg",
-                   help="with --device: draw the chip shaded by error, with the best row's placement on top")
-    c.add_argument("--method", default="auto", metavar="METHOD",
-                   help="how noise figures are computed: auto (default: density-matrix within the memory budget, "
-                        "else trajectories within the time budget, else clifford), density-matrix, trajectories, "
-                        "clifford")
-    c.add_argument("--time-budget", type=float, metavar="SECONDS",
-                   help="wall time the noise figures of one row may take (default 300)")
-    c.add_argument("--trajectories", type=int, metavar="N", help="trajectories method: run exactly N trajectories")
-    c.add_argument("--precision", type=float, metavar="SE",
-                   help="trajectories method: stop when the state fidelity's standard error is below SE "
-                        "(default 0.01)")
-    c.add_argument("--memory-budget", type=float, metavar="GIB", help="refuse simulations needing more (GiB)")
-    c.add_argument("--max-variables", type=int, default=128, help="cap on the model's variables (default 128)")
-    c.add_argument("--json", action="store_true", help="print rows as JSON instead of a table")
-    c.add_argument("--csv", metavar="FILE", help="also write the rows as CSV")
-    c.add_argument("--qasm-dir", metavar="DIR", help="write one .qasm (OpenQASM 3) and one .qpy per connectivity")
-    c.add_argument("--workers", type=int, default=None, help="local worker processes (default: cores, at most 2)")
-    c.add_argument("--fit", action="store_true",
-                   help="fit each family's angles to the target first (options below; cached by model, family, "
-                        "layers, loss, data and seed), then run the study with the fitted angles")
-    _fit_arguments(c, compare=True)
-    c.add_argument("--server", metavar="URL", help="run the study on a toposcout server instead")
-    c.add_argument("--token", help="bearer token for --server (default: $TOPOSCOUT_TOKEN)")
-    c.add_argument("--label", help="with --server: a label for the study (the study list shows and filters it)")
+    _compare_arguments(c)
 
     f = sub.add_parser("fit", help="fit a model's angles to its target (KL) or to samples (MMD)")
     f.add_argument("model", help="model file: our JSON format, UAI (.uai) or networkx node-link JSON")
@@ -134,6 +69,88 @@ def _parser() -> argparse.ArgumentParser:
                                    "--nworkers compute processes (TOPOSCOUT_DASK_ADDRESS set: on that Dask "
                                    "cluster). With a Dask scheduler address (tcp://host:8786): Dask workers "
                                    "joining it.")
+    _worker_arguments(w)
+    return p
+
+def _compare_arguments(c: argparse.ArgumentParser) -> None:
+    """compare: the model, targets and study options; then device, method and output options."""
+    c.add_argument("model", help="model file: our JSON format, UAI (.uai) or networkx node-link JSON")
+    c.add_argument("--connectivity", "-c", action="append", metavar="NAME[:SIZE]",
+                   help=f"repeatable; one of {', '.join(BUILTIN_FAMILIES)}, or custom:EDGEFILE (named by its stem) or "
+                        f"custom:NAME=EDGEFILE; "
+                        f"default: all built-in families")
+    c.add_argument("--gate-set", default="cx", choices=GATE_SETS, help="native gate set (default cx)")
+    c.add_argument("--strategy", default=None, choices=("generic", "structured", "auto"),
+                   help="compilation strategy (default auto: the better of generic and structured; with --device "
+                        "one row per generic and structured)")
+    c.add_argument("--seeds", type=int, default=5,
+                   help=f"transpiler seeds tried by generic, {LIMITS['seeds'].describe()} (default 5)")
+    c.add_argument("--family", action="append", choices=("clique", "pairwise"),
+                   help="circuit family; repeat for rows of each (family, connectivity) (default clique)")
+    c.add_argument("--layers", type=int, default=1,
+                   help=f"repetitions of block + rotations, {LIMITS['layers'].describe()} (default 1)")
+    c.add_argument("--seed", type=int, default=0, help="seed of the random angles (default 0)")
+    c.add_argument("--max-order", type=int, help="keep only terms of at most this order")
+    c.add_argument("--profile", action="append", metavar="NAME|FILE",
+                   help="device profile name or TOML file (default: the superconducting-like class); repeat to "
+                        "compare device classes in one study")
+    c.add_argument("--noise-scale", type=float, action="append", metavar="X",
+                   help="multiply every error rate by X; repeat for a sweep (default 1)")
+    c.add_argument("--fidelity-target", type=float, default=None,
+                   help="find the largest 2q error reaching this state fidelity, "
+                        f"{LIMITS['fidelity_target'].describe()} (default {DEFAULT_FIDELITY_TARGET} with a sweep "
+                        "of two or more noise scales, else none)")
+    c.add_argument("--requirement-tolerance", type=float, metavar="FRACTION",
+                   help="the requirement's bisection stops when its bracket (upper - lower) / upper is below this "
+                        f"(default {DEFAULT_REQUIREMENT_TOLERANCE}); rows report the bracket")
+    c.add_argument("--compile-only", action="store_true", help="skip the noise simulation")
+    _compare_device_and_method_arguments(c)
+    _compare_output_arguments(c)
+
+def _compare_device_and_method_arguments(c: argparse.ArgumentParser) -> None:
+    """compare: a device, placement and regions; the simulation method and its budgets."""
+    c.add_argument("--device", metavar="FILE",
+                   help="a device file (TOML: chip, coordinates, per-qubit and per-coupler figures) or an example "
+                        "device name; fixes the connectivity and the profile")
+    c.add_argument("--placement", choices=("errors", "count"), default=None,
+                   help="placement objective: errors (highest estimated success probability under per-element "
+                        "figures; the default when there are any) or count (fewest two-qubit gates)")
+    c.add_argument("--regions", type=int, metavar="K",
+                   help="compile K placements spread over the chip, rank them by ESP, simulate the best 3")
+    c.add_argument("--jitter", type=float, metavar="SIGMA",
+                   help="redraw every error rate and coherence time log-normally (sigma) and report the ESP spread")
+    c.add_argument("--jitter-samples", type=int, default=100, metavar="N", help="redraws for --jitter (default 100)")
+    c.add_argument("--plot", metavar="FILE.svg",
+                   help="with --device: draw the chip shaded by error, with the best row's placement on top")
+    c.add_argument("--method", default="auto", metavar="METHOD",
+                   help="how noise figures are computed: auto (default: density-matrix within the memory budget, "
+                        "else trajectories within the time budget, else clifford), density-matrix, trajectories, "
+                        "clifford")
+    c.add_argument("--time-budget", type=float, metavar="SECONDS",
+                   help="wall time the noise figures of one row may take (default 300)")
+    c.add_argument("--trajectories", type=int, metavar="N", help="trajectories method: run exactly N trajectories")
+    c.add_argument("--precision", type=float, metavar="SE",
+                   help="trajectories method: stop when the state fidelity's standard error is below SE "
+                        "(default 0.01)")
+    c.add_argument("--memory-budget", type=float, metavar="GIB", help="refuse simulations needing more (GiB)")
+    c.add_argument("--max-variables", type=int, default=128, help="cap on the model's variables (default 128)")
+
+def _compare_output_arguments(c: argparse.ArgumentParser) -> None:
+    """compare: where rows go (table, JSON, CSV, circuits), workers, fitting, a server."""
+    c.add_argument("--json", action="store_true", help="print rows as JSON instead of a table")
+    c.add_argument("--csv", metavar="FILE", help="also write the rows as CSV")
+    c.add_argument("--qasm-dir", metavar="DIR", help="write one .qasm (OpenQASM 3) and one .qpy per connectivity")
+    c.add_argument("--workers", type=int, default=None, help="local worker processes (default: cores, at most 2)")
+    c.add_argument("--fit", action="store_true",
+                   help="fit each family's angles to the target first (options below; cached by model, family, "
+                        "layers, loss, data and seed), then run the study with the fitted angles")
+    _fit_arguments(c, compare=True)
+    c.add_argument("--server", metavar="URL", help="run the study on a toposcout server instead")
+    c.add_argument("--token", help="bearer token for --server (default: $TOPOSCOUT_TOKEN)")
+    c.add_argument("--label", help="with --server: a label for the study (the study list shows and filters it)")
+
+def _worker_arguments(w: argparse.ArgumentParser) -> None:
+    """worker: a queue worker on a database, or Dask workers joining a scheduler."""
     w.add_argument("scheduler", metavar="scheduler",
                    help="a database URL (queue worker) or a Dask scheduler address tcp://host:8786 (Dask workers)")
     w.add_argument("--nworkers", type=int, default=None,
@@ -145,7 +162,6 @@ def _parser() -> argparse.ArgumentParser:
                    help="simulator (OpenMP) threads per process (default: cores / nworkers)")
     w.add_argument("--host", default=None, help="address to listen on (default: the scheduler's route)")
     w.add_argument("--name", default=None, help="worker name shown by the scheduler")
-    return p
 
 
 def _fit_arguments(p: argparse.ArgumentParser, *, compare: bool) -> None:
@@ -173,7 +189,7 @@ _FIT_FLAGS = {"loss": "--loss", "data": "--data", "kernel_bandwidths": "--kernel
 
 def _fit_settings(args, model):
     """The fit options of ``args`` checked (the option named in the error), samples read."""
-    from toposcout.service.fitting import FitSettings, read_samples
+    from toposcout.service.fitting import FitSettings, read_samples  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     try:
         samples = read_samples(args.data, model) if args.data else None
@@ -201,7 +217,7 @@ def _fit_progress(err, total: int, label: str = "fit"):
     """A tqdm bar on a terminal showing the loss; returns (callback, close)."""
     if not (hasattr(err, "isatty") and err.isatty()):
         return None, lambda: None
-    from tqdm import tqdm
+    from tqdm import tqdm  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     bar = tqdm(total=total, desc=label, unit="it", leave=False, file=err)
 
@@ -213,9 +229,9 @@ def _fit_progress(err, total: int, label: str = "fit"):
 
 
 def _fit(args, out, err) -> int:
-    from toposcout.compiler.fit import fit_model, with_parameters
-    from toposcout.compiler.model import load_model
-    from toposcout.service.fitting import format_report, loss_curve_image
+    from toposcout.compiler.fit import fit_model, with_parameters  # lazily: each command loads what it needs; keeps `toposcout --help` fast
+    from toposcout.compiler.model import load_model  # lazily: each command loads what it needs; keeps `toposcout --help` fast
+    from toposcout.service.fitting import format_report, loss_curve_image  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     src = Path(args.model)
     model = load_model(src)
@@ -285,7 +301,7 @@ def _bench_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _bench(args, out, err) -> int:
-    from toposcout.compiler.bench import STRATEGY_ORDER, format_table, run_bench
+    from toposcout.compiler.bench import STRATEGY_ORDER, format_table, run_bench  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     if args.seeds < 1:
         raise ToposcoutError("--seeds must be at least 1", field="seeds")
@@ -305,8 +321,17 @@ def _bench(args, out, err) -> int:
 
 
 def _compare(args, out, err) -> int:
-    from toposcout.compiler.model import Limits, load_model
-    from toposcout.compiler.study import make_tasks
+    model = _compare_model(args)
+    device = _device_options(args)
+    options = _compare_options(args)
+    tasks = _compare_tasks(args, model, options, device, out, err)
+    rows = _compare_run(args, model, tasks, err)
+    return _compare_report(args, model, device, tasks, rows, out)
+
+
+def _compare_model(args):
+    """The model of ``compare``, with ``--max-order`` applied."""
+    from toposcout.compiler.model import Limits, load_model  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     limits = Limits(max_variables=args.max_variables)
     model = load_model(args.model, limits=limits)
@@ -316,13 +341,17 @@ def _compare(args, out, err) -> int:
         d = model.to_dict()
         d["max_order"] = args.max_order
         model = model.from_dict(d, limits=limits)
-    device = _device_options(args)
+    return model
+
+
+def _compare_options(args) -> dict[str, Any]:
+    """Task options from the command line, each checked before any work (errors name the option)."""
     options: dict[str, Any] = dict(gate_set=args.gate_set, strategy=args.strategy or "auto", seeds=args.seeds,
                                    layers=args.layers, seed=args.seed,
                                    compile_only=args.compile_only, profile=args.profile, method=args.method,
                                    time_budget_seconds=args.time_budget, trajectories=args.trajectories,
                                    precision=args.precision)
-    from toposcout.compiler.methods import check_method_options
+    from toposcout.compiler.methods import check_method_options  # lazily: keeps --help fast
 
     try:
         check_method_options(args.method, precision=args.precision, trajectories=args.trajectories,
@@ -333,18 +362,25 @@ def _compare(args, out, err) -> int:
         raise ToposcoutError(f"{flag}: {exc}", field=flag) from None
     if args.memory_budget is not None:
         options["memory_budget_bytes"] = int(args.memory_budget * 2**30)
-    scales = args.noise_scale or [1.0]
     if args.fidelity_target is not None:  # else make_tasks applies the one default (compiler.options)
         options["fidelity_target"] = args.fidelity_target
     if args.requirement_tolerance is not None:
         options["requirement_tolerance"] = args.requirement_tolerance
     if args.profile:
-        from toposcout.compiler.profiles import load_profile
+        from toposcout.compiler.profiles import load_profile  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
         profiles = [load_profile(p).to_dict() if Path(p).suffix == ".toml" else p for p in args.profile]
         options["profile"] = profiles[0] if len(profiles) == 1 else profiles
     if args.qasm_dir:
         options["keep_circuit"] = True  # the rows bring their compiled circuits for the files
+    return options
+
+
+def _compare_tasks(args, model, options: dict[str, Any], device, out, err) -> list[dict]:
+    """The study's tasks (per strategy, family, connectivity, profile and scale; fitted first with --fit)."""
+    from toposcout.compiler.study import make_tasks  # lazily: keeps --help fast
+
+    scales = args.noise_scale or [1.0]
     try:
         if device is not None:
             options.update(device=device.to_dict(), profile=None)
@@ -369,7 +405,7 @@ def _compare(args, out, err) -> int:
                        "samples": None if settings.samples is None else [int(x) for x in settings.samples]}
             tasks = [t for fam in families for t in build(family=fam, fit_request=request)]
         elif args.fit:
-            from toposcout.service.fitting import FitCache, default_cache_dir, fitted_tasks, format_report
+            from toposcout.service.fitting import FitCache, default_cache_dir, fitted_tasks, format_report  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
             settings = _fit_settings(args, model)
             cache = FitCache(None if args.no_fit_cache else (args.fit_cache or default_cache_dir()))
@@ -401,9 +437,14 @@ def _compare(args, out, err) -> int:
         else:
             text = f"{flag}: {text}"
         raise type(exc)(text, field=flag) from None
+    return tasks
+
+
+def _compare_run(args, model, tasks: list[dict], err) -> list[dict]:
+    """Rows of the tasks: on a server with --server, else in local worker processes."""
     show_progress = not args.json and hasattr(err, "isatty") and err.isatty()
     if args.server:
-        from toposcout.service.client import Client
+        from toposcout.service.client import Client  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
         client = Client(args.server, token=args.token or os.environ.get("TOPOSCOUT_TOKEN"))
         def announce(h) -> None:  # on stderr, so --json output stays one document
@@ -412,9 +453,14 @@ def _compare(args, out, err) -> int:
 
         rows = client.run_tasks(model, tasks, progress=show_progress, on_submit=announce, label=args.label)
     else:
-        from toposcout.service.execution.runner import run_tasks
+        from toposcout.service.execution.runner import run_tasks  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
         rows = run_tasks(tasks, workers=args.workers, progress=show_progress)
+    return rows
+
+
+def _compare_report(args, model, device, tasks: list[dict], rows: list[dict], out) -> int:
+    """Circuits, CSV, drawing, then the table or JSON; the exit code."""
     if args.qasm_dir:
         _write_circuits(tasks, rows, Path(args.qasm_dir))
         rows = [{k: v for k, v in r.items() if k != "circuit_qpy_b64"} for r in rows]
@@ -423,7 +469,7 @@ def _compare(args, out, err) -> int:
         with open(args.csv, "w", newline="", encoding="utf-8") as fh:
             write_csv(rows, fh)
     if args.plot and device is not None:
-        from toposcout.service.web.charts import device_svg
+        from toposcout.service.web.charts import device_svg  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
         best = next((r for r in rows if not r.get("error")), None)
         Path(args.plot).write_text(device_svg(device, best), encoding="utf-8")
@@ -457,7 +503,7 @@ _FLAGS = {"seeds": "--seeds", "layers": "--layers", "seed": "--seed", "fidelity_
 def _device_options(args):
     """The device of ``--device`` (None without), after the placement options' checks; every
     error names its option."""
-    from toposcout.compiler.regions import check_placement_options
+    from toposcout.compiler.regions import check_placement_options  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     try:
         check_placement_options({"placement": args.placement, "regions": args.regions, "jitter": args.jitter,
@@ -477,7 +523,7 @@ def _device_options(args):
                              "--profile", field="--profile")
     if args.plot and not args.plot.endswith(".svg"):
         raise ToposcoutError(f"--plot: {args.plot!r} must end in .svg", field="--plot")
-    from toposcout.compiler.devices import load_device
+    from toposcout.compiler.devices import load_device  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     try:
         return load_device(args.device)
@@ -491,11 +537,11 @@ def _write_circuits(tasks: list[dict], rows: list[dict], folder: Path) -> None:
     ``rows[i]`` is the row of ``tasks[i]``. A local run keeps the circuit it compiled in the row
     (``keep_circuit``); rows from a server carry none, so those are compiled again here, with
     the same task and seed, hence the same circuit."""
-    import base64
+    import base64  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     from qiskit import qasm3, qpy  # circuit files only when --qasm-dir asks for them
 
-    from toposcout.compiler.study import run_task
+    from toposcout.compiler.study import run_task  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     folder.mkdir(parents=True, exist_ok=True)
     done = set()
@@ -515,20 +561,20 @@ def _write_circuits(tasks: list[dict], rows: list[dict], folder: Path) -> None:
 
 
 def _worker(args) -> int:
-    from toposcout.service.execution.queue import is_database_url, run_queue_worker
+    from toposcout.service.execution.queue import is_database_url, run_queue_worker  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     if args.nworkers is not None and args.nworkers < 1:
         raise ToposcoutError("--nworkers must be at least 1", field="nworkers")
     if is_database_url(args.scheduler):
         return run_queue_worker(args.scheduler, slots=args.nworkers, parent_pid=args.parent_pid)
-    from toposcout.service.execution.dask import run_worker
+    from toposcout.service.execution.dask import run_worker  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     return run_worker(args.scheduler, nworkers=args.nworkers or 1, memory_limit=args.memory_limit,
                       threads=args.threads, host=args.host, name=args.name)
 
 
 def _targets(out) -> int:
-    from toposcout.compiler.targets import connectivity_catalogue, gate_set_catalogue
+    from toposcout.compiler.targets import connectivity_catalogue, gate_set_catalogue  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     out.write("Connectivities (FAMILY[:SIZE]):\n")
     for name, e in connectivity_catalogue().items():
@@ -537,13 +583,13 @@ def _targets(out) -> int:
     for name, e in gate_set_catalogue().items():
         out.write(f"  {name:<11} {e['description']}\n")
     try:
-        from toposcout.compiler.profiles import profile_catalogue
+        from toposcout.compiler.profiles import profile_catalogue  # lazily: each command loads what it needs; keeps `toposcout --help` fast
     except ImportError:
         return EXIT_OK
     out.write("\nDevice profiles (--profile NAME or a TOML file; typical values from memory, not a real device):\n")
     for name, desc in profile_catalogue().items():
         out.write(f"  {name:<20} {desc}\n")
-    from toposcout.compiler.devices import DEVICE_NAMES, load_device
+    from toposcout.compiler.devices import DEVICE_NAMES, load_device  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
     out.write("\nExample devices (--device NAME or a device file; invented chips, typical values from memory):\n")
     for name in DEVICE_NAMES:
@@ -574,7 +620,7 @@ def main(argv: Sequence[str] | None = None, *, out=None, err=None) -> int:
         if args.command == "bench":
             return _bench(args, out, err)
         if args.command == "serve":
-            from toposcout.service.api.server import serve
+            from toposcout.service.api.server import serve  # lazily: each command loads what it needs; keeps `toposcout --help` fast
 
             return serve(host=args.host, port=args.port, allow_remote=args.allow_remote,
                          api_workers=args.api_workers, err=err)

@@ -20,8 +20,10 @@ app in process (Starlette's TestClient is an httpx.Client) or against a real ser
 
 from __future__ import annotations
 
+import io
 import json
 import time
+from html import escape
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
@@ -71,7 +73,7 @@ def model_payload(model: Any) -> tuple[Any, str | None]:
         as node-link JSON); a ``toposcout.compiler.model.Model``; or the text of a UAI or JSON model.
     """
     try:
-        import networkx as nx
+        import networkx as nx  # networkx only for node-link graphs: a client that only talks to a server need not load it
     except ImportError:  # pragma: no cover - networkx is a dependency
         nx = None
     if nx is not None and isinstance(model, nx.Graph):
@@ -422,7 +424,7 @@ class StudyHandle:
         """
         bar = None
         if progress:
-            from tqdm.auto import tqdm
+            from tqdm.auto import tqdm  # a progress bar only when one is asked for
 
             bar = tqdm(total=self.progress[1] or None, unit="row", desc=f"study {self.id[:8]}", leave=False)
         started = time.monotonic()
@@ -465,7 +467,6 @@ class StudyHandle:
 
     def _repr_html_(self) -> str:
         """A notebook's view of the study: its summary as a small table."""
-        from html import escape
 
         cells = "".join(f"<tr><th style='text-align:left'>{escape(k.replace('_', ' '))}</th>"
                         f"<td style='text-align:left'>{escape(', '.join(map(str, v)) if isinstance(v, list) else str(v))}"
@@ -476,7 +477,7 @@ class StudyHandle:
 
     def charts(self) -> list[str]:
         """The chart kinds this study's rows can fill (the dashboard's charts)."""
-        from toposcout.service.web.charts import available_charts
+        from toposcout.service.web.charts import available_charts  # the charts load matplotlib: only when a chart is asked for
 
         return available_charts(self.row_dicts())
 
@@ -484,7 +485,7 @@ class StudyHandle:
         """A dashboard chart as a matplotlib Figure (``gates``, ``fidelity``, ``budget``, ``sweep``):
         the same drawing as the dashboard's, so a notebook needs no plotting code of its own.
         Raises ToposcoutError (field ``chart``) when the rows cannot fill it."""
-        from toposcout.service.web.charts import chart_figure
+        from toposcout.service.web.charts import chart_figure  # the charts load matplotlib: only when a chart is asked for
 
         if self.status not in _FINAL:
             self.refresh()
@@ -498,7 +499,7 @@ class StudyHandle:
 
     def rows(self) -> "pd.DataFrame":
         """The rows as a pandas DataFrame, one row per task, in task order."""
-        import pandas as pd
+        import pandas as pd  # pandas only for a DataFrame
 
         if self.status not in _FINAL or "rows" not in self._data:
             self.refresh()
@@ -519,9 +520,8 @@ class StudyHandle:
 
     def circuit(self, task_index: int) -> "QuantumCircuit":
         """The compiled circuit of a row, loaded with qiskit."""
-        import io
 
-        from qiskit import qpy
+        from qiskit import qpy  # qiskit only when a circuit is loaded
 
         return qpy.load(io.BytesIO(self.qpy(task_index)))[0]
 

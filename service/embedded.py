@@ -50,7 +50,7 @@ def compare_rows(model: Model | Mapping[str, Any] | str | Path,
         req = {"loss": "kl", "seed": options.get("seed", 0), **(dict(fit) if isinstance(fit, Mapping) else {})}
         if req.get("samples") is not None:
             req["samples"] = [int(x) for x in req["samples"]]
-        from toposcout.compiler.fit import check_fit_options
+        from toposcout.compiler.fit import check_fit_options  # scipy and the fit evaluator: only for requests that fit
 
         for fam in families or [options.get("family", "clique")]:
             check_fit_options(m, family=fam, layers=options.get("layers", 1), loss=req["loss"],

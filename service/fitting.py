@@ -7,6 +7,7 @@ turning one model plus several families into tasks whose models carry the fitted
 
 from __future__ import annotations
 
+import io
 import json
 import os
 from dataclasses import dataclass, field
@@ -133,12 +134,11 @@ def fitted_tasks(model: Model, connectivities: Sequence[Any] | None, families: S
 
 def loss_curve_image(report: Mapping[str, Any], fmt: str = "png") -> bytes:
     """The loss per iteration of every restart (log scale when every value is positive), as PNG or SVG."""
-    import io
 
-    import matplotlib
+    import matplotlib  # matplotlib only for a plot
 
     matplotlib.use("Agg")
-    from matplotlib.figure import Figure
+    from matplotlib.figure import Figure  # matplotlib only for a plot
 
     fig = Figure(figsize=(6.4, 4.0))
     ax = fig.add_subplot()

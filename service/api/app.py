@@ -26,6 +26,8 @@ takes no running work with it.
 from __future__ import annotations
 
 import collections
+import gc
+import importlib
 import logging
 import os
 import threading
@@ -113,12 +115,10 @@ def _freeze_startup_heap() -> None:
     loop with it, then walks only what requests allocated, not the few hundred thousand objects of
     qiskit, SQLAlchemy and friends (measured: a full collection under load went from ~0.6-0.9 s to
     ~10 ms; /healthz stops stalling while large requests are parsed)."""
-    import gc
-    import importlib
 
     import jsonschema  # model validation
 
-    from toposcout.compiler.model import model_schema
+    from toposcout.compiler.model import model_schema  # imported here to warm it before the first request
 
     importlib.import_module("networkx")  # node-link models, connectivities
 

@@ -16,13 +16,15 @@ import threading
 from dataclasses import dataclass
 from typing import Any, Mapping
 
-from toposcout.compiler.errors import CapacityError, ModelError, ProfileError, TargetError
+from toposcout.compiler.errors import CapacityError, ModelError, ProfileError, TargetError, ToposcoutError
+from toposcout.compiler.devices import parse_device_text
 from toposcout.compiler.model import Limits, Model, parse_model
 from toposcout.compiler.options import LIMITS
 from toposcout.compiler.study import make_tasks, task_key
-from toposcout.compiler.targets import CONNECTIVITY_FAMILIES, GATE_SETS, check_edge_list, heavy_hex_qubits
+from toposcout.compiler.targets import BUILTIN_FAMILIES, CONNECTIVITY_FAMILIES, GATE_SETS, check_edge_list, heavy_hex_qubits
 
 from toposcout.service.api.schemas import CONNECTIVITY_PATTERN, ConnectivitySpec, StudyRequest
+from toposcout.compiler.profiles import PROFILE_NAMES, load_profile
 
 __all__ = ["Prepared", "prepare", "physical_qubits_of", "safe_filename"]
 
@@ -115,7 +117,6 @@ def _profile(profile: str | dict | list | None) -> str | dict | list | None:
         if not 1 <= len(profile) <= 8:
             raise ProfileError("profile: give from 1 to 8 profiles", field="profile")
         return [_profile(p) for p in profile]
-    from toposcout.compiler.profiles import PROFILE_NAMES, load_profile
 
     if isinstance(profile, str):
         if profile not in PROFILE_NAMES:
@@ -139,8 +140,6 @@ def _device(req: StudyRequest, settings, num_variables: int):
     if req.profile is not None:
         raise ProfileError("profile: a device carries its own figures (and base profile); send either device or "
                            "profile", field="profile")
-    from toposcout.compiler.devices import parse_device_text
-    from toposcout.compiler.errors import ToposcoutError
 
     try:
         dev = parse_device_text(req.device, name="device")
@@ -182,7 +181,6 @@ def _study_size(n_tasks: int, model_bytes: int) -> None:
 def _check_study_size(req: StudyRequest, compile_only: bool | None) -> None:
     """The tasks x model-size cap estimated from the request as sent (the model's compact JSON,
     or its text), so an oversized study is refused before its model is parsed."""
-    from toposcout.compiler.targets import BUILTIN_FAMILIES
 
     only = req.compile_only if compile_only is None else compile_only
     n_tasks = (len(req.connectivities) if req.connectivities is not None else len(BUILTIN_FAMILIES)) * (
@@ -200,62 +198,12 @@ def prepare(req: StudyRequest, settings, **kwargs: Any) -> Prepared:
 
 def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compile_only: bool | None = None,
              max_targets: int | None = None, keep_circuit: bool = True) -> Prepared:
-    limits = Limits(max_variables=settings.max_variables)
-    if isinstance(req.model, str) and not req.model.strip():
-        raise ModelError("model: the model text is empty", field="model")
-    _check_study_size(req, compile_only)  # an estimate before the parse; exact after it
-    try:
-        model = parse_model(req.model, req.model_format, limits=limits, filename=filename)
-    except (ModelError, CapacityError) as exc:
-        f = exc.field
-        field = f"model.{f}" if f and f != "body" and not f.startswith("line") else "model"
-        raise type(exc)(f"model: {exc}", field=field) from None
-    if req.max_order is not None:
-        d = model.to_dict()
-        d["max_order"] = req.max_order
-        model = Model.from_dict(d, limits=limits)
-    order = model_order(model)
-    if order > settings.max_order:
-        raise CapacityError(f"max_order: the model has terms of order {order} (its largest clique) but this "
-                            f"server's cap is max_order={settings.max_order}; send max_order <= {settings.max_order}",
-                            field="max_order")
+    model = _request_model(req, settings, filename, compile_only)
     compile_only = req.compile_only if compile_only is None else compile_only
-    memory_budget = None
-    if not compile_only:
-        from toposcout.compiler.simulate import default_memory_budget_bytes, estimate_memory_bytes
-
-        cap = settings.max_active_qubits
-        n = model.num_variables
-        if n > cap and req.method == "density-matrix":
-            est = estimate_memory_bytes(n)
-            raise CapacityError(
-                f"model.variables: the noise study simulates at least {n} active qubits (one per variable) but this "
-                f"server's cap is max_active_qubits={cap}: a density matrix of {n} qubits needs about {_gib(est)} "
-                f"(16*4^{n} bytes plus overhead; {cap} qubits need {_gib(estimate_memory_bytes(cap))}). "
-                "Send method auto, trajectories or clifford, compile_only=true, or use a server with a larger cap",
-                field="method")
-        budget = settings.memory_budget_bytes or default_memory_budget_bytes()
-        memory_budget = min(budget, estimate_memory_bytes(cap))
+    memory_budget = None if compile_only else _memory_budget(req, settings, model)
     device = _device(req, settings, model.num_variables)
-    max_targets = max_targets or settings.max_connectivities
-    conns = req.connectivities
-    if conns is not None and len(conns) > max_targets:
-        raise CapacityError(f"connectivities: {len(conns)} targets is over this endpoint's cap of {max_targets}",
-                            field="connectivities")
-    specs = None if conns is None else [_connectivity(i, c, settings, model.num_variables) for i, c in enumerate(conns)]
-    if specs is None:
-        from toposcout.compiler.targets import BUILTIN_FAMILIES
-
-        specs = [{"family": f, "size": None, "edges": None} for f in BUILTIN_FAMILIES][:max_targets]
-    if req.gate_set not in GATE_SETS:
-        raise TargetError(f"gate_set: unknown gate set {req.gate_set[:40]!r}; choose one of {', '.join(GATE_SETS)}",
-                          field="gate_set")
-    scales = [1.0] if compile_only else list(req.noise_scales)
-    if len(scales) > settings.max_noise_scales:
-        raise CapacityError(f"noise_scales: {len(scales)} scales is over this server's cap of "
-                            f"{settings.max_noise_scales}", field="noise_scales")
-    for i, s in enumerate(scales):
-        LIMITS["noise_scale"].check(s, field=f"noise_scales[{i}]")
+    specs = _targets(req, settings, model, max_targets or settings.max_connectivities)
+    scales = _scales(req, settings, compile_only)
     # every task carries the model (its key hashes it, the store keeps it): bound tasks x model size
     _study_size(len(specs) * len(scales), len(json.dumps(model.to_dict(), separators=(",", ":"))))
     profile = None if compile_only else _profile(req.profile)
@@ -296,16 +244,85 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
     if req.families:
         normalised["families"] = families
     if fit_request is not None:
-        from toposcout.compiler.fit import data_hash
+        from toposcout.compiler.fit import data_hash  # scipy and the fit evaluator: only for requests that fit
 
         normalised["fit"] = {**{k: v for k, v in fit_request.items() if k != "samples"},
                              "data_hash": data_hash(fit_request["samples"]) if fit_request["samples"] else None}
     return Prepared(model=model, request=normalised, tasks=tasks, keys=keys)
 
 
+def _request_model(req: StudyRequest, settings, filename: str | None, compile_only: bool | None) -> Model:
+    """The request's model, parsed within the server's caps (fields named ``model.*``)."""
+    limits = Limits(max_variables=settings.max_variables)
+    if isinstance(req.model, str) and not req.model.strip():
+        raise ModelError("model: the model text is empty", field="model")
+    _check_study_size(req, compile_only)  # an estimate before the parse; exact after it
+    try:
+        model = parse_model(req.model, req.model_format, limits=limits, filename=filename)
+    except (ModelError, CapacityError) as exc:
+        f = exc.field
+        field = f"model.{f}" if f and f != "body" and not f.startswith("line") else "model"
+        raise type(exc)(f"model: {exc}", field=field) from None
+    if req.max_order is not None:
+        d = model.to_dict()
+        d["max_order"] = req.max_order
+        model = Model.from_dict(d, limits=limits)
+    order = model_order(model)
+    if order > settings.max_order:
+        raise CapacityError(f"max_order: the model has terms of order {order} (its largest clique) but this "
+                            f"server's cap is max_order={settings.max_order}; send max_order <= {settings.max_order}",
+                            field="max_order")
+    return model
+
+
+def _memory_budget(req: StudyRequest, settings, model: Model) -> int:
+    """The simulations' memory budget on this server; a forced density matrix past its cap is refused."""
+    from toposcout.compiler.simulate import default_memory_budget_bytes, estimate_memory_bytes  # noise studies only
+
+    cap = settings.max_active_qubits
+    n = model.num_variables
+    if n > cap and req.method == "density-matrix":
+        est = estimate_memory_bytes(n)
+        raise CapacityError(
+            f"model.variables: the noise study simulates at least {n} active qubits (one per variable) but this "
+            f"server's cap is max_active_qubits={cap}: a density matrix of {n} qubits needs about {_gib(est)} "
+            f"(16*4^{n} bytes plus overhead; {cap} qubits need {_gib(estimate_memory_bytes(cap))}). "
+            "Send method auto, trajectories or clifford, compile_only=true, or use a server with a larger cap",
+            field="method")
+    budget = settings.memory_budget_bytes or default_memory_budget_bytes()
+    return min(budget, estimate_memory_bytes(cap))
+
+
+def _targets(req: StudyRequest, settings, model: Model, max_targets: int) -> list[dict]:
+    """Connectivity specs of the request (every built-in family when none is given) and its gate set checked."""
+    conns = req.connectivities
+    if conns is not None and len(conns) > max_targets:
+        raise CapacityError(f"connectivities: {len(conns)} targets is over this endpoint's cap of {max_targets}",
+                            field="connectivities")
+    if conns is None:
+        specs = [{"family": f, "size": None, "edges": None} for f in BUILTIN_FAMILIES][:max_targets]
+    else:
+        specs = [_connectivity(i, c, settings, model.num_variables) for i, c in enumerate(conns)]
+    if req.gate_set not in GATE_SETS:
+        raise TargetError(f"gate_set: unknown gate set {req.gate_set[:40]!r}; choose one of {', '.join(GATE_SETS)}",
+                          field="gate_set")
+    return specs
+
+
+def _scales(req: StudyRequest, settings, compile_only: bool) -> list[float]:
+    """The noise scales (one, 1.0, for a compile-only study), each within its limit."""
+    scales = [1.0] if compile_only else list(req.noise_scales)
+    if len(scales) > settings.max_noise_scales:
+        raise CapacityError(f"noise_scales: {len(scales)} scales is over this server's cap of "
+                            f"{settings.max_noise_scales}", field="noise_scales")
+    for i, s in enumerate(scales):
+        LIMITS["noise_scale"].check(s, field=f"noise_scales[{i}]")
+    return scales
+
+
 def _fit_request(req: StudyRequest, model: Model, families: list[str], settings) -> dict:
     """The ``fit`` block checked against the model and the server's cap, as a task's ``fit_request``."""
-    from toposcout.compiler.fit import MMD_BANDWIDTHS, check_fit_options, parse_samples
+    from toposcout.compiler.fit import MMD_BANDWIDTHS, check_fit_options, parse_samples  # scipy and the fit evaluator: only for requests that fit
 
     f = req.fit
     if model.num_variables > settings.max_fit_variables:

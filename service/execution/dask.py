@@ -106,7 +106,7 @@ def run_task_split(task: Mapping[str, Any], parts: int) -> dict:
     on the cluster (see the module docstring); same fields as ``run_task`` plus ``row_parts``."""
     from distributed import worker_client  # noqa: PLC0415 - runs on a Dask worker only
 
-    from toposcout.compiler.parts import merge_parts, plan_row, run_part
+    from toposcout.compiler.parts import merge_parts, plan_row, run_part  # only when a row is split into parts
 
     plan = plan_row(task, parts)
     if not plan["parts"]:

@@ -83,7 +83,7 @@ def run_tasks(
 
 def _run_split(pool, tasks: Sequence[dict], parts: int, done: Callable[[int, dict], None]) -> None:
     """Plan each row, run its parts as they come, merge when a row's parts are all back."""
-    from toposcout.compiler.parts import merge_parts, plan_row, run_part
+    from toposcout.compiler.parts import merge_parts, plan_row, run_part  # only when a row is split into parts
 
     pending = {}
     for i, t in enumerate(tasks):

@@ -216,8 +216,8 @@ def make_engine(url: str) -> Engine:
 
 def migrate(engine: Engine) -> None:
     """Bring the schema to the newest migration (alembic, scripts shipped in the package)."""
-    from alembic import command
-    from alembic.config import Config
+    from alembic import command  # alembic only when migrating
+    from alembic.config import Config  # alembic only when migrating
 
     cfg = Config()
     cfg.set_main_option("script_location", str(Path(__file__).resolve().parent / "migrations"))

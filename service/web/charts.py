@@ -31,6 +31,7 @@ Examples:
 from __future__ import annotations
 
 import io
+import math
 import re
 import textwrap
 import threading
@@ -42,6 +43,7 @@ import matplotlib
 # importing this module in a notebook leaves the notebook's backend alone
 from matplotlib.figure import Figure  # noqa: E402
 
+from toposcout.compiler.devices import parse_device
 from toposcout.compiler.errors import ToposcoutError  # noqa: E402
 from toposcout.compiler.targets import Connectivity, make_connectivity  # noqa: E402
 
@@ -412,7 +414,6 @@ def connectivity_for_row(row: Mapping[str, Any], request: Mapping[str, Any] | No
     """
     name = str(row.get("connectivity") or "")
     if (request or {}).get("device"):  # a device study: the chip of its device file
-        from toposcout.compiler.devices import parse_device
 
         dev = parse_device(request["device"])
         if dev.name == name:
@@ -595,7 +596,6 @@ def _scale_colour(x: float) -> str:
 
 
 def _log_position(v: float, lo: float, hi: float) -> float:
-    import math
 
     if hi <= lo or v <= 0:
         return 0.0
@@ -606,7 +606,6 @@ def device_svg(device, row: Mapping[str, Any] | None = None, *, width: int = 760
     """The device at its coordinates: couplers shaded by two-qubit error, qubits by readout error
     (both log scales, legends with units), and, from ``row``, the placed variables (outlined,
     labelled) and the couplers where routing put SWAPs (dashed). Plain SVG text."""
-    import math
 
     prof = device.profile
     pts = device.coords()

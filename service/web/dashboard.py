@@ -40,6 +40,10 @@ from starlette.concurrency import run_in_threadpool
 
 from toposcout.compiler.errors import ToposcoutError
 from toposcout.compiler.rows import DASHBOARD_COLUMNS, FIELDS
+from toposcout.compiler.devices import parse_device
+from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
+from toposcout.compiler.profiles import DEFAULT_PROFILE, profile_catalogue
+from toposcout.compiler.targets import BUILTIN_FAMILIES, GATE_SETS, connectivity_catalogue
 from toposcout.service.web import charts
 
 __all__ = ["router", "COOKIE", "PAGE_SIZE"]
@@ -452,7 +456,6 @@ async def drawing(request: Request, study_id: str, name: str, download: bool = F
         try:
             req = study.get("request") or {}
             if req.get("device") and fmt == "svg":  # the chip at its coordinates, shaded by error
-                from toposcout.compiler.devices import parse_device
 
                 body = charts.device_svg(parse_device(req["device"]), row).encode("utf-8")
             else:
@@ -466,7 +469,7 @@ async def drawing(request: Request, study_id: str, name: str, download: bool = F
 
 def _active_qubits(qpy_bytes: bytes) -> set[int] | None:
     """Physical qubits a compiled circuit touches (not counting barriers and delays)."""
-    from qiskit import qpy
+    from qiskit import qpy  # qiskit only when a circuit is loaded
 
     try:
         circ = qpy.load(io.BytesIO(qpy_bytes))[0]
@@ -483,16 +486,7 @@ def _active_qubits(qpy_bytes: bytes) -> set[int] | None:
 # --- the submit form ---------------------------------------------------------------------
 
 def _form_choices() -> dict:
-    from toposcout.compiler.targets import BUILTIN_FAMILIES, GATE_SETS, connectivity_catalogue
-
-    try:
-        from toposcout.compiler.profiles import DEFAULT_PROFILE, profile_catalogue
-
-        profiles = profile_catalogue()
-    except ImportError:  # pragma: no cover - profiles ship with the package
-        DEFAULT_PROFILE, profiles = None, {}
-    from toposcout.compiler.options import DEFAULT_FIDELITY_TARGET, LIMITS
-
+    profiles = profile_catalogue()
     cat = connectivity_catalogue()
     return dict(limits=LIMITS, default_fidelity_target=DEFAULT_FIDELITY_TARGET,
                 families=[(f, cat[f]["description"]) for f in BUILTIN_FAMILIES], gate_sets=GATE_SETS,
@@ -531,7 +525,6 @@ def _form_field(api_field: str | None) -> str:
 
 def _check_form(values: dict, device_chosen: bool = False) -> dict[str, str]:
     """Every problem of the filled fields at once, by field, with the limits of compiler.options."""
-    from toposcout.compiler.options import LIMITS
 
     errors: dict[str, str] = {}
     for key in ("seeds", "layers"):
