@@ -79,6 +79,7 @@ from qiskit.quantum_info import Operator
 
 from toposcout.compiler.options import DEFAULT_REQUIREMENT_TOLERANCE
 from toposcout.compiler.errors import ToposcoutError
+from toposcout.compiler.metrics import bisect_noise_scale
 from toposcout.compiler.noise import (
     VIRTUAL_GATES,
     NoiseSwitches,
@@ -550,21 +551,14 @@ def clifford_threshold(sched_or_compiled, profile: DeviceProfile, *, fidelity_ta
     if worst <= 0:
         return result
     s_max = 0.75 / worst
-    lo, hi = 0.0, min(1.0, s_max)
-    while fid(hi) >= fidelity_target:
-        if hi >= s_max:
-            result.update(threshold_two_qubit_error=e2 * hi, threshold_noise_scale=hi,
-                          fidelity_at_threshold=fid(hi), fidelity_at_threshold_se=cache[hi][1],
-                          evaluations=evaluations, saturated=True, threshold_shots=shots_total,
-                          threshold_bracket_two_qubit_error=[e2 * hi, None])
-            return result
-        lo, hi = hi, min(hi * 4.0, s_max)
-    while hi - lo > rel_tol * hi and evaluations < max_evaluations:
-        mid = 0.5 * (lo + hi)
-        if fid(mid) >= fidelity_target:
-            lo = mid
-        else:
-            hi = mid
+    lo, hi = bisect_noise_scale(fid, fidelity_target, s_max, rel_tol=rel_tol, max_evaluations=max_evaluations,
+                                evaluations=lambda: evaluations)
+    if hi is None:
+        result.update(threshold_two_qubit_error=e2 * lo, threshold_noise_scale=lo,
+                      fidelity_at_threshold=fid(lo), fidelity_at_threshold_se=cache[lo][1],
+                      evaluations=evaluations, saturated=True, threshold_shots=shots_total,
+                      threshold_bracket_two_qubit_error=[e2 * lo, None])
+        return result
     se = None
     if lo > 0:
         a, b = 0.9 * lo, min(1.1 * lo, s_max)

@@ -52,6 +52,7 @@ from toposcout.compiler.simulate import (
 )
 
 __all__ = [
+    "bisect_noise_scale",
     "MMD_BANDWIDTHS",
     "probabilities_from_rho",
     "apply_readout",
@@ -297,6 +298,27 @@ def noise_figures(compiled, ansatz, profile: DeviceProfile, *, memory_budget_byt
     return {k: out[k] for k in FIGURE_KEYS}
 
 
+def bisect_noise_scale(fid, fidelity_target: float, s_max: float, *, rel_tol: float, max_evaluations: int,
+                       evaluations) -> tuple[float, float | None]:
+    """The requirement's search on the noise scale s: ``(lo, hi)`` with ``fid(lo) >= target >
+    fid(hi)`` and ``(hi - lo) / hi <= rel_tol`` (or ``evaluations()`` reached ``max_evaluations``);
+    ``hi`` is None when even ``s_max`` (the largest physical scale) keeps the target. The upper
+    end grows by 4x from 1 until it misses the target, then the bracket is halved (bisection:
+    the fidelity falls monotonically with the noise scale, common practice)."""
+    lo, hi = 0.0, min(1.0, s_max)
+    while fid(hi) >= fidelity_target:
+        if hi >= s_max:
+            return hi, None
+        lo, hi = hi, min(hi * 4.0, s_max)
+    while hi - lo > rel_tol * hi and evaluations() < max_evaluations:
+        mid = 0.5 * (lo + hi)
+        if fid(mid) >= fidelity_target:
+            lo = mid
+        else:
+            hi = mid
+    return lo, hi
+
+
 def threshold_two_qubit_error(compiled, ansatz, profile: DeviceProfile, *, fidelity_target: float = 0.5,
                               rel_tol: float = DEFAULT_REQUIREMENT_TOLERANCE, max_evaluations: int = 40,
                               memory_budget_bytes: int | None = None, max_parallel_threads: int = 0) -> dict[str, Any]:
@@ -339,21 +361,13 @@ def threshold_two_qubit_error(compiled, ansatz, profile: DeviceProfile, *, fidel
               "requirement_tolerance": rel_tol}
     if worst <= 0:
         return result
-    s_max = 0.75 / worst
-    lo, hi = 0.0, min(1.0, s_max)
-    while fid(hi) >= fidelity_target:
-        if hi >= s_max:
-            result.update(threshold_two_qubit_error=e2 * hi, threshold_noise_scale=hi,
-                          fidelity_at_threshold=fid(hi), evaluations=evaluations, saturated=True,
-                          threshold_bracket_two_qubit_error=[e2 * hi, None])
-            return result
-        lo, hi = hi, min(hi * 4.0, s_max)
-    while hi - lo > rel_tol * hi and evaluations < max_evaluations:
-        mid = 0.5 * (lo + hi)
-        if fid(mid) >= fidelity_target:
-            lo = mid
-        else:
-            hi = mid
+    lo, hi = bisect_noise_scale(fid, fidelity_target, 0.75 / worst, rel_tol=rel_tol,
+                                max_evaluations=max_evaluations, evaluations=lambda: evaluations)
+    if hi is None:
+        result.update(threshold_two_qubit_error=e2 * lo, threshold_noise_scale=lo,
+                      fidelity_at_threshold=fid(lo), evaluations=evaluations, saturated=True,
+                      threshold_bracket_two_qubit_error=[e2 * lo, None])
+        return result
     result.update(threshold_two_qubit_error=e2 * lo, threshold_noise_scale=lo, upper_noise_scale=hi,
                   fidelity_at_threshold=fid(lo), evaluations=evaluations,
                   threshold_bracket_two_qubit_error=[e2 * lo, e2 * hi])
