@@ -184,3 +184,26 @@ def test_labels_filters_and_the_compare_view(app_client, wait_study):
     same = {title.strip() for cls, title in rows if not cls}
     assert "label" in differs and "model" in same and "connectivities" in same
     assert app_client.get("/compare", params={"ids": ids[0]}, headers=AUTH).status_code == 422
+
+
+def test_the_form_takes_a_label_and_several_profiles(app_client, wait_study):
+    # the form reaches what the API and the CLI can do (issue list: one product everywhere)
+    import json as _json
+
+    app_client.cookies.clear()
+    model = _json.dumps({"name": "formed", "variables": ["a", "b"], "cliques": [["a", "b"]]}).encode()
+    page = app_client.get("/submit", headers=AUTH).text
+    assert 'name="label"' in page and re.search(r'<select id="profile" name="profile" multiple', page)
+    form = {"connectivities": ["line"], "noise_scales": "1", "seeds": "1", "layers": "1", "label": "orchard-week-3",
+            "profile": ["superconducting", "trapped_ion"]}
+    r = app_client.post("/submit", data=form, files={"file": ("formed.json", model, "application/json")},
+                        headers=AUTH, follow_redirects=False)
+    assert r.status_code == 303, r.text[:500]
+    study_id = r.headers["location"].rsplit("/", 1)[1]
+    study = wait_study(app_client, study_id, 120, headers=AUTH)
+    assert study["request"]["label"] == "orchard-week-3"
+    assert sorted(row["profile"] for row in study["rows"]) == ["superconducting", "trapped_ion"]
+    # a bad label is named beside its field, the rest of the form kept
+    bad = {**form, "label": "x" * 81}
+    r = app_client.post("/submit", data=bad, files={"file": ("formed.json", model, "application/json")}, headers=AUTH)
+    assert r.status_code == 422 and 'id="label-error"' in r.text and 'value="1"' in r.text

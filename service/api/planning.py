@@ -390,6 +390,9 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
         if key == "families":
             out[key] = [c.strip() for v in values for c in v.split(",") if c.strip()]
             continue
+        if key == "profile" and len(values) > 1:  # a profile chosen several times: rows per profile
+            out[key] = [v.strip() for v in values if v.strip()]
+            continue
         if len(values) != 1:
             raise ModelError(f"{key}: give this form field once", field=key)
         v = values[0].strip()

@@ -494,7 +494,7 @@ def _form_choices() -> dict:
                 strategies=("auto", "generic", "structured"))
 
 
-_FORM_DEFAULTS = {"connectivities": ["line", "grid", "all-to-all"], "extra_connectivities": "", "profile": "",
+_FORM_DEFAULTS = {"connectivities": ["line", "grid", "all-to-all"], "extra_connectivities": "", "profiles": [], "label": "",
                   "noise_scales": "1", "fidelity_target": "", "compile_only": False, "gate_set": "cx",
                   "strategy": "auto", "seeds": "5", "layers": "1", "families": ["clique"], "fit": False}
 
@@ -518,7 +518,7 @@ def _form_field(api_field: str | None) -> str:
     if head in ("noise_scales", "noise_scale"):
         return "noise_scales"
     if head in ("seeds", "layers", "fidelity_target", "profile", "gate_set", "strategy", "compile_only", "device",
-                "fit", "families"):
+                "fit", "families", "label"):
         return head
     return "form"
 
@@ -566,7 +566,8 @@ async def submit(request: Request):
     values = {
         "connectivities": [str(v) for v in form.getlist("connectivities")],
         "extra_connectivities": str(form.get("extra_connectivities") or ""),
-        "profile": str(form.get("profile") or ""),
+        "profiles": [str(v) for v in form.getlist("profile") if str(v)],
+        "label": str(form.get("label") or ""),
         "noise_scales": str(form.get("noise_scales") or ""),
         "fidelity_target": str(form.get("fidelity_target") or ""),
         "compile_only": bool(form.get("compile_only")),
@@ -611,9 +612,11 @@ async def submit(request: Request):
     conns = values["connectivities"] + [c for c in values["extra_connectivities"].replace(",", " ").split() if c]
     data: dict[str, Any] = {"connectivities": conns,
                             "noise_scales": values["noise_scales"].replace(",", " ").split()}
-    for key in ("profile", "fidelity_target", "gate_set", "strategy", "seeds", "layers"):
+    for key in ("label", "fidelity_target", "gate_set", "strategy", "seeds", "layers"):
         if values[key].strip():
             data[key] = values[key].strip()
+    if values["profiles"]:  # several: one study holds rows per profile
+        data["profile"] = values["profiles"]
     device = form.get("device_file")
     if device is not None and hasattr(device, "read") and getattr(device, "filename", ""):
         try:
