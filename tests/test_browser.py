@@ -229,6 +229,27 @@ def test_connectivity_drawing_marks_the_placed_variables(submitted, context, ser
             assert var in texts, (var, row["connectivity"])
     fig.locator("img").scroll_into_view_if_needed()
     fig.screenshot(path=str(SHOTS / "connectivity-drawing.png"))
+    # as the browser renders the drawings: no variable or SWAP label overlaps a qubit marker or
+    # another label (bounding boxes of the SVG's elements; a qubit's own number sits inside it)
+    srcs = [figs.nth(i).locator("img").evaluate("i => i.src") for i in range(figs.count())]
+    for src in srcs:
+        page.goto(src)
+        boxes = page.evaluate("""() => {
+            const r = e => { const b = e.getBoundingClientRect(); return [b.left, b.top, b.right, b.bottom]; };
+            const pick = p => [...document.querySelectorAll(`[id^="${p}"]`)].map(e => [e.id, r(e)]);
+            return {qubits: pick("qubit-"), labels: pick("variable-label-").concat(pick("swap-label-"))};
+        }""")
+        assert boxes["qubits"] and boxes["labels"], src
+
+        def overlaps(a, b):
+            return a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]
+
+        for name, box in boxes["labels"]:
+            for q, node in boxes["qubits"]:
+                assert not overlaps(box, node), (src, name, "over", q)
+        for i, (a, ba) in enumerate(boxes["labels"]):
+            for b, bb in boxes["labels"][i + 1:]:
+                assert not overlaps(ba, bb), (src, a, b)
     page.close()
 
 

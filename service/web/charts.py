@@ -496,7 +496,7 @@ def connectivity_figure(row: Mapping[str, Any], conn: Connectivity, *, active: I
         if (a, b) in swaps:
             ax.plot([x1, x2], [y1, y2], color=PALETTE["two_qubit"], linewidth=3.5, zorder=2, solid_capstyle="round")
             ax.text((x1 + x2) / 2, (y1 + y2) / 2, f"{swaps[(a, b)]} SWAP", fontsize=7, color=PALETTE["two_qubit"],
-                    ha="center", va="center", zorder=5,
+                    ha="center", va="center", zorder=5, gid=f"swap-label-{a}-{b}",
                     bbox=dict(boxstyle="round,pad=0.15", fc="white", ec=PALETTE["two_qubit"], lw=0.8))
         else:
             ax.plot([x1, x2], [y1, y2], color="#cfcfcf" if dense else "#9a9a9a",
@@ -510,13 +510,13 @@ def connectivity_figure(row: Mapping[str, Any], conn: Connectivity, *, active: I
             face, edge = PALETTE["routing"], PALETTE["placed"]
         else:
             face, edge = PALETTE["unused"], _GREY
-        ax.scatter([x], [y], s=size, c=face, edgecolors=edge, linewidths=1.2, zorder=3)
+        ax.scatter([x], [y], s=size, c=face, edgecolors=edge, linewidths=1.2, zorder=3, gid=f"qubit-{q}")
         ax.text(x, y, str(q), fontsize=5 if big else 7, ha="center", va="center", zorder=4,
                 color="white" if q in by_qubit else "#555555")
         if q in by_qubit:
             ax.annotate(by_qubit[q], (x, y), xytext=(0, 9 if big else 13), textcoords="offset points",
                         fontsize=7 if big else 8, ha="center", va="bottom", color=PALETTE["placed"], zorder=6,
-                        fontweight="bold")
+                        fontweight="bold", gid=f"variable-label-{q}")  # ids: the browser test finds them
     # legend proxies
     ax.scatter([], [], s=60, c=PALETTE["placed"], edgecolors=PALETTE["ink"], label="variable placed (initial layout)")
     if act - set(by_qubit):
