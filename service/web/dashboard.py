@@ -76,7 +76,8 @@ def _fmt_num(v: Any, digits: int = 3) -> str:
     if isinstance(v, float):
         if not math.isfinite(v):
             return str(v)
-        return f"{v:.{digits}f}" if abs(v) >= 10 ** -digits or v == 0 else f"{v:.2e}"
+        # small figures (a large model's fidelity, a budget part) keep their significant digits
+        return f"{v:.{digits}f}" if abs(v) >= 0.1 or v == 0 else f"{v:.{digits}g}"
     return str(v)
 
 
