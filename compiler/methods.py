@@ -52,6 +52,8 @@ __all__ = [
     "trajectory_cost",
     "Plan",
     "plan_method",
+    "budget_from_source_off",
+    "budget_readout_from_run",
     "plan_noise_row",
     "method_noise_row",
 ]
@@ -271,15 +273,26 @@ def _trajectory_row(sched, profile, ansatz, plan: Plan, t: Mapping[str, Any], bu
                 off_run = T.run_trajectories(sched, profile, cliques, on.without(s), n_trajectories=run.n, **kw)
                 off = T.trajectory_figures(sched, profile, model, off_run, p_ideal=p, p_cliques=pcs,
                                            switches=on.without(s))
-                out[f"budget_state_{s}"] = off["state_fidelity"] - out["state_fidelity"]
-                out[f"budget_state_{s}_se"] = math.hypot(off["state_fidelity_se"] or 0, out["state_fidelity_se"] or 0)
-                if out["hellinger_fidelity"] is not None:
-                    out[f"budget_{s}"] = off["hellinger_fidelity"] - out["hellinger_fidelity"]
-            if out["hellinger_fidelity"] is not None:
-                nr = T.trajectory_figures(sched, profile, model, run, p_ideal=p, p_cliques=pcs,
-                                          switches=on.without("readout"))
-                out["budget_readout"] = nr["hellinger_fidelity"] - out["hellinger_fidelity"]
+                budget_from_source_off(out, off, s)
+            budget_readout_from_run(out, sched, profile, model, run, p, pcs)
     return out
+
+
+def budget_from_source_off(out: dict[str, Any], off: Mapping[str, Any], source: str) -> None:
+    """The budget fields of one noise source from the trajectories run with it switched off."""
+    out[f"budget_state_{source}"] = off["state_fidelity"] - out["state_fidelity"]
+    out[f"budget_state_{source}_se"] = math.hypot(off["state_fidelity_se"] or 0, out["state_fidelity_se"] or 0)
+    if out["hellinger_fidelity"] is not None:
+        out[f"budget_{source}"] = off["hellinger_fidelity"] - out["hellinger_fidelity"]
+
+
+def budget_readout_from_run(out: dict[str, Any], sched, profile, model, run, p, pcs) -> None:
+    """The readout budget: the same trajectories read without readout error (readout is applied
+    exactly to the averaged distributions, so no second run is needed)."""
+    if out["hellinger_fidelity"] is not None:
+        nr = T.trajectory_figures(sched, profile, model, run, p_ideal=p, p_cliques=pcs,
+                                  switches=NoiseSwitches().without("readout"))
+        out["budget_readout"] = nr["hellinger_fidelity"] - out["hellinger_fidelity"]
 
 
 def _clifford_row(sched, profile, t: Mapping[str, Any]) -> dict[str, Any]:

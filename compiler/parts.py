@@ -263,14 +263,8 @@ def _merge_trajectories(plan, by, t, ansatz, compiled, profile) -> dict[str, Any
             off_run = merge_runs([r["result"] for r in parts], plan["n_parts"])
             off = T.trajectory_figures(sched, profile, model, off_run, p_ideal=p, p_cliques=pcs,
                                        switches=on.without(s))
-            out[f"budget_state_{s}"] = off["state_fidelity"] - out["state_fidelity"]
-            out[f"budget_state_{s}_se"] = math.hypot(off["state_fidelity_se"] or 0, out["state_fidelity_se"] or 0)
-            if out["hellinger_fidelity"] is not None:
-                out[f"budget_{s}"] = off["hellinger_fidelity"] - out["hellinger_fidelity"]
-        if out["hellinger_fidelity"] is not None:
-            nr = T.trajectory_figures(sched, profile, model, run, p_ideal=p, p_cliques=pcs,
-                                      switches=on.without("readout"))
-            out["budget_readout"] = nr["hellinger_fidelity"] - out["hellinger_fidelity"]
+            M.budget_from_source_off(out, off, s)
+        M.budget_readout_from_run(out, sched, profile, model, run, p, pcs)
     return out
 
 
