@@ -36,9 +36,8 @@ The flow for one compiled circuit::
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, replace
-from typing import Iterable, Sequence
+from typing import Sequence
 
 import numpy as np
 from qiskit import QuantumCircuit
@@ -246,25 +245,31 @@ def _relax(profile: DeviceProfile, phys: int, time_ns: float) -> QuantumError:
     return thermal_relaxation_error(q.t1_us * 1e3, q.t2_us * 1e3, float(time_ns))
 
 
+def _gate_figures(profile: DeviceProfile, phys: Sequence[int]) -> tuple[float, float, float]:
+    """(the profile's gate error, the gate's duration in ns, the process fidelity of relaxation
+    during it) of a native gate on ``phys``: what the channel and its infidelity are built from."""
+    if len(phys) == 1:
+        qp = profile.qubit(phys[0])
+        dur = _ns(qp.one_qubit_ns)
+        return qp.one_qubit_error, dur, relaxation_process_fidelity(qp.t1_us, qp.t2_us, dur)
+    a, b = phys
+    e = profile.edge(a, b)
+    dur = _ns(e.two_qubit_ns)
+    qa, qb = profile.qubit(a), profile.qubit(b)
+    return e.two_qubit_error, dur, (relaxation_process_fidelity(qa.t1_us, qa.t2_us, dur)
+                                    * relaxation_process_fidelity(qb.t1_us, qb.t2_us, dur))
+
+
 def gate_error(profile: DeviceProfile, phys: Sequence[int], name: str) -> QuantumError | None:
     """The QuantumError of one native gate on physical qubits ``phys`` (None if noiseless):
     depolarizing remainder composed with relaxation over the gate's duration."""
     if name in VIRTUAL_GATES:
         return None
+    r, dur, f_rel = _gate_figures(profile, phys)
     if len(phys) == 1:
-        (p,) = phys
-        qp = profile.qubit(p)
-        r = qp.one_qubit_error
-        dur = _ns(qp.one_qubit_ns)
-        f_rel = relaxation_process_fidelity(qp.t1_us, qp.t2_us, dur)
-        relax = _relax(profile, p, dur) if dur > 0 else None
+        relax = _relax(profile, phys[0], dur) if dur > 0 else None
     else:
         a, b = phys
-        e = profile.edge(a, b)
-        r, dur = e.two_qubit_error, _ns(e.two_qubit_ns)
-        qa, qb = profile.qubit(a), profile.qubit(b)
-        f_rel = (relaxation_process_fidelity(qa.t1_us, qa.t2_us, dur)
-                 * relaxation_process_fidelity(qb.t1_us, qb.t2_us, dur))
         relax = _relax(profile, a, dur).expand(_relax(profile, b, dur)) if dur > 0 else None
     p_dep = depolarizing_parameter(r, f_rel, len(phys))
     if relax is not None and f_rel >= 1.0:
@@ -280,17 +285,7 @@ def gate_error(profile: DeviceProfile, phys: Sequence[int], name: str) -> Quantu
 def gate_infidelity(profile: DeviceProfile, phys: Sequence[int]) -> float:
     """Average infidelity of the whole gate on ``phys`` as simulated: the profile's error, or the
     relaxation during the gate when that alone is larger (then the depolarizing part is 0)."""
-    if len(phys) == 1:
-        qp = profile.qubit(phys[0])
-        r, dur = qp.one_qubit_error, _ns(profile.one_qubit_ns)
-        f_rel = relaxation_process_fidelity(qp.t1_us, qp.t2_us, dur)
-    else:
-        a, b = phys
-        e = profile.edge(a, b)
-        r, dur = e.two_qubit_error, _ns(e.two_qubit_ns)
-        qa, qb = profile.qubit(a), profile.qubit(b)
-        f_rel = (relaxation_process_fidelity(qa.t1_us, qa.t2_us, dur)
-                 * relaxation_process_fidelity(qb.t1_us, qb.t2_us, dur))
+    r, _dur, f_rel = _gate_figures(profile, phys)
     d = 2 ** len(phys)
     return max(r, 1.0 - (d * f_rel + 1.0) / (d + 1.0))
 
