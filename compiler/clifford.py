@@ -88,11 +88,14 @@ from toposcout.compiler.noise import (
     _ns,
     schedule,
 )
+from toposcout.compiler.parity import (MIN_EFFECTIVE_SAMPLES, ParityEstimate, ParityProblem, estimate_cancellation,
+                                       independent_flips)
 from toposcout.compiler.profiles import DeviceProfile, depolarizing_parameter, relaxation_process_fidelity
 
 __all__ = [
     "CLIFFORD_LABEL",
     "CLIFFORD_KEYS",
+    "ESTIMATORS",
     "depolarizing_pauli_probability",
     "relaxation_twirl",
     "round_angle",
@@ -102,6 +105,7 @@ __all__ = [
     "fidelity_from_counts",
     "Tally",
     "clifford_tally",
+    "parity_problems",
     "figures_from_tally",
     "budget_from_figures",
     "part_seed",
@@ -115,11 +119,13 @@ CLIFFORD_LABEL = ("estimate: stabilizer simulation of the Clifford twin (angles 
                   "pi/2, Pauli-twirled noise), not the exact density matrix")
 #: keys of :func:`clifford_figures`.
 CLIFFORD_KEYS = (
-    "clifford_state_fidelity", "clifford_state_fidelity_se", "clifford_log10_state_fidelity",
+    "clifford_estimator", "clifford_samples", "clifford_effective_samples", "clifford_state_fidelity", "clifford_state_fidelity_se", "clifford_log10_state_fidelity",
     "clifford_read_fidelity", "clifford_read_fidelity_se",
     "clifford_shots", "clifford_returns", "clifford_upper_bound", "clifford_rel_se_target",
     "clifford_rounded_rotations", "clifford_checked_stabilizers", "clifford_seconds", "clifford_label",
 )
+#: how a clifford estimate may be formed (see :func:`clifford_tally`).
+ESTIMATORS = ("auto", "returns", "weighted")
 _BATCH_MIN = 4096
 _BATCH_MAX = 1 << 20
 _PI2 = math.pi / 2
@@ -199,8 +205,17 @@ class CliffordCircuit:
 
 
 def _append_pauli1(c: stim.Circuit, q: int, probs: tuple[float, float, float]) -> None:
-    if any(p > 0 for p in probs):
-        c.append("PAULI_CHANNEL_1", [q], list(probs))
+    """The one-qubit Pauli channel ``probs`` as three independent flips (X, Y, Z) with the same
+    Pauli eigenvalues (:func:`toposcout.compiler.parity.independent_flips`): the same channel
+    for the shots, and one stim can turn into a detector error model without approximation.
+    A flip whose exact probability would be negative (about -px^2 for a pure amplitude-damping
+    twirl, pz = 0) is left out: a change below px^2 in that window's figures."""
+    if not any(p > 0 for p in probs):
+        return
+    for gate, log_c in zip(("X_ERROR", "Y_ERROR", "Z_ERROR"), independent_flips(*probs)):
+        flip = (1.0 - math.exp(log_c)) / 2.0
+        if flip > 0:
+            c.append(gate, [q], [flip])
 
 
 def clifford_circuit(sched: Scheduled, profile: DeviceProfile,
@@ -377,19 +392,63 @@ def _sample_adaptive(twin: CliffordCircuit, rel_se: float, max_shots: int, seed:
     return shots, ret, read
 
 
+def parity_problems(twin: CliffordCircuit) -> tuple[ParityProblem, ParityProblem | None]:
+    """The twin's detector error model (stim, exact: every channel of the twin is depolarizing
+    or independent flips) as two :class:`toposcout.compiler.parity.ParityProblem`: the state
+    checks (detectors 0..m-1), and the read checks' own part (detectors m..2m-1 minus the
+    state checks: only readout flips reach it, so the read return probability is the state
+    one times this one's; None without readout)."""
+    m = twin.checked
+    dem = twin.circuit.detector_error_model(decompose_errors=False, approximate_disjoint_errors=False,
+                                            flatten_loops=True)
+    state_sy, state_lc, read_sy, read_lc = [], [], [], []
+    for inst in dem.flattened():
+        if inst.type != "error":
+            continue
+        v = 0
+        for t in inst.targets_copy():
+            if t.is_relative_detector_id():
+                v ^= 1 << t.val
+        low, high = v & ((1 << m) - 1), v >> m
+        p = inst.args_copy()[0]
+        log_c = math.log1p(-2.0 * p) if p < 0.5 else -math.inf
+        if low:
+            if twin.readout and high != low:
+                raise ToposcoutError("internal: a circuit error reaches the read checks differently from the "
+                                     "state checks", field="circuit")
+            state_sy.append(low)
+            state_lc.append(log_c)
+        elif high:
+            read_sy.append(high)
+            read_lc.append(log_c)
+    return ParityProblem(state_sy, state_lc), (ParityProblem(read_sy, read_lc) if twin.readout else None)
+
+
+def _weighted_is_better(state: ParityProblem, rel_se: float, max_shots: int) -> bool:
+    """Counting returns needs about (1 - F) / (F rel_se^2) shots; F is at least the
+    no-error probability P0, so when even F = P0 would need more than a quarter of
+    ``max_shots`` the weighted stabilizer average is used (deterministic: every part of a
+    split row decides the same)."""
+    p0 = math.exp(state.no_fire_log_probability())
+    return p0 <= 0 or (1 - p0) / (p0 * rel_se * rel_se) > max_shots / 4
+
+
 class Tally:
     """Counts of one batch of shots of a twin (a *part*: shots with their own seed), to be
     merged with the other parts of the same twin by ``+``: shots and returns add, which is
     exactly one binomial count of the pooled shots when the parts' seeds give independent
     streams. Plain picklable value (``to_dict`` / ``from_dict`` for JSON)."""
 
-    __slots__ = ("shots", "returns", "read_returns", "checked", "variables", "rounded", "seconds", "parts")
+    __slots__ = ("shots", "returns", "read_returns", "checked", "variables", "rounded", "seconds", "parts",
+                 "weighted")
 
     def __init__(self, shots: int, returns: int, read_returns: int, checked: int, variables: int, rounded: int,
-                 seconds: float = 0.0, parts: int = 1):
+                 seconds: float = 0.0, parts: int = 1, weighted: dict | None = None):
         self.shots, self.returns, self.read_returns = int(shots), int(returns), int(read_returns)
         self.checked, self.variables, self.rounded = int(checked), int(variables), int(rounded)
         self.seconds, self.parts = float(seconds), int(parts)
+        #: None (counted returns), or {"state": ParityEstimate dict, "readout": ParityEstimate dict or None}
+        self.weighted = weighted
 
     @property
     def scale(self) -> float:
@@ -398,22 +457,33 @@ class Tally:
     def __add__(self, other: "Tally") -> "Tally":
         if (self.checked, self.variables, self.rounded) != (other.checked, other.variables, other.rounded):
             raise ToposcoutError("cannot merge the shots of two different Clifford twins", field="parts")
+        if (self.weighted is None) != (other.weighted is None):
+            raise ToposcoutError("cannot merge counted returns with a weighted estimate", field="parts")
+        weighted = None
+        if self.weighted is not None:
+            weighted = {k: _merge_estimates(self.weighted[k], other.weighted[k]) for k in ("state", "readout")}
         return Tally(self.shots + other.shots, self.returns + other.returns, self.read_returns + other.read_returns,
                      self.checked, self.variables, self.rounded, self.seconds + other.seconds,
-                     self.parts + other.parts)
+                     self.parts + other.parts, weighted)
 
     def to_dict(self) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self.__slots__}
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "Tally":
-        return cls(**{k: d[k] for k in cls.__slots__})
+        return cls(**{k: d[k] for k in cls.__slots__ if k in d})
 
     def __eq__(self, other) -> bool:
         return isinstance(other, Tally) and self.to_dict() == other.to_dict()
 
     def __repr__(self) -> str:
         return f"Tally({self.to_dict()})"
+
+
+def _merge_estimates(a: dict | None, b: dict | None) -> dict | None:
+    if a is None or b is None:
+        return None
+    return (ParityEstimate.from_dict(a) + ParityEstimate.from_dict(b)).to_dict()
 
 
 def part_seed(seed: int, part: int) -> int:
@@ -423,22 +493,43 @@ def part_seed(seed: int, part: int) -> int:
 
 
 def clifford_tally(sched: Scheduled, profile: DeviceProfile, switches: NoiseSwitches = NoiseSwitches(), *,
-                   rel_se: float = 0.05, max_shots: int = 2_000_000, seed: int = 0) -> Tally:
+                   rel_se: float = 0.05, max_shots: int = 2_000_000, seed: int = 0, estimator: str = "auto") -> Tally:
     """Shots of the twin until its relative standard error is at most ``rel_se`` (or
     ``max_shots``): one part. A row split into P parts runs P of these with ``rel_se *
-    sqrt(P)``, ``max_shots / P`` and :func:`part_seed` seeds, and adds them up."""
+    sqrt(P)``, ``max_shots / P`` and :func:`part_seed` seeds, and adds them up.
+
+    ``estimator``: ``returns`` counts returns; ``weighted`` takes the stabilizer average of
+    :mod:`toposcout.compiler.parity` (exact for a small span, else importance-sampled, with
+    ``max_shots`` as its sample cap); ``auto`` counts unless returns would be too rare to
+    count (:func:`_weighted_is_better`)."""
     _check_options(rel_se, max_shots)
+    if estimator not in ESTIMATORS:
+        raise ToposcoutError(f"unknown clifford estimator {estimator!r}; choose one of {', '.join(ESTIMATORS)}",
+                             field="estimator")
     t0 = time.perf_counter()
     twin = clifford_circuit(sched, profile, switches)
+    if twin.checked and estimator != "returns":
+        state, readout = parity_problems(twin)
+        if estimator == "weighted" or (estimator == "auto" and _weighted_is_better(state, rel_se, max_shots)):
+            est = {"state": estimate_cancellation(state, rel_se=rel_se, max_samples=max_shots, seed=seed).to_dict(),
+                   "readout": None if readout is None else estimate_cancellation(
+                       readout, rel_se=rel_se, max_samples=max_shots, seed=seed + 1).to_dict()}
+            return Tally(0, 0, 0, twin.checked, twin.variables, twin.rounded, time.perf_counter() - t0,
+                         weighted=est)
     shots, ret, read = _sample_adaptive(twin, rel_se, max_shots, seed)
     return Tally(shots, ret, read, twin.checked, twin.variables, twin.rounded, time.perf_counter() - t0)
 
 
 def figures_from_tally(tally: Tally, rel_se: float) -> dict[str, Any]:
     """The :data:`CLIFFORD_KEYS` dict of a (merged) tally."""
+    if tally.weighted is not None:
+        return _weighted_figures(tally, rel_se)
     f, se, upper = fidelity_from_counts(tally.returns, tally.shots, tally.scale)
     fr, ser, _upper_r = fidelity_from_counts(tally.read_returns, tally.shots, tally.scale)
     return {
+        "clifford_estimator": "counted returns",
+        "clifford_samples": None,
+        "clifford_effective_samples": None,
         "clifford_state_fidelity": f,
         "clifford_state_fidelity_se": None if math.isnan(se) else se,
         "clifford_log10_state_fidelity": math.log10(f) if f > 0 else None,
@@ -455,8 +546,42 @@ def figures_from_tally(tally: Tally, rel_se: float) -> dict[str, Any]:
     }
 
 
+def _weighted_figures(tally: Tally, rel_se: float) -> dict[str, Any]:
+    state = ParityEstimate.from_dict(tally.weighted["state"])
+    readout = tally.weighted["readout"]
+    f, se = tally.scale * state.value, tally.scale * state.se
+    if readout is None:
+        fr, ser = f, se
+    else:
+        ro = ParityEstimate.from_dict(readout)
+        fr = f * ro.value
+        ser = math.hypot(se * ro.value, f * ro.se)
+    exact = state.exact and (readout is None or ParityEstimate.from_dict(readout).exact)
+    return {
+        "clifford_estimator": "exact stabilizer average" if exact else "weighted stabilizer average",
+        "clifford_samples": state.samples,
+        "clifford_effective_samples": None if state.exact else state.effective_samples,
+        "clifford_state_fidelity": f,
+        "clifford_state_fidelity_se": se,
+        "clifford_log10_state_fidelity": math.log10(f) if f > 0 else None,
+        "clifford_read_fidelity": fr,
+        "clifford_read_fidelity_se": ser,
+        "clifford_shots": 0,
+        "clifford_returns": None,
+        "clifford_upper_bound": False,
+        "clifford_rel_se_target": float(rel_se),
+        "clifford_rounded_rotations": tally.rounded,
+        "clifford_checked_stabilizers": tally.checked,
+        "clifford_seconds": tally.seconds,
+        "clifford_label": CLIFFORD_LABEL + ("" if state.exact or state.effective_samples >= MIN_EFFECTIVE_SAMPLES else
+                                            f" (the weighted average reached only {state.effective_samples:.0f} "
+                                            "effective samples: its standard error may be too small)"),
+    }
+
+
 def clifford_figures(sched: Scheduled, profile: DeviceProfile, switches: NoiseSwitches = NoiseSwitches(), *,
-                     rel_se: float = 0.05, max_shots: int = 2_000_000, seed: int = 0) -> dict[str, Any]:
+                     rel_se: float = 0.05, max_shots: int = 2_000_000, seed: int = 0,
+                     estimator: str = "auto") -> dict[str, Any]:
     """The Clifford estimate of one scheduled circuit: a flat dict with :data:`CLIFFORD_KEYS`.
 
     ``clifford_state_fidelity`` estimates the state fidelity of the variables (as
@@ -465,7 +590,7 @@ def clifford_figures(sched: Scheduled, profile: DeviceProfile, switches: NoiseSw
     ``_se`` is the binomial standard error (NaN -> None when no shot returned: then the
     figure is an upper bound and ``clifford_upper_bound`` is True)."""
     return figures_from_tally(clifford_tally(sched, profile, switches, rel_se=rel_se, max_shots=max_shots,
-                                             seed=seed), rel_se)
+                                             seed=seed, estimator=estimator), rel_se)
 
 
 def budget_from_figures(base: dict[str, Any], off: dict[str, dict[str, Any]]) -> dict[str, Any]:
@@ -494,14 +619,17 @@ def budget_from_figures(base: dict[str, Any], off: dict[str, dict[str, Any]]) ->
 
 
 def clifford_budget(sched: Scheduled, profile: DeviceProfile, *, rel_se: float = 0.05,
-                    max_shots: int = 2_000_000, seed: int = 0, base: dict | None = None) -> dict[str, Any]:
+                    max_shots: int = 2_000_000, seed: int = 0, base: dict | None = None,
+                    estimator: str = "auto") -> dict[str, Any]:
     """Error budget from the Clifford estimate: ``clifford_budget_state_<s>`` = estimate with
     source ``s`` off minus estimate with all on (two_qubit, one_qubit, idle), and
     ``clifford_budget_readout`` = state minus read fidelity of the all-on run (readout needs
     no new run). ``base``: the all-on :func:`clifford_figures` if already computed."""
     on = NoiseSwitches()
-    base = base or clifford_figures(sched, profile, on, rel_se=rel_se, max_shots=max_shots, seed=seed)
-    off = {s: clifford_figures(sched, profile, on.without(s), rel_se=rel_se, max_shots=max_shots, seed=seed)
+    base = base or clifford_figures(sched, profile, on, rel_se=rel_se, max_shots=max_shots, seed=seed,
+                                    estimator=estimator)
+    off = {s: clifford_figures(sched, profile, on.without(s), rel_se=rel_se, max_shots=max_shots, seed=seed,
+                               estimator=estimator)
            for s in ("two_qubit", "one_qubit", "idle")}
     return budget_from_figures(base, off)
 

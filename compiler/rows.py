@@ -204,12 +204,19 @@ ROW_FIELDS: tuple[RowField, ...] = (
     _F("clifford_state_fidelity", "ESTIMATE of the state fidelity from the stabilizer simulation of the Clifford "
        "twin (rotations rounded to multiples of π/2, Pauli-twirled noise)", short="F cliff",
        label="clifford F (estimate)"),
-    _F("clifford_state_fidelity_se", "standard error of clifford_state_fidelity (shot noise)"),
+    _F("clifford_state_fidelity_se", "standard error of clifford_state_fidelity (shot noise, or the spread of the "
+       "weighted average; 0 when exact)"),
     _F("clifford_log10_state_fidelity", "log10 of clifford_state_fidelity"),
     _F("clifford_read_fidelity", "ESTIMATE with readout error included (returns counted after noisy measurement)"),
     _F("clifford_read_fidelity_se", "standard error of clifford_read_fidelity"),
-    _F("clifford_shots", "shots of the clifford estimate", "shots", "int"),
-    _F("clifford_returns", "shots that returned to the start", "shots", "int"),
+    _F("clifford_estimator", "how the clifford estimate was formed: counted returns (shots), weighted stabilizer "
+       "average (importance-sampled, when returns are too rare to count), or exact stabilizer average (small "
+       "span)", kind="str"),
+    _F("clifford_samples", "stabilizer-group elements drawn by the weighted average", "samples", "int"),
+    _F("clifford_effective_samples", "Kong's effective sample size (Σw)²/Σw² of the weighted average (at least 100)",
+       "samples"),
+    _F("clifford_shots", "shots of the clifford estimate (0 for a stabilizer average)", "shots", "int"),
+    _F("clifford_returns", "shots that returned to the start (counted returns only)", "shots", "int"),
     _F("clifford_upper_bound", "true when no shot returned: clifford_state_fidelity is then the one-sided 95 % "
        "upper bound 1 − 0.05^(1/shots), not zero", kind="bool"),
     _F("clifford_rel_se_target", "relative standard error the shots were chosen for"),

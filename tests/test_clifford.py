@@ -282,13 +282,13 @@ def test_a_row_with_no_returns_reports_an_upper_bound():
     compiled = compile_ansatz(ansatz, make_connectivity("line", 20), get_gate_set("cx"), strategy="structured",
                               seeds=1)
     profile = load_profile("superconducting", noise_scale=20.0)
-    est = C.clifford_figures(schedule(compiled, profile), profile, max_shots=200)
+    est = C.clifford_figures(schedule(compiled, profile), profile, max_shots=200, estimator="returns")
     assert est["clifford_returns"] == 0 and est["clifford_shots"] == 200
     assert est["clifford_upper_bound"] is True and est["clifford_state_fidelity_se"] is None
     assert est["clifford_state_fidelity"] == pytest.approx(1 - 0.05 ** (1 / 200)) and est["clifford_state_fidelity"] > 0
     assert "upper bound" in est["clifford_label"] and "estimate" in est["clifford_label"]
     # a budget from upper bounds would be a difference of bounds (0 here): not a figure
-    budget = C.clifford_budget(schedule(compiled, profile), profile, max_shots=200, base=est)
+    budget = C.clifford_budget(schedule(compiled, profile), profile, max_shots=200, base=est, estimator="returns")
     assert all(budget[f"clifford_budget_state_{s}"] is None for s in ("two_qubit", "one_qubit", "idle"))
     assert budget["clifford_budget_readout"] is None and "no shot returned" in budget["error_budget_note"]
 

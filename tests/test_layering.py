@@ -25,7 +25,7 @@ ROOT = Path(__file__).resolve().parent.parent
 FOLDERS = {"toposcout": ROOT / "toposcout", "toposcout.compiler": ROOT / "compiler",
            "toposcout.service": ROOT / "service", "toposcout.topologies": ROOT / "topologies"}
 ORDER = ["version", "errors", "options", "rows", "model", "ansatz", "targets", "profiles", "devices", "compiled", "synthesis",
-         "compile", "noise", "simulate", "metrics", "fit", "trajectories", "clifford", "methods", "regions", "study", "parts", "bench"]
+         "compile", "noise", "simulate", "metrics", "fit", "trajectories", "parity", "clifford", "methods", "regions", "study", "parts", "bench"]
 
 
 def _modules() -> dict[str, Path]:
