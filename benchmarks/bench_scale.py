@@ -64,11 +64,16 @@ def case_line(name: str, r: dict, seconds: float, target: float) -> str:
         if r.get("mps_bond_dimension_reached") is not None:
             extra += f", bond reached {r['mps_bond_dimension_reached']} of cap {r['mps_max_bond_dimension']}"
         extra += ")"
-    if r.get("clifford_shots"):
+    if r.get("clifford_estimator"):
         f_c, se_c = r.get("clifford_state_fidelity"), r.get("clifford_state_fidelity_se")
         reached = "upper bound (no return)" if r.get("clifford_upper_bound") else f"rel. s.e. {se_c / f_c:.3f}"
-        extra = (f", {r['clifford_shots']} shots, {reached}, compile {r.get('compile_seconds') or 0:.1f} s, "
-                 f"clifford incl. budget {r.get('row_seconds', 0) - (r.get('compile_seconds') or 0):.1f} s")
+        drawn = (f"{r['clifford_shots']} shots" if r["clifford_estimator"] == "counted returns" else
+                 f"{r['clifford_samples']} samples, ESS {r.get('clifford_effective_samples') or 0:.0f}")
+        budget = "/".join(f"{r[k]:.2g}" if r.get(k) is not None else "-" for k in
+                          ("clifford_budget_state_two_qubit", "clifford_budget_state_one_qubit",
+                           "clifford_budget_state_idle", "clifford_budget_readout"))
+        extra = (f", {r['clifford_estimator']}, {drawn}, {reached}, budget 2q/1q/idle/readout {budget}, "
+                 f"compile {r.get('compile_seconds') or 0:.1f} s")
     clique = fmt(r, "clique_hellinger_mean")
     verdict = "met" if seconds < target else "MISSED"
     return (f"| {name} | {r.get('connectivity')} | {r.get('active_qubits')} | {r.get('two_qubit_gates')} | "
