@@ -25,6 +25,7 @@ from toposcout.compiler.errors import CompileError, TargetError
 from toposcout.compiler.synthesis.block import Block, append_gates, make_region, sweep_block, synthesize_block
 from toposcout.compiler.synthesis.placement import candidate_placements
 from toposcout.compiler.synthesis.steiner import Weights
+from toposcout.compiler.targets import build_target
 
 __all__ = ["compile_structured", "structured_layers", "search_budget", "log_cost"]
 
@@ -143,7 +144,18 @@ def log_cost(blocks: Sequence[Block], final: Sequence[int], weights: Weights) ->
     return c + sum(weights.of_qubit(q) for q in final)
 
 
-def _translation(gate_set) -> PassManager:
+def _translation(gate_set, connectivity) -> PassManager:
+    """cx/rz/rzz/u → the gate set. With per-coupler native gates (``gate_set.couplers``) the
+    translation reads a heterogeneous qiskit Target (:func:`build_target`): qiskit's
+    BasisTranslator translates each two-qubit gate into the instruction set of its own qubit pair
+    (its documented handling of non-global operations), so each coupler gets its own native gate."""
+    if gate_set.couplers:
+        target = build_target(connectivity, gate_set)
+        return PassManager([
+            InverseCancellation([CXGate()]),
+            BasisTranslator(SessionEquivalenceLibrary, None, target=target),
+            Optimize1qGatesDecomposition(target=target),
+        ])
     basis = list(gate_set.basis)
     return PassManager([
         InverseCancellation([CXGate()]),
@@ -192,8 +204,8 @@ def compile_structured(ansatz, connectivity, gate_set, *, seed: int = 0, weights
         qc.measure(where[v], v)
     synth_cx = sum(b.cnots for b in blocks)
     synth_zz = sum(b.two_qubit - b.cnots for b in blocks)
-    out = _translation(gate_set).run(qc)
-    check_coupling(out, connectivity)
+    out = _translation(gate_set, connectivity).run(qc)
+    check_coupling(out, connectivity, gate_set)
     final = measured_layout(out)
     if list(final) != where:
         raise CompileError(f"measurement map {list(final)} differs from the synthesised layout {where}",
