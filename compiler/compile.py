@@ -10,8 +10,10 @@ Strategies:
 * ``auto`` (default): both, keeping the better by two-qubit count then depth; the result
   records which won and both counts in ``extra``.
 
-Every result is checked: each two-qubit gate lies on an edge of the coupling map, and
-physical qubit ``final_layout[i]`` is measured into bit ``i``.
+Every result is checked: each two-qubit gate lies on an edge of the coupling map and is that
+coupler's native gate (a gate set with per-coupler gates, ``GateSet.couplers``, gives each
+coupler its own; the Target of :func:`build_target` is then heterogeneous), and physical qubit
+``final_layout[i]`` is measured into bit ``i``.
 
 Examples:
     >>> from toposcout.compiler.model import parse_model

@@ -6,6 +6,13 @@ where each variable sits; finally physical ``final_layout[i]`` is measured into 
 The CNOT+RZ circuit is translated to the gate set and its one-qubit runs merged with qiskit's
 own passes (no layout or routing pass runs, so nothing moves); the result is checked against
 the coupling map.
+
+Per-coupler native gates (``gate_set.couplers``, from a device file): the synthesis plans with
+the default two-qubit gate (``native_zz`` when that is rzz/rxx) and the translation reads the
+heterogeneous Target of :func:`~toposcout.compiler.targets.build_target`, so each two-qubit gate
+comes out as its coupler's own gate plus one-qubit gates. The synthesis's gate count does not
+see the per-coupler gates (a ZZ parity planned as one gate costs two CNOTs on a cx coupler);
+the error-aware weights do see each coupler's figures.
 """
 
 from __future__ import annotations
