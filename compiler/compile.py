@@ -10,8 +10,10 @@ Strategies:
 * ``auto`` (default): both, keeping the better by two-qubit count then depth; the result
   records which won and both counts in ``extra``.
 
-Every result is checked: each two-qubit gate lies on an edge of the coupling map, and
-physical qubit ``final_layout[i]`` is measured into bit ``i``.
+Every result is checked: each two-qubit gate lies on an edge of the coupling map and is that
+coupler's native gate (a gate set with per-coupler gates, ``GateSet.couplers``, gives each
+coupler its own; the Target of :func:`build_target` is then heterogeneous), and physical qubit
+``final_layout[i]`` is measured into bit ``i``.
 
 Examples:
     >>> from toposcout.compiler.model import parse_model
@@ -196,7 +198,7 @@ def compile_generic(
             best = (key, out, rec, seed)
     elapsed = time.perf_counter() - start
     _, out, rec, seed = best
-    check_coupling(out, connectivity)
+    check_coupling(out, connectivity, gate_set)
     initial = tuple(out.layout.initial_index_layout(filter_ancillas=True)) if out.layout else tuple(
         range(ansatz.num_qubits))
     return Compiled(
@@ -249,11 +251,11 @@ def compile_ansatz(
         return compile_generic(ansatz, connectivity, gate_set, **gkw)
     if strategy == "structured":
         out = _structured(ansatz, connectivity, gate_set, 0, profile, placements)
-        check_coupling(out.circuit, connectivity)
+        check_coupling(out.circuit, connectivity, gate_set)
         return out
     gen = compile_generic(ansatz, connectivity, gate_set, **gkw)
     st = _structured(ansatz, connectivity, gate_set, 0, profile, placements)
-    check_coupling(st.circuit, connectivity)
+    check_coupling(st.circuit, connectivity, gate_set)
     both = {
         "generic_two_qubit_gates": gen.two_qubit_gates(),
         "structured_two_qubit_gates": st.two_qubit_gates(),

@@ -72,6 +72,12 @@ class Compiled:
             "initial_layout": list(self.initial_layout),
             "final_layout": list(self.final_layout),
         }
+        if self.gate_set.couplers:  # per-coupler native gates: how many of each the circuit has
+            by: dict[str, int] = dict.fromkeys(self.gate_set.two_qubit_names, 0)
+            for ins in c.data:
+                if ins.operation.num_qubits == 2:
+                    by[ins.operation.name] = by.get(ins.operation.name, 0) + 1
+            out["two_qubit_by_gate"] = by
         out.update(self.extra)
         return out
 
@@ -88,9 +94,11 @@ def measured_layout(circuit: QuantumCircuit) -> tuple[int, ...]:
     return tuple(where[i] for i in range(circuit.num_clbits))
 
 
-def check_coupling(circuit: QuantumCircuit, connectivity: Connectivity) -> None:
-    """Raise :class:`CompileError` unless every two-qubit gate is on a coupling edge."""
+def check_coupling(circuit: QuantumCircuit, connectivity: Connectivity, gate_set: GateSet | None = None) -> None:
+    """Raise :class:`CompileError` unless every two-qubit gate is on a coupling edge and, with
+    ``gate_set``, is that coupler's native two-qubit gate (:meth:`GateSet.two_qubit_on`)."""
     edges = set(connectivity.edges)
+    native = None if gate_set is None else gate_set.native_of()
     for ins in circuit.data:
         if ins.operation.num_qubits == 2:
             a, b = (circuit.find_bit(q).index for q in ins.qubits)
@@ -99,6 +107,9 @@ def check_coupling(circuit: QuantumCircuit, connectivity: Connectivity) -> None:
                     f"{ins.operation.name} on qubits ({a}, {b}) is not an edge of {connectivity.name}",
                     field="circuit",
                 )
+            if native is not None and ins.operation.name != native(a, b):
+                raise CompileError(f"{ins.operation.name} on qubits ({a}, {b}) is not the native two-qubit gate "
+                                   f"{native(a, b)!r} of coupler {min(a, b)}-{max(a, b)}", field="circuit")
         elif ins.operation.num_qubits > 2:
             raise CompileError(f"{ins.operation.name} acts on {ins.operation.num_qubits} qubits", field="circuit")
 

@@ -11,6 +11,12 @@ coupling graph) and a :class:`~toposcout.compiler.profiles.DeviceProfile` whose 
 per-edge overrides carry the figures, so the noise model, the ESP and the placement all read
 the same numbers.
 
+Native gates: ``native_gate`` (a gate set of ``topologies/gate_sets.toml``; default cx) gives
+the one-qubit gates and the default two-qubit gate; a coupler's own ``native_gate`` (any
+two-qubit gate a gate set offers, :data:`~toposcout.compiler.targets.TWO_QUBIT_GATES`, or a
+gate set's name) replaces the two-qubit gate on that coupler only. :meth:`Device.gate_set`
+is the gate set a compilation for the chip uses; the coupler's figures are those of its own gate.
+
 Units as in profiles: T1, T2 in microseconds; durations in ns; errors are average gate
 infidelities in [0, 1); readout errors are P(read 1 | 0) and P(read 0 | 1).
 
@@ -31,6 +37,10 @@ Example::
 ...                   "coupler": [{"qubits": [1, 2], "two_qubit_error": 0.03}]})
 >>> d.profile.edge(2, 1).two_qubit_error, d.profile.edge(0, 1).two_qubit_error
 (0.03, 0.008)
+>>> d = parse_device({"name": "ex", "qubits": 3, "edges": [[0, 1], [1, 2]], "base": "superconducting",
+...                   "native_gate": "cz", "coupler": [{"qubits": [2, 1], "native_gate": "cx"}]})
+>>> d.gate_set().two_qubit_on(1, 2), d.gate_set().two_qubit_on(0, 1)
+('cx', 'cz')
 >>> parse_device({"name": "ex", "qubits": 2, "edges": [[0, 2]]})
 Traceback (most recent call last):
 ...
@@ -50,7 +60,8 @@ import networkx as nx
 
 from toposcout.compiler.errors import ProfileError, TargetError
 from toposcout.compiler.profiles import DeviceProfile, load_profile, max_infidelity
-from toposcout.compiler.targets import GATE_SETS, Connectivity, get_gate_set, make_connectivity
+from toposcout.compiler.targets import (GATE_SETS, TWO_QUBIT_GATES, Connectivity, GateSet, get_gate_set,
+                                        make_connectivity)
 
 __all__ = ["Device", "parse_device", "load_device", "device_dirs", "DEVICE_NAMES", "SCHEMA_PATH",
            "device_schema", "parse_device_text", "QUBIT_FIGURES", "COUPLER_FIGURES", "DEFAULT_KEYS"]
@@ -96,6 +107,14 @@ class Device:
     coordinates: tuple[tuple[float, float], ...] | None
     per_element: bool          # True when any qubit or coupler has figures of its own
     source: dict               # the normalised file content (plain JSON), what a task carries
+    #: couplers that name their own native two-qubit gate: ((a, b), gate), a < b, sorted
+    coupler_gates: tuple[tuple[tuple[int, int], str], ...] = ()
+
+    def gate_set(self, name: str | None = None) -> GateSet:
+        """The gate set of a compilation for this chip: ``name`` (default: the device's
+        ``native_gate``) for the one-qubit gates and the default two-qubit gate, and each coupler
+        that names its own native gate keeps it."""
+        return get_gate_set(name or self.native_gate).with_couplers(self.coupler_gates)
 
     @property
     def num_qubits(self) -> int:
@@ -258,6 +277,7 @@ def parse_device(d: Mapping[str, Any], *, name: str | None = None) -> Device:
         qubits[idx] = figs
     edge_set = set(edges)
     couplers: dict[tuple[int, int], dict] = {}
+    gates: dict[tuple[int, int], str] = {}
     for k, entry in enumerate(d.get("coupler") or ()):
         where = f"coupler[{k}]"
         pair = entry.get("qubits") if isinstance(entry, Mapping) else None
@@ -270,9 +290,12 @@ def parse_device(d: Mapping[str, Any], *, name: str | None = None) -> Device:
         if key in couplers:
             raise _err(f"coupler {a}-{b} is given twice", f"{where}.qubits")
         ng = entry.get("native_gate")
-        if ng is not None and ng not in (gate, two_qubit_name):
-            raise _err(f"{ng!r} differs from the device's native gate {two_qubit_name!r} (native_gate = {gate!r}); "
-                       "one native two-qubit gate per device is supported", f"coupler[{a}-{b}].native_gate")
+        if ng is not None:
+            if not isinstance(ng, str) or ng not in set(TWO_QUBIT_GATES) | set(GATE_SETS):
+                raise _err(f"unknown native two-qubit gate {ng!r}; choose one of {', '.join(TWO_QUBIT_GATES)} "
+                           f"(the two-qubit gates of the gate sets; the device's default is {two_qubit_name!r})",
+                           f"coupler[{a}-{b}].native_gate")
+            gates[key] = ng if ng in TWO_QUBIT_GATES else get_gate_set(ng).two_qubit
         couplers[key] = _figures(entry, COUPLER_FIGURES, f"coupler[{a}-{b}]", ("qubits", "native_gate"))
     coords = d.get("coordinates")
     if coords is not None:
@@ -306,11 +329,12 @@ def parse_device(d: Mapping[str, Any], *, name: str | None = None) -> Device:
               "coordinates": None if coords is None else [list(c) for c in coords],
               "defaults": defaults,
               "qubit": [{"index": i, **f} for i, f in sorted(qubits.items())],
-              "coupler": [{"qubits": list(p), **f} for p, f in sorted(couplers.items())]}
+              "coupler": [{"qubits": list(p), **f, **({"native_gate": gates[p]} if p in gates else {})}
+                          for p, f in sorted(couplers.items())]}
     return Device(name=nm, description=str(d.get("description", "")), connectivity=conn, profile=profile,
                   native_gate=gate, coordinates=coords, per_element=bool(profile.qubit_overrides or
                                                                            profile.edge_overrides),
-                  source=source)
+                  source=source, coupler_gates=tuple(sorted(gates.items())))
 
 
 def load_device(spec: str | Path | Mapping[str, Any]) -> Device:

@@ -190,14 +190,15 @@ def _gate_objects(circuit: QuantumCircuit) -> dict[str, object]:
 
 def timed_target(circuit: QuantumCircuit, physical_qubits: Sequence[int], profile: DeviceProfile) -> Target:
     """A Target on the compact qubits with the profile's durations (dt = 1 ns) for exactly
-    the gates and qubit pairs the circuit uses (both directions of each pair)."""
+    the gates and qubit pairs the circuit uses (both directions of each pair; each two-qubit
+    gate on the pairs it is used on, so a coupler's duration belongs to its own native gate)."""
     n = len(physical_qubits)
     t = Target(num_qubits=n, dt=DT)
-    pairs: set[tuple[int, int]] = set()
+    pairs: dict[str, set[tuple[int, int]]] = {}  # each two-qubit gate on its own qubit pairs (per-coupler gates)
     for ins in circuit.data:
         if ins.operation.num_qubits == 2 and ins.operation.name not in _NON_GATES:
             a, b = (circuit.find_bit(q).index for q in ins.qubits)
-            pairs.update({(a, b), (b, a)})
+            pairs.setdefault(ins.operation.name, set()).update({(a, b), (b, a)})
     for name, gate in _gate_objects(circuit).items():
         if gate.num_qubits == 1:
             t.add_instruction(gate, {(q,): InstructionProperties(
@@ -205,7 +206,7 @@ def timed_target(circuit: QuantumCircuit, physical_qubits: Sequence[int], profil
                 for q in range(n)})
         else:
             props = {}
-            for a, b in sorted(pairs):
+            for a, b in sorted(pairs[name]):
                 dur = _ns(profile.edge(physical_qubits[a], physical_qubits[b]).two_qubit_ns)
                 props[(a, b)] = InstructionProperties(duration=dur * DT)
             t.add_instruction(gate, props)

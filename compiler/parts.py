@@ -59,15 +59,14 @@ def _context(task: Mapping[str, Any]):
     from toposcout.compiler.ansatz import build_ansatz
     from toposcout.compiler.model import parse_model
     from toposcout.compiler.study import TASK_DEFAULTS, _compiled, _profile, connectivity_spec, task_connectivity
-    from toposcout.compiler.targets import get_gate_set
 
     t = dict(TASK_DEFAULTS)
     t.update(task)
     spec = connectivity_spec(t["connectivity"])
     model = parse_model(dict(t["model"]), "json")
     ansatz = build_ansatz(model, family=t["family"], layers=t["layers"], seed=t["seed"])
-    conn, _device = task_connectivity(t, model, spec)
-    (compiled, _placed), _reused = _compiled(ansatz, conn, get_gate_set(t["gate_set"]), t, None)
+    conn, _device, gate_set = task_connectivity(t, model, spec)
+    (compiled, _placed), _reused = _compiled(ansatz, conn, gate_set, t, None)
     return t, ansatz, compiled, _profile(t["profile"], t["noise_scale"])
 
 

@@ -93,6 +93,7 @@ _REGIONS: "OrderedDict[str, list]" = OrderedDict()
 def _ranked_regions(ansatz, conn, gate_set, t, profile, objective) -> list[tuple[float, Any, list[int]]]:
     key = json.dumps({"model": ansatz.model.to_dict(), "family": t["family"], "layers": t["layers"],
                       "seed": t["seed"], "connectivity": conn.to_dict(), "gate_set": gate_set.name,
+                      "coupler_gates": [[list(p), g] for p, g in gate_set.couplers],
                       "strategy": t["strategy"], "seeds": t["seeds"], "profile": profile.to_dict(),
                       "objective": objective, "regions": t["regions"]}, sort_keys=True, default=str)
     if key in _REGIONS:

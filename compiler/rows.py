@@ -105,6 +105,8 @@ ROW_FIELDS: tuple[RowField, ...] = (
     _F("physical_qubits", "qubits of the connectivity instance", "qubits", "int", "phys", "compile", label="qubits"),
     _F("active_qubits", "qubits the compiled circuit touches", "qubits", "int", "active", "compile"),
     _F("two_qubit_gates", "two-qubit gates of the compiled circuit", "gates", "int", "2q", "compile", label="2q gates"),
+    _F("two_qubit_by_gate", "two-qubit gate name → count in the compiled circuit (devices whose couplers have "
+       "different native gates)", "gates", "object", group="compile"),
     _F("swaps", "SWAPs routing inserted (before later optimisation merged any)", "gates", "int", "swaps",
        "compile", label="SWAPs"),
     _F("depth", "depth of the compiled circuit without measurement", "layers", "int", "depth", "compile"),

@@ -319,10 +319,9 @@ def run_task(task: Mapping[str, Any], *, limits: Limits | None = None) -> dict:
         row.update(family=t["family"], layers=t["layers"], variables=model.num_variables,
                    terms=st["terms"], lower_bound_two_qubit=st["lower_bound_two_qubit"],
                    logical_cnots=st["cnots"], logical_depth=st["depth"])
-        conn, device_name = task_connectivity(t, model, spec)
+        conn, device_name, gate_set = task_connectivity(t, model, spec)
         if device_name is not None:
             row["device"] = device_name
-        gate_set = get_gate_set(t["gate_set"])
         row["connectivity"] = conn.name
         row["connectivity_family"] = conn.family
         (compiled, placed), reused = _compiled(ansatz, conn, gate_set, t, limits)
@@ -363,16 +362,17 @@ _COMPILED_SIZE = 8
 
 
 def task_connectivity(t: dict[str, Any], model, spec: Mapping[str, Any]):
-    """(connectivity, device name or None) of a task; a device's figures become ``t["profile"]``."""
+    """(connectivity, device name or None, gate set) of a task; a device's figures become
+    ``t["profile"]`` and its couplers' own native gates join the task's gate set."""
     if t.get("device") is None:
         return make_connectivity(spec["family"], model.num_variables, size=spec["size"], edges=spec["edges"],
-                                 name=spec.get("name"), positions=spec.get("positions")), None
+                                 name=spec.get("name"), positions=spec.get("positions")), None, get_gate_set(t["gate_set"])
     from toposcout.compiler.devices import parse_device  # only device tasks need the device reader
 
     dev = parse_device(t["device"])
     dev.check_fits(model.num_variables)
     t["profile"] = dev.profile.to_dict()  # the chip's figures are the row's profile
-    return dev.connectivity, dev.name
+    return dev.connectivity, dev.name, dev.gate_set(t["gate_set"])
 
 
 def _compiled(ansatz, conn, gate_set, t: Mapping[str, Any], limits) -> tuple[Any, bool]:
@@ -384,6 +384,7 @@ def _compiled(ansatz, conn, gate_set, t: Mapping[str, Any], limits) -> tuple[Any
     aware = has_per_element(profile) or t["placement"] == "errors"
     key = json.dumps({"model": ansatz.model.to_dict(), "family": t["family"], "layers": t["layers"],
                       "seed": t["seed"], "connectivity": conn.to_dict(), "gate_set": t["gate_set"],
+                      "coupler_gates": [[list(p), g] for p, g in gate_set.couplers],
                       "strategy": t["strategy"], "seeds": t["seeds"], "limits": repr(limits), "version": __version__,
                       "placement": t["placement"], "profile": profile.to_dict() if aware else None,
                       "regions": t["regions"], "region_rank": t["region_rank"]},

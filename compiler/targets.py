@@ -20,7 +20,7 @@ from __future__ import annotations
 import math
 import re
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from functools import lru_cache
 from pathlib import Path
 from typing import Sequence
@@ -49,6 +49,7 @@ __all__ = [
     "GATE_SETS",
     "Connectivity",
     "GateSet",
+    "TWO_QUBIT_GATES",
     "make_connectivity",
     "check_edge_list",
     "parse_connectivity",
@@ -435,15 +436,55 @@ def parse_connectivity(spec: str, num_variables: int) -> Connectivity:
 
 @dataclass(frozen=True)
 class GateSet:
-    """A native basis: one entangling gate and some single-qubit gates."""
+    """A native basis: one entangling gate and some single-qubit gates.
+
+    couplers: default () (one two-qubit gate everywhere); else the couplers whose native
+        two-qubit gate is not ``two_qubit``, as ``((a, b), gate)`` with a < b, sorted (a device
+        file's per-coupler ``native_gate``); see :meth:`with_couplers`.
+
+    >>> gs = get_gate_set("cz").with_couplers({(2, 1): "cx", (0, 1): "cz"})
+    >>> gs.couplers, gs.two_qubit_on(1, 2), gs.two_qubit_on(0, 1), gs.two_qubit_names
+    ((((1, 2), 'cx'),), 'cx', 'cz', ('cz', 'cx'))
+    """
 
     name: str
     one_qubit: tuple[str, ...]
     two_qubit: str
+    couplers: tuple[tuple[tuple[int, int], str], ...] = ()
 
     @property
     def basis(self) -> tuple[str, ...]:
-        return (self.two_qubit,) + self.one_qubit
+        """Every native gate name: the two-qubit gates (the default first), then the one-qubit ones."""
+        return self.two_qubit_names + self.one_qubit
+
+    @property
+    def two_qubit_names(self) -> tuple[str, ...]:
+        """The two-qubit gates of the set: the default, then the couplers' others (sorted)."""
+        return (self.two_qubit,) + tuple(sorted({g for _, g in self.couplers} - {self.two_qubit}))
+
+    def two_qubit_on(self, a: int, b: int) -> str:
+        """The native two-qubit gate of the coupler between physical qubits ``a`` and ``b``."""
+        return dict(self.couplers).get((min(a, b), max(a, b)), self.two_qubit)
+
+    def native_of(self):
+        """``native(a, b) -> gate name`` for many look-ups (the coupler table built once)."""
+        local, default = dict(self.couplers), self.two_qubit
+        return lambda a, b: local.get((min(a, b), max(a, b)), default)
+
+    def with_couplers(self, gates) -> "GateSet":
+        """This gate set with per-coupler two-qubit gates (``{(a, b): gate}`` or pairs of those);
+        couplers whose gate is this set's ``two_qubit`` are not listed (they use the default).
+        Raises TargetError on a gate no gate set offers (:data:`TWO_QUBIT_GATES`)."""
+        items = gates.items() if hasattr(gates, "items") else gates
+        out: dict[tuple[int, int], str] = {}
+        for (a, b), gate in items:
+            if gate not in TWO_QUBIT_GATES:
+                raise TargetError(f"coupler[{min(a, b)}-{max(a, b)}].native_gate: unknown two-qubit gate {gate!r}; "
+                                  f"choose one of {', '.join(TWO_QUBIT_GATES)}",
+                                  field=f"coupler[{min(a, b)}-{max(a, b)}].native_gate")
+            if gate != self.two_qubit:
+                out[(min(a, b), max(a, b))] = gate
+        return replace(self, couplers=tuple(sorted(out.items())))
 
 
 def get_gate_set(name: str) -> GateSet:
@@ -453,6 +494,10 @@ def get_gate_set(name: str) -> GateSet:
         raise TargetError(f"unknown gate set {name!r}; choose one of {', '.join(cat)}", field="gate_set")
     e = cat[name]
     return GateSet(name, tuple(e["one_qubit"]), e["two_qubit"])
+
+
+#: the two-qubit gates the gate sets offer: what a coupler's native gate may be.
+TWO_QUBIT_GATES: tuple[str, ...] = tuple(dict.fromkeys(e["two_qubit"] for e in gate_set_catalogue().values()))
 
 
 _GATES = {
@@ -480,8 +525,15 @@ def build_target(connectivity: Connectivity, gate_set: GateSet, *, properties=No
     t = Target(num_qubits=n, dt=1e-9)
     for g in gate_set.one_qubit:
         t.add_instruction(_GATES[g](), {(q,): prop(g, (q,)) for q in range(n)})
+    # each coupler (both directions) carries its own native two-qubit gate: with per-coupler gates
+    # the Target is heterogeneous, and qiskit's BasisTranslator, UnitarySynthesis and
+    # GatesInBasis read the instruction set of each qubit pair (qiskit 2.x: non-global operations)
     directed = [(a, b) for a, b in connectivity.edges] + [(b, a) for a, b in connectivity.edges]
-    t.add_instruction(_GATES[gate_set.two_qubit](), {e: prop(gate_set.two_qubit, e) for e in directed})
+    native = gate_set.native_of()
+    for name in gate_set.two_qubit_names:
+        on = [e for e in directed if native(*e) == name]
+        if on:
+            t.add_instruction(_GATES[name](), {e: prop(name, e) for e in on})
     t.add_instruction(Measure(), {(q,): prop("measure", (q,)) for q in range(n)})
     t.add_instruction(Delay(Parameter("t")), {(q,): None for q in range(n)})
     return t

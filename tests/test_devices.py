@@ -106,7 +106,8 @@ BAD = [
     ({"qubit": [{"index": 2, "p0_given_1": 1.0}]}, "qubit[index=2].p0_given_1", "[0, 1)"),
     ({"coupler": [{"qubits": [1, 2], "two_qubit_error": -0.1}]}, "coupler[1-2].two_qubit_error", "[0, 1)"),
     ({"coupler": [{"qubits": [0, 3], "two_qubit_error": 0.1}]}, "coupler[0].qubits", "not a coupling edge"),
-    ({"coupler": [{"qubits": [0, 1], "native_gate": "cz"}]}, "coupler[0-1].native_gate", "one native"),
+    ({"coupler": [{"qubits": [0, 1], "native_gate": "iswap"}]}, "coupler[0-1].native_gate",
+     "choose one of cx, cz, rzz, rxx"),
     ({"qubit": [{"index": 9}]}, "qubit[0].index", "outside"),
     ({"base": "nosuch"}, "base", "unknown built-in profile"),
     ({"base": None}, "defaults.t1_us", "missing with no default"),
@@ -305,18 +306,28 @@ two_qubit_error = 0.012
 """
 
 
-def test_per_element_noise_model_equals_one_built_with_aer_primitives(chain_model):
+#: the same chip with per-coupler native gates: cz by default, coupler 1-2 cx, coupler 2-3 rzz
+MIXED_TEXT = DEVICE_TEXT.replace('base = "superconducting"', 'base = "superconducting"\nnative_gate = "cz"', 1).replace(
+    "two_qubit_ns = 420", 'two_qubit_ns = 420\nnative_gate = "cx"', 1).replace(
+    "two_qubit_error = 0.012", 'two_qubit_error = 0.012\nnative_gate = "rzz"', 1)
+
+
+@pytest.mark.parametrize("text", [DEVICE_TEXT, MIXED_TEXT], ids=["one-gate", "per-coupler-gates"])
+def test_per_element_noise_model_equals_one_built_with_aer_primitives(chain_model, text):
     from qiskit_aer.noise import ReadoutError, depolarizing_error, thermal_relaxation_error
 
     from toposcout.compiler.noise import build_noise_model, schedule
 
-    dev = parse_device_text(DEVICE_TEXT)
+    dev = parse_device_text(text)
     ans = build_ansatz(parse_model(chain_model(4)))
-    compiled = compile_ansatz(ans, dev.connectivity, CX, strategy="structured", profile=dev.profile)
+    compiled = compile_ansatz(ans, dev.connectivity, dev.gate_set(), strategy="structured", profile=dev.profile)
     sched = schedule(compiled, dev.profile)
     ours = build_noise_model(sched, dev.profile)
     # the reference reads the file itself: base values + the file's entries, nothing of our loader
-    raw = tomllib.loads(DEVICE_TEXT)
+    raw = tomllib.loads(text)
+    # each coupler's native gate as the file names it (the device's native_gate where it names none)
+    native = {tuple(e): raw.get("native_gate", "cx") for e in raw["edges"]}
+    native.update({tuple(sorted(e["qubits"])): e["native_gate"] for e in raw["coupler"] if "native_gate" in e})
     from toposcout.compiler.profiles import profile_dirs
 
     base = tomllib.loads((profile_dirs()[0] / "superconducting.toml").read_text())
@@ -329,7 +340,7 @@ def test_per_element_noise_model_equals_one_built_with_aer_primitives(chain_mode
     cfig = {tuple(e): {"two_qubit_error": base["gates"]["two_qubit_error"], "two_qubit_ns": base["gates"]["two_qubit_ns"]}
             for e in raw["edges"]}
     for e in raw["coupler"]:
-        cfig[tuple(sorted(e["qubits"]))].update({k: v for k, v in e.items() if k != "qubits"})
+        cfig[tuple(sorted(e["qubits"]))].update({k: v for k, v in e.items() if k not in ("qubits", "native_gate")})
 
     def relax(q, t):
         return thermal_relaxation_error(qfig[q]["t1_us"] * 1e3, qfig[q]["t2_us"] * 1e3, t)
@@ -344,6 +355,7 @@ def test_per_element_noise_model_equals_one_built_with_aer_primitives(chain_mode
                              relax(q, qfig[q]["one_qubit_ns"]))
         else:
             a, b = phys
+            assert name == native[tuple(sorted(phys))], (name, phys)  # the coupler's own gate carries its figures
             c = cfig[tuple(sorted(phys))]
             r, t = c["two_qubit_error"], c["two_qubit_ns"]
             fr, rel = f_pro(a, t) * f_pro(b, t), relax(a, t).expand(relax(b, t))
@@ -367,6 +379,8 @@ def test_per_element_noise_model_equals_one_built_with_aer_primitives(chain_mode
                 assert ours._default_quantum_errors[name] == expected(name, phys)
                 checked += 1
     assert checked >= 3
+    two = {ins.operation.name for ins in sched.circuit.data if ins.operation.num_qubits == 2}
+    assert two == set(native.values())  # every coupler's gate is used, so each is checked above
     for k, phys in enumerate(sched.physical_qubits):
         if k in sched.measured:
             q = qfig[phys]
