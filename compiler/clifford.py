@@ -88,7 +88,7 @@ from toposcout.compiler.noise import (
     _ns,
     schedule,
 )
-from toposcout.compiler.parity import (MIN_EFFECTIVE_SAMPLES, ParityEstimate, ParityProblem, estimate_cancellation,
+from toposcout.compiler.parity import (EXACT_RANK, MIN_EFFECTIVE_SAMPLES, ParityEstimate, ParityProblem, estimate_cancellation,
                                        independent_flips)
 from toposcout.compiler.profiles import DeviceProfile, depolarizing_parameter, relaxation_process_fidelity
 
@@ -424,11 +424,14 @@ def parity_problems(twin: CliffordCircuit) -> tuple[ParityProblem, ParityProblem
     return ParityProblem(state_sy, state_lc), (ParityProblem(read_sy, read_lc) if twin.readout else None)
 
 
-def _weighted_is_better(state: ParityProblem, rel_se: float, max_shots: int) -> bool:
-    """Counting returns needs about (1 - F) / (F rel_se^2) shots; F is at least the
-    no-error probability P0, so when even F = P0 would need more than a quarter of
-    ``max_shots`` the weighted stabilizer average is used (deterministic: every part of a
-    split row decides the same)."""
+def _weighted_is_better(state: ParityProblem, readout: ParityProblem | None, rel_se: float, max_shots: int) -> bool:
+    """The stabilizer average is used when it is exact (every span of rank <= EXACT_RANK:
+    no shot noise at all, in milliseconds), or when counting would be hopeless: counting
+    returns needs about (1 - F) / (F rel_se^2) shots, F is at least the no-error
+    probability P0, and even F = P0 would need more than a quarter of ``max_shots``.
+    Deterministic, so every part of a split row decides the same."""
+    if state.rank <= EXACT_RANK and (readout is None or readout.rank <= EXACT_RANK):
+        return True
     p0 = math.exp(state.no_fire_log_probability())
     return p0 <= 0 or (1 - p0) / (p0 * rel_se * rel_se) > max_shots / 4
 
@@ -510,7 +513,7 @@ def clifford_tally(sched: Scheduled, profile: DeviceProfile, switches: NoiseSwit
     twin = clifford_circuit(sched, profile, switches)
     if twin.checked and estimator != "returns":
         state, readout = parity_problems(twin)
-        if estimator == "weighted" or (estimator == "auto" and _weighted_is_better(state, rel_se, max_shots)):
+        if estimator == "weighted" or (estimator == "auto" and _weighted_is_better(state, readout, rel_se, max_shots)):
             est = {"state": estimate_cancellation(state, rel_se=rel_se, max_samples=max_shots, seed=seed).to_dict(),
                    "readout": None if readout is None else estimate_cancellation(
                        readout, rel_se=rel_se, max_samples=max_shots, seed=seed + 1).to_dict()}

@@ -44,15 +44,21 @@ def test_a_seed_offset_takes_the_seeds_of_those_positions_of_the_unsplit_run(cha
     assert len(set(round(f, 12) for f in whole.fidelities)) > 3   # trajectories differ from each other
 
 
-@pytest.mark.parametrize("opts,keys", [
+_CLIFFORD_KEYS = ["clifford_state_fidelity", "clifford_read_fidelity", "clifford_budget_state_two_qubit"]
+
+
+# clifford rows of 22 variables: a span of rank 22 is above the exact limit (20), so the parts
+# really sample: counted returns at noise scale 2, the weighted stabilizer average at 15
+@pytest.mark.parametrize("opts,keys,n,scale", [
     (dict(method="trajectories", trajectories=240), ["state_fidelity", "clique_hellinger_mean",
-                                                     "budget_state_two_qubit"]),
-    (dict(method="trajectories", precision=0.03, error_budget=False), ["state_fidelity", "hellinger_fidelity"]),
-    (dict(method="clifford"), ["clifford_state_fidelity", "clifford_read_fidelity",
-                               "clifford_budget_state_two_qubit"]),
-])
-def test_a_row_in_two_parts_has_the_fields_and_figures_of_the_row_in_one(chain_model, opts, keys):
-    task = make_tasks(chain_model(6), ["line"], seeds=1, strategy="structured", noise_scale=2.0, **opts)[0]
+                                                     "budget_state_two_qubit"], 6, 2.0),
+    (dict(method="trajectories", precision=0.03, error_budget=False), ["state_fidelity", "hellinger_fidelity"],
+     6, 2.0),
+    (dict(method="clifford"), _CLIFFORD_KEYS, 22, 2.0),
+    (dict(method="clifford"), _CLIFFORD_KEYS, 22, 15.0),
+], ids=["trajectories", "precision", "clifford-returns", "clifford-weighted"])
+def test_a_row_in_two_parts_has_the_fields_and_figures_of_the_row_in_one(chain_model, opts, keys, n, scale):
+    task = make_tasks(chain_model(n), ["line"], seeds=1, strategy="structured", noise_scale=scale, **opts)[0]
     one = run_task(task)
     two = run_split(task, 2)
     assert one["noise_error"] is None and two["noise_error"] is None
@@ -68,8 +74,10 @@ def test_a_row_in_two_parts_has_the_fields_and_figures_of_the_row_in_one(chain_m
         # pooled over the parts: about the requested standard error
         assert two["state_fidelity_se"] < 0.03 * 1.25 and "2 of 2 parts" in two["trajectories_stop"]
     if opts["method"] == "clifford":
-        assert two["clifford_shots"] >= 2 * 4096 and two["clifford_state_fidelity_se"] <= 0.05 * 1.25 * \
-            two["clifford_state_fidelity"]
+        assert two["clifford_estimator"] == one["clifford_estimator"] == (
+            "counted returns" if scale == 2.0 else "weighted stabilizer average")
+        drawn = two["clifford_shots"] if scale == 2.0 else two["clifford_samples"]
+        assert drawn >= 2 * 2048 and two["clifford_state_fidelity_se"] <= 0.05 * 1.25 * two["clifford_state_fidelity"]
 
 
 def test_rows_that_cannot_be_split_come_back_whole(chain_model):
@@ -113,7 +121,7 @@ def test_the_dask_executor_splits_one_row_across_two_workers(chain_model, memory
     distributed = pytest.importorskip("distributed")
     from toposcout.service.execution.dask import WORKER_PRELOAD, DaskExecutor
 
-    task = make_tasks(chain_model(6), ["line"], seeds=1, strategy="structured", noise_scale=2.0,
+    task = make_tasks(chain_model(22), ["line"], seeds=1, strategy="structured", noise_scale=2.0,
                       method="clifford")[0]
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, memory_limit=2 * 2**30,
                                   host="127.0.0.1", dashboard_address=None, preload=list(WORKER_PRELOAD)) as c:
