@@ -38,6 +38,14 @@ What is computed (one scheduled circuit, one device profile):
   because the exact figure traces the ancillas out; when that group has m < k generators the
   return rate is multiplied by 2^(m-k) (Tr(rho_ideal rho) for a mixed stabilizer state).
   Under Pauli noise this return rate *is* Tr(rho_ideal rho) of the twin (exact, no bias).
+* **Three estimators** (``clifford_estimator``). The twin's detector error model (stim) is a
+  :class:`toposcout.compiler.parity.ParityProblem`: when its span has rank <= 20 the return
+  probability is computed exactly (``exact stabilizer average``); above that, shots are
+  counted (``counted returns``, below) unless even the no-error probability would need more
+  than a quarter of ``max_shots``, and then the importance-sampled ``weighted stabilizer
+  average`` of :mod:`toposcout.compiler.parity` is used. The read fidelity is the state one
+  times the probability that the readout flips alone cancel on the read checks (the only
+  mechanisms that reach them apart from the state checks').
 * **Shots** are drawn in batches from stim's compiled detector sampler until the binomial
   standard error sqrt(F(1-F)/N) is at most ``rel_se`` x F, or ``max_shots`` is reached.
   When no shot returns, the figure is the one-sided 95 % upper bound 1 - 0.05^(1/N) (about
