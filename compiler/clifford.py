@@ -557,6 +557,16 @@ def figures_from_tally(tally: Tally, rel_se: float) -> dict[str, Any]:
     }
 
 
+def _estimator_note(state: ParityEstimate) -> str:
+    if state.exact:
+        return "; the twin's fidelity computed exactly (no sampling error)"
+    note = (f"; a weighted average over {state.samples} sampled stabilizers "
+            f"({state.effective_samples:.0f} effective)")
+    if state.effective_samples < MIN_EFFECTIVE_SAMPLES:
+        note += ": too few effective samples, its standard error may be too small"
+    return note
+
+
 def _weighted_figures(tally: Tally, rel_se: float) -> dict[str, Any]:
     state = ParityEstimate.from_dict(tally.weighted["state"])
     readout = tally.weighted["readout"]
@@ -584,9 +594,7 @@ def _weighted_figures(tally: Tally, rel_se: float) -> dict[str, Any]:
         "clifford_rounded_rotations": tally.rounded,
         "clifford_checked_stabilizers": tally.checked,
         "clifford_seconds": tally.seconds,
-        "clifford_label": CLIFFORD_LABEL + ("" if state.exact or state.effective_samples >= MIN_EFFECTIVE_SAMPLES else
-                                            f" (the weighted average reached only {state.effective_samples:.0f} "
-                                            "effective samples: its standard error may be too small)"),
+        "clifford_label": CLIFFORD_LABEL + _estimator_note(state),
     }
 
 

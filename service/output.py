@@ -16,7 +16,8 @@ __all__ = ["CAUTION", "CLIFFORD_NOTE", "rows_table", "write_csv", "write_json", 
 CAUTION = "Figures are a simulation under the stated noise model, not a promise about a device."
 #: shown under a table with clifford figures (the label of toposcout.compiler.clifford, shortened).
 CLIFFORD_NOTE = ("F clifford (est.): an estimate from the Clifford twin (angles rounded to multiples of pi/2, "
-                 "Pauli-twirled noise), not the exact state fidelity; '<' marks an upper bound (no shot returned).")
+                 "Pauli-twirled noise), not the exact state fidelity; '±' its sampling error (none when the twin "
+                 "is computed exactly); '<' marks an upper bound (no shot returned).")
 
 
 def rows_table(rows: list[dict]) -> str:
@@ -67,7 +68,9 @@ def rows_table(rows: list[dict]) -> str:
             f, se = r.get("clifford_state_fidelity"), r.get("clifford_state_fidelity_se")
             if f is None:
                 return ""
-            return f"<{f:.3g}" if r.get("clifford_upper_bound") else f"~{f:.3g}±{se or 0:.2g}"
+            if r.get("clifford_upper_bound"):
+                return f"<{f:.3g}"
+            return f"~{f:.3g}" if r.get("clifford_estimator") == "exact stabilizer average" else f"~{f:.3g}±{se or 0:.2g}"
         v = r.get(key)
         if v is None:
             return ""

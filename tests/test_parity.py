@@ -191,3 +191,20 @@ def test_auto_estimator_gives_a_figure_where_no_shot_would_return():
     assert budget["clifford_budget_state_two_qubit"] > 0 and "error_budget_note" not in budget
     with pytest.raises(Exception, match="estimator"):
         C.clifford_figures(sched, profile, estimator="guess")
+
+
+def test_the_cli_table_marks_each_estimator():
+    from toposcout.service.output import CLIFFORD_NOTE, rows_table
+
+    base = {"connectivity": "line-4", "method": "clifford"}
+    rows = [dict(base, clifford_state_fidelity=0.5161, clifford_state_fidelity_se=0.0,
+                 clifford_estimator="exact stabilizer average"),
+            dict(base, clifford_state_fidelity=5.6e-16, clifford_state_fidelity_se=2.8e-17,
+                 clifford_estimator="weighted stabilizer average"),
+            dict(base, clifford_state_fidelity=1.5e-6, clifford_upper_bound=True, clifford_estimator="counted returns")]
+    text = rows_table(rows)
+    lines = text.splitlines()
+    assert "~0.516 " in lines[1] + " " and "±" not in lines[1]       # exact: no sampling error to show
+    assert "~5.6e-16±2.8e-17" in lines[2]
+    assert "<1.5e-06" in lines[3]
+    assert CLIFFORD_NOTE in text
