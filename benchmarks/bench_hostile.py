@@ -1,6 +1,7 @@
-"""The two explosive requests of issue 16 against a live server: answer time and the API
-process's memory growth (RSS, sampled every 10 ms while the request is in flight), and /healthz
-latency while they are refused.
+"""The two explosive requests (a UAI header declaring 1e9 variables, a node-link graph with
+3^15 maximal cliques) against a live server: answer time and the API process's memory growth
+(RSS, sampled every 10 ms while the request is in flight), and /healthz latency while they are
+refused.
 
   * a 46-byte UAI text that declares 1,000,000,000 variables,
   * a 45-node node-link graph (every pair joined except within groups of three) with 3^15

@@ -5,7 +5,7 @@
     .venv/bin/python benchmarks/bench_scale.py --cases plaq64-grid,plaq64-heavy-hex --skip-cost-law   # some cases
 
 Prints, for each case, the row's method, its figures with standard errors and its wall time
-against the target of issue 12, then the cost law of each method (seconds against active
+against its speed target (the device-scale targets), then the cost law of each method (seconds against active
 qubits and two-qubit count). Models are chains of pairs on a line (active qubits = variables)
 and the 8x8 2x2-plaquette example (examples/parking-bays-64.json), the superconducting-like
 profile at scale 1, structured compilation, one seed. Every figure is a simulation under the

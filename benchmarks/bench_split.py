@@ -1,4 +1,4 @@
-"""Speed-up of one row split across Dask workers (issue 12, item 5).
+"""Speed-up of one row split across Dask workers.
 
     .venv/bin/python benchmarks/bench_split.py                 # 20-variable chain, trajectories to SE 0.01
     .venv/bin/python benchmarks/bench_split.py --variables 16 --precision 0.02   # a quicker case

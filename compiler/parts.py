@@ -134,7 +134,10 @@ def plan_row(task: Mapping[str, Any], parts: int) -> dict[str, Any]:
                 specs.append({"kind": "trajectories", "off": off, "part": p, "of": parts, "seed": seed,
                               "seed_offset": p * cap, "max_trajectories": cap, "n_trajectories": counts[p],
                               "precision": prec, "trajectory_method": plan.trajectory_method,
-                              "time_budget_seconds": left})
+                              "time_budget_seconds": left,
+                              # the first 128 trajectories of the row save the full distribution,
+                              # shared out so that splitting does not multiply that cost
+                              "distribution_trajectories": int(math.ceil(T.DISTRIBUTION_TRAJECTORIES / parts))})
     else:
         from toposcout.compiler.clifford import part_seed
 
@@ -172,7 +175,10 @@ def run_part(part: Mapping[str, Any]) -> dict[str, Any]:
                                      max_trajectories=part["max_trajectories"],
                                      time_budget_seconds=part["time_budget_seconds"],
                                      memory_budget_bytes=M._memory_budget(t), seed=part["seed"],
-                                     seed_offset=part["seed_offset"], method=part["trajectory_method"], **kw)
+                                     seed_offset=part["seed_offset"], method=part["trajectory_method"],
+                                     distribution_trajectories=(part.get("distribution_trajectories") if
+                                                                len(ansatz.model.variables) >
+                                                                T.DISTRIBUTION_CAP_FROM_VARIABLES else None), **kw)
             return {**head, "result": run}
         if part["kind"] == "clifford":
             from toposcout.compiler.clifford import clifford_tally
@@ -194,12 +200,14 @@ def merge_runs(runs: Sequence[T.TrajectoryRun], parts: int) -> T.TrajectoryRun:
     dist = None if first.dist_sums is None else np.sum([r.dist_sums for r in runs], axis=0)
     cliques = [np.sum([r.clique_sums[i] for r in runs], axis=0) for i in range(len(first.clique_sums))]
     counts = np.sum([r.counts for r in runs], axis=0)
+    dist_counts = None if first.dist_sums is None else np.sum([r.distribution_counts for r in runs], axis=0)
     bonds = [r.bond_reached for r in runs if r.bond_reached is not None]
     stops = sorted({r.stop for r in runs})
     stop = f"{len(runs)} of {parts} parts: " + "; ".join(stops) if len(runs) > 1 else first.stop
     return T.TrajectoryRun(method=first.method, fidelities=fids, dist_sums=dist, clique_sums=cliques, counts=counts,
                            seconds=sum(r.seconds for r in runs), stop=stop, scope=first.scope,
-                           bond_reached=max(bonds) if bonds else None)
+                           bond_reached=max(bonds) if bonds else None,
+                           dist_counts=None if dist_counts is None or (dist_counts == counts).all() else dist_counts)
 
 
 def merge_parts(plan: Mapping[str, Any], results: Sequence[Mapping[str, Any]]) -> dict[str, Any]:

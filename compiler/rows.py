@@ -196,6 +196,9 @@ ROW_FIELDS: tuple[RowField, ...] = (
        kind="str", label="worst clique"),
     _F("clique_hellinger", "per clique: {clique: [names], fidelity, se (trajectories)}", kind="list"),
     _F("trajectories", "trajectories run", "trajectories", "int", short="traj"),
+    _F("distribution_trajectories", "trajectories behind the full-distribution figures (Hellinger, TVD, KL, MMD): "
+       "all of them, or with matrix product states above 12 variables the first 128 (shared out among the "
+       "parts of a split row; saving 2^k probabilities costs far more than the trajectory)", "trajectories", "int"),
     _F("trajectory_method", "qiskit-aer method of the trajectories (statevector, matrix_product_state)", kind="str"),
     _F("trajectories_stop", "why the trajectories stopped (count reached, precision reached, time budget)",
        kind="str"),

@@ -158,3 +158,35 @@ def test_api_method_field_and_row_fields(api):
     page = api.get(f"/studies/{sid}")
     assert page.status_code == 200 and "Clique marginals" in page.text and "trajectories" in page.text
     assert row["clique_hellinger_worst"].split(",")[0] in page.text
+
+
+def test_a_weakly_entangled_row_runs_as_matrix_product_states_an_entangled_one_as_a_statevector():
+    # from 16 active qubits a 2-trajectory MPS pilot (bond cap 16) decides. The decision: MPS when
+    # its trajectories plus the full-distribution saves of the first 128 are estimated cheaper
+    sched, profile = _sched(16)
+    cheap = plan_method(sched, profile, method="trajectories", memory_budget_bytes=8 * 2**30, trajectories=2000,
+                        time_budget_seconds=1e6, mps_pilot_seconds=lambda: 0.005)
+    costly = plan_method(sched, profile, method="trajectories", memory_budget_bytes=8 * 2**30, trajectories=2000,
+                         time_budget_seconds=1e6, mps_pilot_seconds=lambda: 10.0)
+    few = plan_method(sched, profile, method="trajectories", memory_budget_bytes=8 * 2**30, trajectories=8,
+                      time_budget_seconds=1e6, mps_pilot_seconds=lambda: 0.005)
+    assert cheap.trajectory_method == "matrix_product_state" and "matrix_product_state" in cheap.reason
+    assert costly.trajectory_method == "statevector"
+    assert few.trajectory_method == "statevector"  # 8 trajectories all save the distribution: no gain
+    small, p6 = _sched(6)
+    assert plan_method(small, p6, method="trajectories", memory_budget_bytes=8 * 2**30, trajectories=2000,
+                       time_budget_seconds=1e6, mps_pilot_seconds=lambda: 1e-6).trajectory_method == "statevector"
+    # what the pilot measures: a chain keeps bond 2, every pair of 16 variables joined (all-to-all)
+    # reaches the pilot's cap of 16 (then the estimate is scaled by (256/16)^3 and the statevector stays)
+    from toposcout.compiler import trajectories as T
+    from toposcout.compiler.metrics import clique_indices
+
+    dense = parse_model({"name": "k16", "variables": [f"x{i}" for i in range(16)],
+                         "cliques": [[f"x{i}", f"x{j}"] for i in range(16) for j in range(i + 1, 16)]})
+    c = compile_ansatz(build_ansatz(dense, seed=0), make_connectivity("all-to-all", 16), get_gate_set("cx"),
+                       strategy="structured", seeds=1)
+    ds = schedule(c, profile)
+    for s_, model_cliques, below in ((sched, [(i, i + 1) for i in range(15)], True), (ds, clique_indices(dense), False)):
+        run = T.run_trajectories(s_, profile, model_cliques, n_trajectories=2, method="matrix_product_state",
+                                 max_bond=16, distribution_trajectories=0)
+        assert (run.bond_reached < 16) is below, run.bond_reached

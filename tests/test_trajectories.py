@@ -142,3 +142,45 @@ def test_jackknife_of_a_linear_function_has_no_bias_and_the_textbook_se():
     val, se, bias = T.jackknife(x.copy(), np.ones(10, dtype=int), lambda m: float(m[0]))
     assert val == pytest.approx(x.mean()) and abs(bias) < 1e-12
     assert se == pytest.approx(x.std(ddof=1) / np.sqrt(10))
+
+
+# --- the full distribution from the first trajectories only (matrix product states) ---------
+def test_capped_distribution_uses_the_first_trajectories_and_changes_no_trajectory(chain_model):
+    # common practice: trajectory i is seeded seed_simulator + i whatever the batching, so a run
+    # that stops saving the 2^k probabilities after 40 trajectories has the same 120 trajectories
+    # as one that saves them all, and its distribution sums are those of the first 40
+    m = parse_model(chain_model(6))
+    c = compile_ansatz(build_ansatz(m, seed=0), make_connectivity("line", 6), get_gate_set("cx"),
+                       strategy="structured", seeds=1)
+    profile = load_profile("superconducting", noise_scale=3.0)
+    s = schedule(c, profile)
+    kw = dict(method="matrix_product_state", seed=4)
+    capped = T.run_trajectories(s, profile, clique_indices(m), n_trajectories=120, distribution_trajectories=40, **kw)
+    first = T.run_trajectories(s, profile, clique_indices(m), n_trajectories=40, **kw)
+    full = T.run_trajectories(s, profile, clique_indices(m), n_trajectories=120, **kw)
+    assert capped.fidelities == pytest.approx(full.fidelities, abs=1e-12)
+    assert int(capped.distribution_counts.sum()) == 40 and int(capped.counts.sum()) == 120
+    assert np.allclose(capped.dist_sums, first.dist_sums, atol=1e-9)
+    assert full.dist_counts is None and np.array_equal(full.distribution_counts, full.counts)
+    with pytest.raises(T.ToposcoutError, match="distribution_trajectories"):
+        T.run_trajectories(s, profile, clique_indices(m), n_trajectories=8, distribution_trajectories=-1, **kw)
+
+
+def test_capped_distribution_figures_agree_with_the_density_matrix():
+    # the distribution figures of the first 200 of 400 MPS trajectories against the exact density
+    # matrix (qiskit-aer), the state fidelity from all 400
+    ansatz = build_ansatz(TRI, seed=2)
+    compiled = compile_ansatz(ansatz, make_connectivity("line", 6), get_gate_set("cx"), strategy="structured", seeds=1)
+    profile = load_profile("superconducting")
+    exact = noise_figures(compiled, ansatz, profile, error_budget=False)
+    sched = schedule(compiled, profile)
+    ideal = simulate_ideal(sched)
+    p = ideal.probabilities / ideal.probabilities.sum()
+    cliques = clique_indices(TRI)
+    run = T.run_trajectories(sched, profile, cliques, n_trajectories=400, seed=9, method="matrix_product_state",
+                             distribution_trajectories=200)
+    est = T.trajectory_figures(sched, profile, TRI, run, p_ideal=p, p_cliques=[marginal(p, c) for c in cliques])
+    assert est["trajectories"] == 400 and est["distribution_trajectories"] == 200
+    assert abs(est["state_fidelity"] - exact["state_fidelity"]) <= 3 * est["state_fidelity_se"]
+    for key in ("hellinger_fidelity", "tvd"):
+        assert abs(est[key] - exact[key]) <= 3 * est[f"{key}_se"] + abs(est[f"{key}_bias"]), key
