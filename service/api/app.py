@@ -36,6 +36,7 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI
 
 from toposcout.compiler.version import __version__
+from toposcout.service.api import preparing
 from toposcout.service.api.errors import error, install_error_handlers
 from toposcout.service.api.routers import catalogue, compile as compile_router, operations, studies
 from toposcout.service.execution.lifeline import die_with_parent
@@ -136,6 +137,7 @@ async def _lifespan(app: FastAPI):
     lane = ProcessLane(time_limit=settings.compile_time_limit_seconds)
     lane.start()
     app.state.store, app.state.lane = store, lane
+    preparing.pool(settings).warm(settings)  # requests are read and prepared there, not in this process
     _freeze_startup_heap()
     try:
         yield
