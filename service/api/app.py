@@ -25,6 +25,7 @@ takes no running work with it.
 
 from __future__ import annotations
 
+import asyncio
 import collections
 import gc
 import importlib
@@ -137,7 +138,8 @@ async def _lifespan(app: FastAPI):
     lane = ProcessLane(time_limit=settings.compile_time_limit_seconds)
     lane.start()
     app.state.store, app.state.lane = store, lane
-    preparing.pool(settings).warm(settings)  # requests are read and prepared there, not in this process
+    # requests are read and prepared there, not in this process: ready before the first request
+    await asyncio.to_thread(preparing.pool(settings).warm, settings)
     _freeze_startup_heap()
     try:
         yield

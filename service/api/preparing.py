@@ -203,16 +203,22 @@ class PreparePool:
         self._children = list(self._free.queue)
         self.stats = {"calls": 0, "timeouts": 0, "memory": 0}
 
-    def warm(self, settings: Any) -> None:
-        """Start the processes in the background (the first requests then need not wait for them)."""
-        def start() -> None:
-            for child in self._children:
-                try:
-                    child.ensure(settings)
-                except Exception as exc:  # the first call tries again and reports it
-                    log.warning("starting a preparation process: %s", exc)
+    def warm(self, settings: Any, timeout: float = 120.0) -> None:
+        """Start the processes (side by side) and wait for them, so the first requests find them ready;
+        a process that fails to start is started again by the first call that needs it."""
+        def start(child: _Child) -> None:
+            try:
+                child.ensure(settings)
+            except Exception as exc:  # the first call tries again and reports it
+                log.warning("starting a preparation process: %s", exc)
 
-        threading.Thread(target=start, daemon=True, name="toposcout-prepare-warm").start()
+        threads = [threading.Thread(target=start, args=(c,), daemon=True, name="toposcout-prepare-start")
+                   for c in self._children]
+        for t in threads:
+            t.start()
+        end = time.monotonic() + timeout
+        for t in threads:
+            t.join(max(0.0, end - time.monotonic()))
 
     def run(self, kind: str, payload: Any, filename: str | None, settings: Any, **options: Any) -> Prepared:
         try:
