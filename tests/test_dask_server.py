@@ -1,7 +1,9 @@
-"""The real server on a Dask cluster: killed while the cluster computes, restarted, nothing lost."""
+"""The real server on a Dask cluster: the server killed while the cluster computes and restarted, the
+scheduler killed and brought back, and a small load test (issue 16, item 6): nothing lost, nothing twice."""
 
 from __future__ import annotations
 
+import threading
 import time
 
 import httpx
@@ -107,8 +109,6 @@ def test_forty_submissions_from_eight_clients_on_dask(tmp_path, start_server, da
     """A small load test on a Dask cluster (issue 16, item 6): the per-owner cap exactly enforced under a
     burst, then 40 studies from 8 clients (each retried after a 429 with its Idempotency-Key): 0 lost,
     0 duplicated, 0 5xx."""
-    import threading
-
     cap = 3
     tokens = {f"client{i}": f"tok-load-{i}-0123456789" for i in range(8)} | {"burst": "tok-burst-0123456789"}
     procs = dask_processes.start_scheduler()  # no workers yet: what is accepted stays queued

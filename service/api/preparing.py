@@ -19,6 +19,7 @@ process can be stopped: a thread cannot.
   writable mappings, i.e. the heap and numpy's buffers; setrlimit(2)) at what it uses after
   start-up plus ``settings.prepare_memory_bytes``; a call that needs more gets a MemoryError
   there (or the child dies) and the request a 422 naming that cap.
+* **CPU**: the children run at niceness :data:`PREPARE_NICENESS`, below the API process.
 * Errors come back as they were raised (the same ToposcoutError class, message and field), so
   the answer is the one an in-process preparation gives.
 """
@@ -42,6 +43,11 @@ from toposcout.service.execution.lifeline import die_with_parent
 __all__ = ["PreparePool", "PrepareBusy", "prepare_request", "pool", "busy"]
 
 log = logging.getLogger("toposcout.api")
+
+
+#: the preparation processes' niceness (setpriority(2)): on a busy machine the kernel runs the API
+#: process, which only waits for them, before them
+PREPARE_NICENESS = 10
 
 
 class PrepareBusy(Exception):
@@ -85,6 +91,10 @@ def _run(kind: str, payload: Any, filename: str | None, settings: Any, options: 
 
 def _child_main(conn, parent_pid: int, memory_bytes: int | None, settings: Any) -> None:  # pragma: no cover
     die_with_parent(parent_pid, kernel=False)  # started from a request thread: the poll, not PR_SET_PDEATHSIG
+    try:  # the event loop's process goes first when a preparation and a request want the same core
+        os.nice(PREPARE_NICENESS)
+    except OSError:
+        pass
     _warm(settings)
     _cap_memory(memory_bytes)
     conn.send(("ready", None))

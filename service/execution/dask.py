@@ -539,6 +539,7 @@ class DaskExecutor(Executor):
             self.stats["worker_deaths"] += 1
         item.attempt += 1
         item.failures += int(counted)
+        item.started_at = item.worker = None  # the time limit counts from the new submission's start
         self.stats["resubmitted" if counted else "scheduler_lost"] += 1
         if item.failures >= self.max_attempts:
             msg = (f"the task failed on the Dask cluster {item.failures} times; last: {item.causes[-1]}")
