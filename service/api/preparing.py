@@ -5,9 +5,10 @@ Why a process and not a thread of the API: decoding the JSON, the schema check, 
 (jsonschema, networkx) and building the tasks are Python code that holds the GIL. In a thread of the
 API process that code takes turns with the event loop for the GIL, and every wake-up of the loop
 waits for its turn (measured with the hostile suite's worst cases in flight, three at once:
-``/healthz`` p99 71 ms, max 93-105 ms, while no event-loop callback took more than 15 ms: asyncio's
-slow-callback log stayed empty at 15 ms). In a child process it only competes for a core. And a
-process can be stopped: a thread cannot.
+``/healthz`` p99 71 ms, max 65-105 ms, while asyncio's slow-callback log, set to 15 ms, stayed
+empty: no callback of the loop itself was slow). In a child process it only competes for a core
+(``benchmarks/bench_hostile.py --worst-clients 3``: max 33-76 ms at load average 5-6, median 3-4.5
+ms, against 40-336 ms and 7-10 ms in threads). And a process can be stopped: a thread cannot.
 
 * :class:`PreparePool`: ``settings.prepare_processes`` spawned children (started on first use,
   shared by every app of the process, dying with it: :mod:`toposcout.service.execution.lifeline`).
