@@ -103,6 +103,9 @@ def test_scheduler_killed_mid_study_the_server_completes_it(tmp_path, start_serv
     assert st["status"] == "done", (st["status"], st["progress"], srv.log()[-3000:], procs.logs())
     assert sorted(row["task_index"] for row in st["rows"]) == list(range(total))
     assert all(row["status"] == "done" and row["simulated_qubits"] == 8 for row in st["rows"])
+    # the store counts a row only when its write turned it from pending (record_row's conditional update):
+    # done == total with every index present is every row written once
+    assert st["progress"] == {"done": total, "total": total}
 
 
 def test_forty_submissions_from_eight_clients_on_dask(tmp_path, start_server, dask_processes, chain_model):

@@ -13,6 +13,7 @@ import pytest
 from fastapi.testclient import TestClient
 
 from toposcout.service.api.app import create_app
+from toposcout.service.api.preparing import PrepareBusy, PreparePool, busy
 from toposcout.service.settings import Settings
 
 PAIR = {"name": "pair", "variables": ["a", "b"], "cliques": [["a", "b"]]}
@@ -116,3 +117,17 @@ def test_a_slow_preparation_is_stopped_while_the_api_answers(tmp_path, start_ser
         ok = c.post("/v1/studies", json={"model": PAIR, "compile_only": True, "connectivities": ["line"]})
         assert ok.status_code == 202, ok.text
     assert probes and max(probes) < 0.5, probes
+
+
+def test_every_preparation_process_busy_is_a_429_with_retry_after():
+    pool = PreparePool(1)
+    held = pool._free.get()  # the pool's one process, taken as a call in flight would hold it
+    settings = Settings(database_url="sqlite://", prepare_seconds=0.2, prepare_processes=1)
+    t0 = time.monotonic()
+    with pytest.raises(PrepareBusy):
+        pool.run("data", {"model": PAIR}, None, settings)
+    assert 0.2 <= time.monotonic() - t0 < 5
+    pool._free.put(held)
+    r = busy(settings)
+    assert r.status_code == 429 and r.headers["retry-after"] == "2"
+    assert json.loads(r.body)["field"] is None and "prepare_seconds=0.2" in json.loads(r.body)["detail"]
