@@ -19,11 +19,17 @@ from pydantic import Field, SecretStr
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from toposcout.compiler.errors import ToposcoutError
+from toposcout.compiler.model import Limits
+from toposcout.compiler.options import LIMITS
 from toposcout.service.execution.threads import default_workers
 
 __all__ = ["Settings", "default_data_dir", "parse_tokens"]
 
 _OWNER = re.compile(r"^[A-Za-z0-9_.@-]{1,64}$")
+_LIMITS = Limits()  # the library's caps: a server may lower them, not raise them
+#: the defaults of max_json_containers and max_study_model_bytes (the API reads the settings)
+MAX_JSON_CONTAINERS = 100_000
+MAX_STUDY_MODEL_BYTES = 8 * 2**20
 
 
 def default_data_dir() -> Path:
@@ -84,6 +90,36 @@ class Settings(BaseSettings):
                                   description="pending tasks of all studies together (429 with Retry-After above)")
     memory_budget_bytes: int | None = Field(default=None, ge=1,
                                             description="bytes one simulation may use (default: half the RAM)")
+
+    # --- reading a request (each cap is checked as the request is read, before anything of its size exists)
+    prepare_seconds: float = Field(default=5.0, gt=0, le=600,
+                                   description="wall time reading a request's model and building its tasks may "
+                                   "take (in a preparation process, stopped past it: 422)")
+    prepare_memory_bytes: int = Field(default=512 * 2**20, ge=16 * 2**20,
+                                      description="memory one preparation may allocate beyond its process's "
+                                      "start-up (RLIMIT_DATA; 422 above)")
+    prepare_processes: int = Field(default=2, ge=1, le=16,
+                                   description="preparation processes: requests prepared at once (429 when all "
+                                   "stay busy for prepare_seconds)")
+    max_json_containers: int = Field(default=MAX_JSON_CONTAINERS, ge=100,
+                                     description="objects and arrays in one JSON body, counted before decoding")
+    max_study_model_bytes: int = Field(default=MAX_STUDY_MODEL_BYTES, ge=2**16,
+                                       description="bytes of model JSON all tasks of one study carry together "
+                                       "(tasks x model size)")
+    max_cliques: int = Field(default=_LIMITS.max_cliques, ge=1, le=_LIMITS.max_cliques,
+                             description="cliques of a JSON model, maximal cliques of a node-link graph")
+    max_factors: int = Field(default=_LIMITS.max_factors, ge=1, le=_LIMITS.max_factors,
+                             description="factors of a JSON model, functions of a UAI file")
+    max_links: int = Field(default=_LIMITS.max_links, ge=1, le=_LIMITS.max_links,
+                           description="links of a node-link graph")
+    max_terms: int = Field(default=_LIMITS.max_terms, ge=1, le=_LIMITS.max_terms,
+                           description="terms of a model after max_order (before de-duplication)")
+    max_clique_steps: int = Field(default=_LIMITS.max_clique_steps, ge=100, le=_LIMITS.max_clique_steps,
+                                  description="work budget of the maximal-clique enumeration of a node-link graph")
+    max_seeds: int = Field(default=int(LIMITS["seeds"].high), ge=1, le=int(LIMITS["seeds"].high),
+                           description="transpiler seeds per row")
+    max_trajectories: int = Field(default=int(LIMITS["trajectories"].high), ge=1,
+                                  le=int(LIMITS["trajectories"].high), description="trajectories per row")
 
     def resolved_database_url(self) -> str:
         """The database URL, creating the data folder for the default SQLite file."""

@@ -369,3 +369,77 @@ def start_server() -> Iterator[Callable[..., Server]]:
     yield start
     for srv in started:
         srv.stop()
+
+
+class DaskProcesses:
+    """A Dask scheduler and ``toposcout worker`` processes, each a child process of its own, on a fixed
+    loopback address: a test can SIGKILL the scheduler and start a new one on the same address."""
+
+    def __init__(self, folder: Path, port: int | None = None):
+        folder.mkdir(parents=True, exist_ok=True)
+        self.folder, self.port = folder, port or _free_port()
+        self.address = f"tcp://127.0.0.1:{self.port}"
+        self.env = {k: v for k, v in os.environ.items() if not k.startswith("TOPOSCOUT_")}
+        self.scheduler: subprocess.Popen | None = None
+        self.workers: list[subprocess.Popen] = []
+        self._starts = 0
+
+    def _log(self, what: str):
+        self._starts += 1
+        return open(self.folder / f"{what}-{self._starts}.log", "ab")
+
+    def start_scheduler(self, timeout: float = 60.0) -> "DaskProcesses":
+        with self._log("scheduler") as log:
+            self.scheduler = subprocess.Popen(
+                [sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1", "--port",
+                 str(self.port), "--no-dashboard"], env=self.env, stdout=log, stderr=subprocess.STDOUT,
+                start_new_session=True)
+        end = time.monotonic() + timeout
+        while time.monotonic() < end:
+            if self.scheduler.poll() is not None:
+                raise RuntimeError(f"the Dask scheduler exited with {self.scheduler.returncode}:\n{self.logs()}")
+            with contextlib.suppress(OSError), socket.create_connection(("127.0.0.1", self.port), timeout=1):
+                return self
+            time.sleep(0.1)
+        raise RuntimeError(f"the Dask scheduler did not listen within {timeout} s:\n{self.logs()}")
+
+    def kill_scheduler(self) -> None:
+        """SIGKILL: the scheduler dies with every task it held, no shutdown at all."""
+        if self.scheduler is not None and self.scheduler.poll() is None:
+            self.scheduler.kill()
+            self.scheduler.wait(10)
+
+    def start_workers(self, n: int = 2) -> "DaskProcesses":
+        """``toposcout worker ADDRESS --nworkers n`` (one thread each, 2 GiB each), as a user starts them."""
+        with self._log("workers") as log:
+            self.workers.append(subprocess.Popen(
+                [sys.executable, "-m", "toposcout.service.cli", "worker", self.address, "--nworkers", str(n),
+                 "--memory-limit", "2GiB", "--threads", "1"], env=self.env, stdout=log, stderr=subprocess.STDOUT,
+                start_new_session=True))
+        return self
+
+    def logs(self) -> str:
+        return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-3000:]}" for p in sorted(self.folder.glob("*.log")))
+
+    def stop(self) -> None:
+        for proc in self.workers:
+            if proc.poll() is None:
+                with contextlib.suppress(ProcessLookupError):
+                    os.killpg(proc.pid, signal.SIGTERM)
+                try:
+                    proc.wait(20)
+                except subprocess.TimeoutExpired:
+                    with contextlib.suppress(ProcessLookupError):
+                        os.killpg(proc.pid, signal.SIGKILL)
+                    proc.wait(10)
+        self.kill_scheduler()
+
+
+@pytest.fixture
+def dask_processes(tmp_path) -> Iterator[DaskProcesses]:
+    """A :class:`DaskProcesses` (nothing started yet); everything it started is stopped afterwards."""
+    procs = DaskProcesses(tmp_path / "dask")
+    try:
+        yield procs
+    finally:
+        procs.stop()

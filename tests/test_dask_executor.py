@@ -284,3 +284,38 @@ def test_a_store_hiccup_loses_no_task(make_executor, chain_model, memory_store):
     assert ex.wait_idle(60)
     assert sorted(store.study_rows("flaky")) == [0, 1]
     assert store.failures == Counter({"cached_row": 1, "record_row": 1})
+
+
+@pytest.mark.parametrize("down_seconds", [1.0, 5.0], ids=["client-reconnects", "executor-reconnects"])
+def test_sigkill_the_scheduler_mid_study_loses_nothing(dask_processes, chain_model, wait_until, memory_store_class,
+                                                       down_seconds):
+    """The scheduler dies with the tasks it held; a new one comes up on the same address (with new
+    workers: Dask workers stop when their scheduler is gone, their supervisor starts them again).
+    Down for less than the client's connect timeout (2 s here), the Dask client reconnects by itself;
+    for longer, it gives up and the executor connects anew. Either way every row once, none lost."""
+    procs = dask_processes.start_scheduler().start_workers(2)
+    tasks = make_tasks(chain_model(8), ["line", "ring", "grid", "all-to-all"], noise_scales=[1.0, 2.0], seeds=1,
+                       strategy="generic")
+    store = memory_store_class()
+    ex = DaskExecutor(store=store, address=procs.address, connect_timeout=2, retry_seconds=0.5, split_rows=False)
+    ex.start()
+    try:
+        assert ex.wait_connected(60)
+        ex.client.wait_for_workers(2, timeout=60)
+        ex.submit("sk", list(enumerate(tasks)))
+        assert wait_until(lambda: len(store.rows) >= 1 and _worker_running(ex.client, "toposcout-sk-") is not None,
+                          timeout=90, step=0.05), procs.logs()
+        procs.kill_scheduler()
+        recorded_at_kill = len(store.rows)
+        assert recorded_at_kill < len(tasks), "the kill must land while tasks remain"
+        time.sleep(down_seconds)
+        procs.start_scheduler().start_workers(2)
+        assert ex.wait_idle(120), (ex.pending(), dict(ex.stats), procs.logs())
+    finally:
+        ex.shutdown()
+    rows = store.study_rows("sk")
+    assert sorted(rows) == list(range(len(tasks)))
+    assert set(store.calls.values()) == {1}, "every row exactly once"
+    assert all(r["error"] is None and r["simulated_qubits"] == 8 for r in rows.values())
+    # the tasks that were on the dead scheduler were sent again, and that loss cost no failed attempt
+    assert ex.stats["scheduler_lost"] >= 1 and ex.stats["resubmitted"] == 0, dict(ex.stats)

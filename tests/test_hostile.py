@@ -3,11 +3,13 @@ once on SQLite and once on PostgreSQL (one server per store, reused by every cas
 
 Per case (``tests/hostile_cases.py``): the status, the field the error body names, an answer in
 under 5 s, and the one error shape; then, while the heaviest of them are sent again and again,
-``/healthz`` answers in under 100 ms and the server's memory grows by less than 100 MB.
+``/healthz`` answers in under 100 ms and the server's memory (with its child processes) grows by
+less than 100 MB.
 """
 
 from __future__ import annotations
 
+import os
 import statistics
 import threading
 import time
@@ -85,7 +87,9 @@ def test_healthz_stays_fast_while_the_worst_case_is_refused(hostile_server):
     # other in one client, again and again
     chosen = [c for c in CASES if "worst" in c.tags]
     proc = psutil.Process(srv.proc.pid)
-    rss_before = proc.memory_info().rss
+    for case in chosen:  # one round first: the preparation processes are started and have seen each case
+        send(srv.url, case)
+    rss_before = _settled_rss(proc)
     stop = threading.Event()
     statuses: list[int] = []
 
@@ -113,17 +117,51 @@ def test_healthz_stays_fast_while_the_worst_case_is_refused(hostile_server):
         stop.set()
         for t in threads:
             t.join(30)
-    growth = proc.memory_info().rss - rss_before
-    print(f"\n{store}: {len(chosen)} worst cases, {len(statuses)} refusals; /healthz median "
-          f"{statistics.median(latencies) * 1000:.1f} ms max {max(latencies) * 1000:.1f} ms, growth {growth / 2**20:.1f} MiB")
-    assert statuses and all(400 <= s < 500 for s in statuses), statuses
-    # /healthz under 100 ms while the worst cases are refused: 9 probes in 10 (the 90th percentile), and
-    # the median well below. Not every probe: on a shared, loaded 2-core machine an idle server's
-    # /healthz alone has outliers of 250-300 ms (measured at load average 10), which no server fixes
+    growth = _tree_rss(proc) - rss_before
     lat = sorted(latencies)
-    p90, median = lat[int(0.9 * len(lat)) - 1], statistics.median(lat)
-    assert p90 < 0.100 and median < 0.050, f"/healthz p90 {p90 * 1000:.0f} ms, median {median * 1000:.0f} ms"
-    assert growth < 100 * 2**20, f"the server grew by {growth / 2**20:.0f} MiB"
+    median = statistics.median(lat)
+    print(f"\n{store}: {len(chosen)} worst cases, {len(statuses)} refusals; /healthz median {median * 1000:.1f} ms "
+          f"p90 {lat[int(0.9 * len(lat)) - 1] * 1000:.1f} ms max {lat[-1] * 1000:.1f} ms, "
+          f"growth {growth / 2**20:.1f} MiB")
+    assert statuses and all(400 <= s < 500 for s in statuses), statuses
+    # /healthz under 100 ms while the worst cases are refused, every probe. The requests are read and
+    # prepared in preparation processes at niceness 10 (service/api/preparing.py), so nothing of theirs
+    # holds the API process's GIL or its core. Measured on this 2-core machine with
+    # `benchmarks/bench_hostile.py --rounds 0 --worst-clients 3 --probes 200` (three hostile clients):
+    # median 3-4.5 ms, max 33-76 ms at load average 5-6, against median 7-10 ms, max 40-336 ms with the
+    # preparation in threads of the API (where asyncio's slow-callback log showed no callback over 15 ms:
+    # the loop waited for the GIL). What is left is other processes on the machine: an idle server's
+    # probes reach 62 ms with four busy loops beside it (load average 5) and 250-300 ms at load average
+    # 10. CI runs the suite alone on its machine: there every probe counts; on a shared machine one probe
+    # in 30 may be late for reasons no server fixes
+    late = [x for x in lat if x >= 0.100]
+    allowed = 0 if os.environ.get("CI") else 1
+    assert len(late) <= allowed and median < 0.020, (f"/healthz over 100 ms {len(late)} times of {len(lat)} "
+                                                     f"(max {lat[-1] * 1000:.0f} ms), median {median * 1000:.0f} ms")
+    assert growth < 100 * 2**20, f"the server (with its preparation processes) grew by {growth / 2**20:.0f} MiB"
+
+
+def _settled_rss(proc: psutil.Process, timeout: float = 60.0) -> int:
+    """:func:`_tree_rss` once two readings 0.5 s apart differ by less than 5 MiB (processes starting)."""
+    last, end = _tree_rss(proc), time.monotonic() + timeout
+    while time.monotonic() < end:
+        time.sleep(0.5)
+        now = _tree_rss(proc)
+        if abs(now - last) < 5 * 2**20:
+            return now
+        last = now
+    return last
+
+
+def _tree_rss(proc: psutil.Process) -> int:
+    """Resident memory of the server and its child processes (preparation, compile lane, queue worker)."""
+    total = proc.memory_info().rss
+    for child in proc.children(recursive=True):
+        try:
+            total += child.memory_info().rss
+        except psutil.NoSuchProcess:
+            pass
+    return total
 
 
 def test_csv_export_of_a_hostile_name_is_neutralised(hostile_server, wait_study):

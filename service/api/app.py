@@ -25,6 +25,7 @@ takes no running work with it.
 
 from __future__ import annotations
 
+import asyncio
 import collections
 import gc
 import importlib
@@ -36,6 +37,7 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI
 
 from toposcout.compiler.version import __version__
+from toposcout.service.api import preparing
 from toposcout.service.api.errors import error, install_error_handlers
 from toposcout.service.api.routers import catalogue, compile as compile_router, operations, studies
 from toposcout.service.execution.lifeline import die_with_parent
@@ -136,6 +138,8 @@ async def _lifespan(app: FastAPI):
     lane = ProcessLane(time_limit=settings.compile_time_limit_seconds)
     lane.start()
     app.state.store, app.state.lane = store, lane
+    # requests are read and prepared there, not in this process: ready before the first request
+    await asyncio.to_thread(preparing.pool(settings).warm, settings)
     _freeze_startup_heap()
     try:
         yield

@@ -1,23 +1,24 @@
 """Reading a request body: JSON (strict: no NaN, bounded nesting) or a multipart model upload,
-validated against the request schema before any work starts."""
+validated against the request schema before any work starts (both run in a preparation
+process, :mod:`toposcout.service.api.preparing`; the multipart form is split in the API)."""
 
 from __future__ import annotations
 
 import json
 import threading
+from typing import Any
 
 from fastapi import Request
 from pydantic import ValidationError
-from starlette.concurrency import run_in_threadpool
 from starlette.exceptions import HTTPException
 
 from toposcout.compiler.errors import ToposcoutError
 from toposcout.service.api import schemas as S
 from toposcout.service.api.errors import validation_detail
 from toposcout.service.api.planning import form_to_request, safe_filename
-from toposcout.service.settings import Settings
+from toposcout.service.settings import MAX_JSON_CONTAINERS, Settings
 
-__all__ = ["parse_json", "validate_request", "read_request", "FORM_BODY", "JSON_BODY"]
+__all__ = ["parse_json", "validate_request", "read_request", "FORM_BODY", "JSON_BODY", "MAX_JSON_CONTAINERS"]
 
 FORM_SCHEMA = {
     "type": "object",
@@ -42,19 +43,19 @@ def _reject_constant(token: str):
     raise ValueError(f"{token} is not a number in JSON; give a finite value")
 
 
-#: the most objects and arrays a JSON body may hold (counted on the raw bytes before decoding: each
-#: costs ~100 bytes once decoded, so a 4 MiB body of ``{}`` would otherwise become ~160 MB of dicts);
-#: a node-link graph at its link cap holds about 20000
-MAX_JSON_CONTAINERS = 100_000
-#: bodies decoded at once (each in a thread of the API's pool): bounds the memory of a flood
+# MAX_JSON_CONTAINERS, the default of ``Settings.max_json_containers``: the most objects and arrays a
+# JSON body may hold (counted on the raw bytes before decoding: each costs ~100 bytes once decoded, so a
+# 4 MiB body of ``{}`` would otherwise become ~160 MB of dicts); a node-link graph at its link cap holds
+# about 20000
+#: bodies decoded at once in one process: bounds the memory of a flood
 _decoding = threading.BoundedSemaphore(2)
 
 
-def parse_json(body: bytes) -> dict:
+def parse_json(body: bytes, *, max_containers: int = MAX_JSON_CONTAINERS) -> dict:
     containers = body.count(b"{") + body.count(b"[")
-    if containers > MAX_JSON_CONTAINERS:
+    if containers > max_containers:
         raise ToposcoutError(f"body: the JSON holds {containers} objects and arrays (nested or side by side), more "
-                             f"than the cap of {MAX_JSON_CONTAINERS}", field="body")
+                             f"than this server's cap of max_json_containers={max_containers}", field="body")
     with _decoding:
         return _parse_json(body)
 
@@ -90,11 +91,12 @@ def validate_request(data: dict) -> S.StudyRequest:
         raise ToposcoutError("body: the JSON is nested too deeply", field="body") from None
 
 
-async def read_request(request: Request, settings: Settings) -> tuple[dict, str | None]:
+async def read_request(request: Request, settings: Settings) -> tuple[str, Any, str | None]:
+    """``("json", raw body, None)`` (decoded later, in a preparation process: ``preparing``) or
+    ``("data", request dict, file name)`` of a multipart form."""
     ctype = request.headers.get("content-type", "").split(";")[0].strip().lower()
     if ctype == "application/json" or ctype.endswith("+json"):
-        # decoding up to max_body_bytes of JSON takes tens of ms: off the event loop, so /healthz stays fast
-        return await run_in_threadpool(parse_json, await request.body()), None
+        return "json", await request.body(), None
     if ctype != "multipart/form-data":
         raise HTTPException(415, "Content-Type must be application/json or multipart/form-data")
     try:
@@ -130,7 +132,7 @@ async def read_request(request: Request, settings: Settings) -> tuple[dict, str 
                 raise ToposcoutError("file: the model file is not UTF-8 text", field="file") from None
         data = form_to_request(fields)
         data["model"] = text_model
-        return data, filename
+        return "data", data, filename
     finally:
         await form.close()
 

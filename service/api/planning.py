@@ -160,25 +160,23 @@ def model_order(model: Model) -> int:
     return min(largest, model.max_order) if model.max_order else largest
 
 
-#: the most bytes of model JSON all the tasks of one study may carry (tasks x model size)
-MAX_STUDY_MODEL_BYTES = 8 * 2**20
-
-#: at most this many requests are parsed and prepared at once (each in a thread of the API's pool):
-#: every step is bounded by a counted cap, and this bounds how many of them share the GIL with the
-#: event loop, so a flood of large requests cannot slow /healthz and the reads
+#: at most this many requests are prepared at once in one process (the API prepares in its
+#: preparation processes, ``toposcout.service.api.preparing``, one call each; this bounds other callers)
 PREPARE_CONCURRENCY = 2
 _preparing = threading.BoundedSemaphore(PREPARE_CONCURRENCY)
 
 
-def _study_size(n_tasks: int, model_bytes: int) -> None:
-    if n_tasks * model_bytes > MAX_STUDY_MODEL_BYTES:
+def _study_size(n_tasks: int, model_bytes: int, cap: int) -> None:
+    """Every task carries the model (its key hashes it, the store keeps it): bound tasks x model size
+    (``Settings.max_study_model_bytes``)."""
+    if n_tasks * model_bytes > cap:
         raise CapacityError(f"model: {n_tasks} tasks (connectivities x noise_scales) each carrying this "
-                            f"{model_bytes}-byte model make {n_tasks * model_bytes} bytes, over the cap of "
-                            f"{MAX_STUDY_MODEL_BYTES}; send fewer targets or noise scales, or a smaller model",
+                            f"{model_bytes}-byte model make {n_tasks * model_bytes} bytes, over this server's cap "
+                            f"of max_study_model_bytes={cap}; send fewer targets or noise scales, or a smaller model",
                             field="model")
 
 
-def _check_study_size(req: StudyRequest, compile_only: bool | None) -> None:
+def _check_study_size(req: StudyRequest, compile_only: bool | None, cap: int) -> None:
     """The tasks x model-size cap estimated from the request as sent (the model's compact JSON,
     or its text), so an oversized study is refused before its model is parsed."""
 
@@ -186,7 +184,7 @@ def _check_study_size(req: StudyRequest, compile_only: bool | None) -> None:
     n_tasks = (len(req.connectivities) if req.connectivities is not None else len(BUILTIN_FAMILIES)) * (
         1 if only else len(req.noise_scales))
     raw = req.model if isinstance(req.model, str) else json.dumps(req.model, separators=(",", ":"))
-    _study_size(n_tasks, len(raw))
+    _study_size(n_tasks, len(raw), cap)
 
 
 def prepare(req: StudyRequest, settings, **kwargs: Any) -> Prepared:
@@ -204,8 +202,9 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
     device = _device(req, settings, model.num_variables)
     specs = _targets(req, settings, model, max_targets or settings.max_connectivities)
     scales = _scales(req, settings, compile_only)
-    # every task carries the model (its key hashes it, the store keeps it): bound tasks x model size
-    _study_size(len(specs) * len(scales), len(json.dumps(model.to_dict(), separators=(",", ":"))))
+    _study_size(len(specs) * len(scales), len(json.dumps(model.to_dict(), separators=(",", ":"))),
+                settings.max_study_model_bytes)
+    _work_caps(req, settings)
     profile = None if compile_only else _profile(req.profile)
     options: dict[str, Any] = dict(gate_set=req.gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
                                    layers=req.layers, seed=req.seed, compile_only=compile_only, profile=profile,
@@ -253,10 +252,12 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
 
 def _request_model(req: StudyRequest, settings, filename: str | None, compile_only: bool | None) -> Model:
     """The request's model, parsed within the server's caps (fields named ``model.*``)."""
-    limits = Limits(max_variables=settings.max_variables)
+    limits = Limits(max_variables=settings.max_variables, max_cliques=settings.max_cliques,
+                    max_factors=settings.max_factors, max_links=settings.max_links, max_terms=settings.max_terms,
+                    max_clique_steps=settings.max_clique_steps)
     if isinstance(req.model, str) and not req.model.strip():
         raise ModelError("model: the model text is empty", field="model")
-    _check_study_size(req, compile_only)  # an estimate before the parse; exact after it
+    _check_study_size(req, compile_only, settings.max_study_model_bytes)  # an estimate before the parse; exact after
     try:
         model = parse_model(req.model, req.model_format, limits=limits, filename=filename)
     except (ModelError, CapacityError) as exc:
@@ -273,6 +274,17 @@ def _request_model(req: StudyRequest, settings, filename: str | None, compile_on
                             f"server's cap is max_order={settings.max_order}; send max_order <= {settings.max_order}",
                             field="max_order")
     return model
+
+
+def _work_caps(req: StudyRequest, settings) -> None:
+    """The server's caps on seeds and trajectories per row (at most the library's ranges, ``LIMITS``)."""
+    if req.seeds > settings.max_seeds:
+        raise CapacityError(f"seeds: {req.seeds} transpiler seeds is over this server's cap max_seeds="
+                            f"{settings.max_seeds}; send seeds <= {settings.max_seeds}", field="seeds")
+    if req.trajectories is not None and req.trajectories > settings.max_trajectories:
+        raise CapacityError(f"trajectories: {req.trajectories} trajectories is over this server's cap "
+                            f"max_trajectories={settings.max_trajectories}; send trajectories <= "
+                            f"{settings.max_trajectories} or a precision instead", field="trajectories")
 
 
 def _memory_budget(req: StudyRequest, settings, model: Model) -> int:

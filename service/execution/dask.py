@@ -26,6 +26,11 @@ each row to the store as soon as it is back.
   restarted and its row fails with the local executor's message.
 * **Scheduler away**: ``start`` returns at once; the background thread connects and retries
   while the scheduler is not up, and reconnects (resubmitting what was on it) when it is lost.
+  A scheduler killed mid-study: the client cancels every future it held (``Client._reconnect``
+  in ``distributed/client.py``) and reconnects for ``connect_timeout`` s, then gives up; either
+  way each task not yet recorded goes back to the backlog under a fresh attempt key and is sent
+  again once the new scheduler has workers. Such a loss does not count towards
+  ``max_attempts`` (the task did nothing wrong), and the row is still recorded once.
 * **One row on several workers**: when a study has fewer rows in flight than the cluster has
   worker threads, a row is sent as :func:`run_task_split` with parts = threads // rows: on
   its worker it plans the row, submits the parts (shares of the trajectories or clifford
@@ -128,7 +133,8 @@ class _DaskTask:
     task_index: int
     task: dict
     key: str | None = None              # the study row's cache key (store.task_keys)
-    attempt: int = 0
+    attempt: int = 0                    # the key's suffix: a fresh key per submission after the first
+    failures: int = 0                   # submissions that failed on the cluster (counted against max_attempts)
     future: Any = None
     submitted_at: float = 0.0
     started_at: float | None = None     # first seen executing on a worker (time limit)
@@ -143,7 +149,8 @@ class DaskExecutor(Executor):
     client: an existing ``distributed.Client`` (tests); it is not closed by shutdown.
     max_in_flight: tasks on the scheduler at once (default: 2 x worker threads, at least 4).
     retries: Dask retries of a task that raised (default 1).
-    max_attempts: submissions of one task before its row records the failure (default 4).
+    max_attempts: failed submissions of one task before its row records the failure (default 4;
+        a scheduler lost mid-task does not count).
     connect_timeout: seconds of one connection attempt (default 10); retry_seconds: pause
         between attempts (default 5).
     time_limit: wall seconds a task may execute on a worker (default
@@ -513,6 +520,10 @@ class DaskExecutor(Executor):
             self.stats["computed"] += 1
             self._record(item, row)
             return
+        if status == "cancelled":  # not by us (checked above): the client lost its scheduler and cancelled
+            fut.release()          # every future it held; send the task again, not counted as a failure
+            self._again(item, RuntimeError("the connection to the Dask scheduler was lost"), counted=False)
+            return
         exc = None
         if status == "error":
             try:
@@ -522,19 +533,22 @@ class DaskExecutor(Executor):
         fut.release()
         self._again(item, exc if exc is not None else RuntimeError(f"task {status} on the cluster"))
 
-    def _again(self, item: _DaskTask, exc: BaseException) -> None:
+    def _again(self, item: _DaskTask, exc: BaseException, *, counted: bool = True) -> None:
         item.causes.append(f"{type(exc).__name__}: {exc}")
         if type(exc).__name__ == "KilledWorker":
             self.stats["worker_deaths"] += 1
         item.attempt += 1
-        self.stats["resubmitted"] += 1
-        if item.attempt >= self.max_attempts:
-            msg = (f"the task failed on the Dask cluster {item.attempt} times; last: {item.causes[-1]}")
+        item.failures += int(counted)
+        item.started_at = item.worker = None  # the time limit counts from the new submission's start
+        self.stats["resubmitted" if counted else "scheduler_lost"] += 1
+        if item.failures >= self.max_attempts:
+            msg = (f"the task failed on the Dask cluster {item.failures} times; last: {item.causes[-1]}")
             row = failure_row(item.task, msg, "worker")  # the store does not cache executor failures
             self._record(item, row)
             return
-        log.warning("resubmitting task %s of study %s (attempt %d): %s", item.task_index, item.study_id,
-                    item.attempt, item.causes[-1])
+        if counted:
+            log.warning("resubmitting task %s of study %s (attempt %d): %s", item.task_index, item.study_id,
+                        item.attempt, item.causes[-1])
         with self._lock:
             self._backlog.appendleft(item)
 

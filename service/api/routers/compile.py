@@ -9,10 +9,10 @@ from starlette.concurrency import run_in_threadpool
 from starlette.exceptions import HTTPException
 
 from toposcout.service.api import schemas as S
-from toposcout.service.api.bodies import JSON_BODY, parse_json, validate_request
+from toposcout.service.api.bodies import JSON_BODY
 from toposcout.service.api.deps import Owner, SettingsDep, StoreDep
 from toposcout.service.api.errors import ERRORS_SUBMIT, error
-from toposcout.service.api.planning import prepare
+from toposcout.service.api.preparing import PrepareBusy, busy, prepare_request
 from toposcout.service.execution.base import TaskTimeout
 
 __all__ = ["router"]
@@ -31,8 +31,11 @@ async def compile_now(request: Request, owner: Owner, settings: SettingsDep, sto
 
 
 def _compile(body: bytes, settings, store, lane) -> JSONResponse:
-    req = validate_request(parse_json(body))  # decoded here, off the event loop
-    prep = prepare(req, settings, compile_only=True, max_targets=settings.max_compile_targets, keep_circuit=False)
+    try:  # decoded and prepared in a preparation process, within its time and memory bounds
+        prep = prepare_request("json", body, None, settings, compile_only=True,
+                               max_targets=settings.max_compile_targets, keep_circuit=False)
+    except PrepareBusy:
+        return busy(settings)
     rows: list[dict | None] = [store.cached_row(k) for k in prep.keys]
     cached = [r is not None for r in rows]
     todo = [i for i, r in enumerate(rows) if r is None]

@@ -15,10 +15,11 @@ from starlette.concurrency import run_in_threadpool
 
 from toposcout.compiler.compile import load_qpy
 from toposcout.service.api import schemas as S
-from toposcout.service.api.bodies import FORM_BODY, read_request, validate_request
+from toposcout.service.api.bodies import FORM_BODY, read_request
 from toposcout.service.api.deps import FinishedCache, Owner, SettingsDep, StoreDep, StudyId, TaskIndex
 from toposcout.service.api.errors import ERROR_BODY, ERRORS_READ, ERRORS_STUDY, ERRORS_SUBMIT, error
-from toposcout.service.api.planning import Prepared, prepare
+from toposcout.service.api.planning import Prepared
+from toposcout.service.api.preparing import PrepareBusy, busy, prepare_request
 from toposcout.service.output import write_csv
 from toposcout.service.store import FINISHED_STATES, QueueFull, Store, TooManyActive, best_connectivity
 
@@ -35,34 +36,42 @@ IDEMPOTENCY_KEY = Header(alias="Idempotency-Key", min_length=1, max_length=200, 
              openapi_extra=FORM_BODY, summary="Submit a study (JSON body or a model file upload)")
 async def submit_study(request: Request, owner: Owner, settings: SettingsDep, store: StoreDep,
                        idempotency_key: Annotated[str | None, IDEMPOTENCY_KEY] = None):
-    data, filename = await read_request(request, settings)
-    return await run_in_threadpool(_submit, data, filename, owner, idempotency_key, settings, store)
+    kind, payload, filename = await read_request(request, settings)
+    return await run_in_threadpool(_submit, kind, payload, filename, owner, idempotency_key, settings, store)
 
 
 class _PreparedMemo:
-    """The last few prepared requests of this process, by their canonical JSON text: a resubmission
-    (the common case of a cached study) skips validation and task building. Only small bodies
-    (at most ``max_chars``) are kept; a request that failed is never kept."""
+    """The last few prepared requests of this process, by their body (the raw JSON bytes, or a form's
+    request as canonical JSON): a resubmission (the common case of a cached study) skips the
+    preparation process. Only small bodies (at most ``max_chars``) are kept; a request that failed
+    is never kept."""
 
     def __init__(self, size: int = 256, max_chars: int = 65536):
         self.size, self.max_chars = size, max_chars
         self._d: collections.OrderedDict = collections.OrderedDict()
         self._lock = threading.Lock()
 
-    def get(self, data: dict, filename: str | None, settings) -> Prepared:
-        try:
-            key = (json.dumps(data, sort_keys=True, separators=(",", ":")), filename, id(settings))
-        except (TypeError, ValueError, RecursionError):
-            key = None
-        if key is not None and len(key[0]) <= self.max_chars:
+    def _key(self, kind: str, payload, filename: str | None, settings) -> tuple | None:
+        if kind == "json":
+            text = payload if len(payload) <= self.max_chars else None
+        else:
+            try:
+                text = json.dumps(payload, sort_keys=True, separators=(",", ":"))
+            except (TypeError, ValueError, RecursionError):
+                text = None
+        if text is None or len(text) > self.max_chars:
+            return None
+        return kind, text, filename, id(settings)
+
+    def get(self, kind: str, payload, filename: str | None, settings) -> Prepared:
+        key = self._key(kind, payload, filename, settings)
+        if key is not None:
             with self._lock:
                 hit = self._d.get(key)
                 if hit is not None:
                     self._d.move_to_end(key)
                     return hit
-        else:
-            key = None
-        prep = prepare(validate_request(data), settings, filename=filename)
+        prep = prepare_request(kind, payload, filename, settings)
         if key is not None:
             with self._lock:
                 self._d[key] = prep
@@ -74,10 +83,13 @@ class _PreparedMemo:
 _PREPARED = _PreparedMemo()
 
 
-def _submit(data: dict, filename: str | None, owner: str, idempotency_key: str | None, settings,
+def _submit(kind: str, payload, filename: str | None, owner: str, idempotency_key: str | None, settings,
             store: Store) -> JSONResponse:
     """Store the study: its pending rows are the queue the queue workers take tasks from."""
-    prep = _PREPARED.get(data, filename, settings)
+    try:
+        prep = _PREPARED.get(kind, payload, filename, settings)
+    except PrepareBusy:
+        return busy(settings)
     try:
         summary, created, pending = store.create_study(
             owner=owner, request=prep.request, model_name=prep.model.name, tasks=prep.tasks, keys=prep.keys,
