@@ -1,4 +1,4 @@
-"""The hostile-input suite's data (issue 16, item 7): requests a hostile client sends, each with
+"""The hostile-input suite's data: requests a hostile client sends, each with
 the status and the field the answer must name. ``tests/test_hostile.py`` sends every case to a live
 server (tokens on, default caps) on SQLite and on PostgreSQL.
 

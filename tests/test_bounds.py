@@ -1,4 +1,4 @@
-"""Bounded parsing and refusals at the door (issue 16, items 1, 4, 6): every reader checks its
+"""Bounded parsing and refusals at the door: every reader checks its
 counts against the caps as it reads, every enumeration that can explode counts as it goes, values
 the simulation cannot take are refused naming the field, CSV cells are neutralised, and a
 non-loopback server without tokens refuses to start."""

@@ -187,7 +187,7 @@ def test_labels_filters_and_the_compare_view(app_client, wait_study):
 
 
 def test_the_form_takes_a_label_and_several_profiles(app_client, wait_study):
-    # the form reaches what the API and the CLI can do (issue list: one product everywhere)
+    # the form reaches what the API and the CLI can do (one product everywhere)
     import json as _json
 
     app_client.cookies.clear()

@@ -1,5 +1,5 @@
 """The real server on a Dask cluster: the server killed while the cluster computes and restarted, the
-scheduler killed and brought back, and a small load test (issue 16, item 6): nothing lost, nothing twice."""
+scheduler killed and brought back, and a small load test: nothing lost, nothing twice."""
 
 from __future__ import annotations
 
@@ -109,7 +109,7 @@ def test_scheduler_killed_mid_study_the_server_completes_it(tmp_path, start_serv
 
 
 def test_forty_submissions_from_eight_clients_on_dask(tmp_path, start_server, dask_processes, chain_model):
-    """A small load test on a Dask cluster (issue 16, item 6): the per-owner cap exactly enforced under a
+    """A small load test on a Dask cluster: the per-owner cap exactly enforced under a
     burst, then 40 studies from 8 clients (each retried after a 429 with its Idempotency-Key): 0 lost,
     0 duplicated, 0 5xx."""
     cap = 3

@@ -181,7 +181,7 @@ def _examples_with_factors() -> list[Path]:
 
 @pytest.mark.parametrize("path", _examples_with_factors(), ids=lambda p: p.name)
 def test_after_fit_noise_never_brings_the_model_closer_to_its_target(path, tmp_path):
-    # the finding: untrained angles made kl_target_noisy < kl_target_ideal (noise "helped"). A trained
+    # the reported defect: untrained angles made kl_target_noisy < kl_target_ideal (noise "helped"). A trained
     # model is closer to its target than the near-uniform distribution noise pushes it to.
     code, out, err = run("compare", path, "--fit", "--restarts", "1", "-c", "line", "-c", "all-to-all",
                          "--strategy", "generic", "--seeds", "1", "--fit-cache", tmp_path, "--json")

@@ -1,4 +1,4 @@
-"""The hostile-input suite (issue 16, item 7) against a live ``toposcout serve`` with tokens on,
+"""The hostile-input suite against a live ``toposcout serve`` with tokens on,
 once on SQLite and once on PostgreSQL (one server per store, reused by every case).
 
 Per case (``tests/hostile_cases.py``): the status, the field the error body names, an answer in

@@ -1,6 +1,6 @@
 """Reading and preparing a request in preparation processes (``service/api/preparing.py``): the caps are
 server settings, a preparation past ``prepare_seconds`` or over ``prepare_memory_bytes`` is stopped with
-a 422 naming that cap, and the API answers meanwhile (issue 16, item 1)."""
+a 422 naming that cap, and the API answers meanwhile."""
 
 from __future__ import annotations
 

@@ -128,7 +128,7 @@ def _fire(url: str, n: int, submit) -> list[str]:
 
 
 def test_20_concurrent_submissions_accept_exactly_the_owner_cap(store, database_url):
-    # the measurement: 20 concurrent submissions against a cap of 8 (PostgreSQL accepted 20)
+    # the reported measurement: 20 concurrent submissions against a cap of 8 (PostgreSQL accepted 20)
     out = _fire(database_url, 20, lambda s, i: _new(s, 2, f"c{i}", owner="carol", max_active=8))
     assert out.count("accepted") == 8 and out.count("too-many") == 12, out
     assert store.active_count("carol") == 8

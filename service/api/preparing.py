@@ -1,5 +1,5 @@
 """Parsing a request and preparing its tasks in processes of their own, each call with a wall-clock
-and a memory bound (issue 16, item 1: "never unbounded in the API's event loop").
+and a memory bound, so that no request is ever parsed unbounded in the API's event loop.
 
 Why a process and not a thread of the API: decoding the JSON, the schema check, reading the model
 (jsonschema, networkx) and building the tasks are Python code that holds the GIL. In a thread of the
