@@ -104,3 +104,33 @@ def test_a_dead_worker_fails_only_its_row(env, k6_model, small_model, wait_study
     assert got["rows"][0]["status"] == "failed" and got["rows"][0]["error_field"] == "worker"
     assert "exited" in got["rows"][0]["error"]
     assert got["rows"][1]["status"] == "done"
+
+
+def test_one_row_is_split_across_the_idle_worker_processes(tmp_path, chain_model, wait_study):
+    # a clifford row of 22 variables (above the exact-span limit: its parts really sample) on a
+    # 2-process executor: planned, run as 2 parts on both processes and merged, with the figures
+    # of the unsplit row within their standard errors; a compile-only row is never split
+    import math
+
+    store = Store(f"sqlite:///{tmp_path / 'split.db'}")
+    ex = LocalExecutor(Settings(workers=2, task_time_limit_seconds=300), store)
+    ex.start()
+    try:
+        row_task = make_tasks(chain_model(22), ["line"], seeds=1, strategy="structured", noise_scale=2.0,
+                              method="clifford")[0]
+        sid, pending = _study(store, [row_task], "split")
+        ex.submit(sid, pending)
+        (row,) = wait_study(store, sid, timeout=300)["rows"]
+        assert row["error"] is None and row["row_parts"] == 2 and ex.stats["split"] == 1
+        whole = run_task(row_task)
+        se = math.hypot(row["clifford_state_fidelity_se"], whole["clifford_state_fidelity_se"])
+        assert se > 0 and abs(row["clifford_state_fidelity"] - whole["clifford_state_fidelity"]) <= 3 * se
+        assert row["two_qubit_gates"] == whole["two_qubit_gates"]
+        compile_only = make_tasks(chain_model(4), ["line"], seeds=1, compile_only=True)
+        sid2, pending2 = _study(store, compile_only, "whole")
+        ex.submit(sid2, pending2)
+        (row2,) = wait_study(store, sid2)["rows"]
+        assert row2["error"] is None and not row2.get("row_parts") and ex.stats["split"] == 1
+    finally:
+        ex.shutdown()
+        store.close()

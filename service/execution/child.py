@@ -15,7 +15,9 @@ __all__ = ["worker_main"]
 
 def worker_main(conn, threads: int = 0, parent_pid: int | None = None,
                 kernel: bool = True) -> None:  # pragma: no cover - runs in the child process
-    """Child process: receive tasks, answer rows, until ``None`` or the pipe closes.
+    """Child process: receive tasks, answer rows, until ``None`` or the pipe closes. A task
+    is a task dict (its row comes back), or a step of a row split into parts:
+    ``("plan", task, parts)``, ``("part", part)`` or ``("merge", plan, results)``.
 
     threads: default 0 (leave as is); else the simulator threads of this process.
     parent_pid: end this process when that parent dies (:func:`.lifeline.die_with_parent`;
@@ -25,7 +27,10 @@ def worker_main(conn, threads: int = 0, parent_pid: int | None = None,
     if threads:
         limit_threads(threads)
     # imported after the thread cap: the simulator's OpenMP runtime reads it when it loads
+    from toposcout.compiler.parts import merge_parts, plan_row, run_part
     from toposcout.compiler.study import run_task
+
+    steps = {"plan": plan_row, "part": run_part, "merge": merge_parts}  # a row split into parts (.local)
 
     conn.send(("ready", None))
     while True:
@@ -36,10 +41,10 @@ def worker_main(conn, threads: int = 0, parent_pid: int | None = None,
         if task is None:
             return
         try:
-            row = run_task(task)
+            row = steps[task[0]](*task[1:]) if isinstance(task, tuple) else run_task(task)
         except Exception as exc:  # a bug: the row says so, the worker lives on
-            row = failure_row(task, f"internal error while running the task ({type(exc).__name__}: {exc})",
-                              "executor")
+            row = failure_row(task if isinstance(task, dict) else {},
+                              f"internal error while running the task ({type(exc).__name__}: {exc})", "executor")
         try:
             conn.send(("row", row))
         except (BrokenPipeError, OSError):

@@ -18,13 +18,15 @@ killed worker's tasks are taken again when their leases expire.
 from __future__ import annotations
 
 import collections
+import concurrent.futures
 import logging
 import multiprocessing
 import os
 import threading
 import time
+from concurrent.futures import Future
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from typing import Any
 
 from toposcout.service.execution.base import Executor, TaskTimeout, WorkerDied, failure_row, timeout_message
 from toposcout.service.execution.threads import threads_per_worker
@@ -123,6 +125,14 @@ class _Worker:
         self.close()
 
 
+@dataclass(eq=False)
+class _PartItem:
+    """One step of a row split into parts (``("part", part)``), for any idle slot to run."""
+    study_id: str
+    message: tuple
+    result: Future = field(default_factory=Future)
+
+
 @dataclass
 class _QueuedTask:
     """A task waiting for or running in a local worker process (identical tasks follow one)."""
@@ -139,8 +149,12 @@ class LocalExecutor(Executor):
     workers: default ``settings.workers``; time_limit: default ``settings.task_time_limit_seconds``.
     """
 
-    def __init__(self, settings: Any, store: Any, *, workers: int | None = None, time_limit: float | None = None):
+    def __init__(self, settings: Any, store: Any, *, workers: int | None = None, time_limit: float | None = None,
+                 split_rows: bool = True):
         self.store = store
+        #: split a trajectories or clifford row across idle worker processes (compiler.parts) when
+        #: fewer rows than workers are running or waiting
+        self.split_rows = split_rows
         self.workers = int(workers or getattr(settings, "workers", 2))
         self.time_limit = float(time_limit or getattr(settings, "task_time_limit_seconds", 900.0))
         self._cv = threading.Condition()
@@ -227,6 +241,11 @@ class LocalExecutor(Executor):
             while not self._stop.is_set():
                 while self._queue:
                     item = self._queue.popleft()
+                    if isinstance(item, _PartItem):
+                        if item.study_id in self._cancelled:
+                            item.result.set_result(None)
+                            continue
+                        return item
                     if item.study_id in self._cancelled:
                         self._queued.discard((item.study_id, item.task_index))
                         continue
@@ -249,6 +268,9 @@ class LocalExecutor(Executor):
             item = self._take()
             if item is None:
                 return
+            if isinstance(item, _PartItem):
+                self._run_part(worker, item)
+                continue
             try:
                 self._run_item(worker, item)
             except Exception as exc:  # the store failed: leave the rows pending for a restart
@@ -265,7 +287,7 @@ class LocalExecutor(Executor):
         self.store.mark_running(item.study_id)
         started = time.perf_counter()
         try:
-            row = worker.run(item.task, self.time_limit, should_stop=lambda: self._all_cancelled(item))
+            row = self._compute(worker, item)
         except TaskTimeout:
             self.stats["timeouts"] += 1
             row = failure_row(item.task, timeout_message(self.time_limit), "task_time_limit")
@@ -289,6 +311,59 @@ class LocalExecutor(Executor):
             self.store.record_row(item.study_id, item.task_index, row, seconds)
         self.stats["computed"] += 1
         self._finish(item, row)
+
+    # --- a row split into parts -------------------------------------------------------
+    def _parts_for(self, item: _QueuedTask) -> int:
+        """Parts for ``item``: workers // (rows running or waiting), as the CLI's pool does."""
+        if not self.split_rows or item.task.get("compile_only") or self.workers < 2:
+            return 1
+        with self._cv:
+            rows = len(self._running) + sum(1 for q in self._queue if isinstance(q, _QueuedTask))
+        return max(1, self.workers // max(rows, 1))
+
+    def _compute(self, worker: _Worker, item: _QueuedTask) -> dict | None:
+        """The row of ``item``: whole, or planned, run in parts on every idle slot (this one
+        included) and merged (``toposcout.compiler.parts``). None when cancelled."""
+        stop = lambda: self._all_cancelled(item)  # noqa: E731
+        parts = self._parts_for(item)
+        if parts < 2:
+            return worker.run(item.task, self.time_limit, should_stop=stop)
+        plan = worker.run(("plan", item.task, parts), self.time_limit, should_stop=stop)
+        if plan is None or not plan.get("parts"):
+            return None if plan is None else plan["row"]
+        self.stats["split"] += 1
+        steps = [_PartItem(item.study_id, ("part", p)) for p in plan["parts"]]
+        with self._cv:
+            self._queue.extendleft(reversed(steps))
+            self._cv.notify_all()
+        for step in steps:  # this slot runs what no idle slot has taken yet
+            with self._cv:
+                mine = step in self._queue
+                if mine:
+                    self._queue.remove(step)
+            if mine:
+                self._run_part(worker, step)
+        results = self._wait_parts(steps, stop)
+        if results is None:
+            return None
+        return worker.run(("merge", plan, results), self.time_limit, should_stop=stop)
+
+    def _run_part(self, worker: _Worker, step: _PartItem) -> None:
+        try:
+            step.result.set_result(worker.run(step.message, self.time_limit,
+                                              should_stop=lambda: step.study_id in self._cancelled))
+        except Exception as exc:  # TaskTimeout, WorkerDied: the row's coordinator raises it
+            step.result.set_exception(exc)
+
+    def _wait_parts(self, steps: list[_PartItem], stop) -> list[dict] | None:
+        futures = [s.result for s in steps]
+        while True:
+            done, _ = concurrent.futures.wait(futures, timeout=0.5)
+            if len(done) == len(futures):
+                results = [f.result() for f in futures]  # raises a part's TaskTimeout / WorkerDied
+                return None if any(r is None for r in results) else results
+            if self._stop.is_set() or stop():
+                return None
 
     def _all_cancelled(self, item: _QueuedTask) -> bool:
         with self._cv:
