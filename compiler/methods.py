@@ -174,9 +174,11 @@ def clifford_estimate_seconds(variables: int, ops: int, f_prior: float) -> float
 
 def plan_method(sched: Scheduled, profile: DeviceProfile, *, method: str = "auto", memory_budget_bytes: int,
                 time_budget_seconds: float = DEFAULT_TIME_BUDGET_SECONDS, precision: float | None = None,
-                trajectories: int | None = None, mps_pilot_seconds=None) -> Plan:
+                trajectories: int | None = None, mps_pilot_seconds=None, parts: int = 1) -> Plan:
     """Choose the method of one row (see the module docstring). ``mps_pilot_seconds``: a
-    callable returning the measured seconds of one MPS trajectory (called only when needed)."""
+    callable returning the measured seconds of one MPS trajectory (called only when needed).
+    ``parts``: the row's trajectories run on that many workers at once, so the time budget is
+    held against the estimate divided by ``parts``."""
     n, k = sched.num_qubits, len(sched.measured)
     ops = len(sched.circuit.data)
     dm_bytes = estimate_memory_bytes(n, k)
@@ -225,7 +227,8 @@ def plan_method(sched: Scheduled, profile: DeviceProfile, *, method: str = "auto
             traj_method, traj_est = "matrix_product_state", mps_total
 
     def traj_text() -> str:
-        return (f"trajectories ({traj_method}, {count_text}) estimated at {_duration(traj_estimate())} "
+        on = "" if parts == 1 else f" ({_duration(traj_estimate() / parts)} on {parts} workers)"
+        return (f"trajectories ({traj_method}, {count_text}) estimated at {_duration(traj_estimate())}{on} "
                 f"against the time budget of {_duration(time_budget_seconds)}")
 
     cliff_est = clifford_estimate_seconds(k, ops, f_prior)
@@ -241,7 +244,7 @@ def plan_method(sched: Scheduled, profile: DeviceProfile, *, method: str = "auto
                     error_field="method")
     if method == "trajectories":
         est = traj_estimate()
-        if est <= time_budget_seconds:
+        if est / parts <= time_budget_seconds:
             return Plan("trajectories", f"forced: {traj_text()}", traj_method, n_traj, est)
         return Plan(None, "forced trajectories cannot do this row",
                     error=f"--method trajectories: {traj_text()}. Raise --time-budget to about "
@@ -258,7 +261,7 @@ def plan_method(sched: Scheduled, profile: DeviceProfile, *, method: str = "auto
     if dm_ok:
         return Plan("density-matrix", f"auto: {dm_text}")
     est = traj_estimate()
-    if est <= time_budget_seconds:
+    if est / parts <= time_budget_seconds:
         return Plan("trajectories", f"auto: {dm_text}; {traj_text()}", traj_method, n_traj, est)
     if _clifford_available():
         return Plan("clifford", f"auto: {dm_text}; {traj_text()}; so {cliff_text}", estimate_seconds=cliff_est)
@@ -351,7 +354,7 @@ def _clifford_row(sched, profile, t: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def plan_noise_row(out: dict[str, Any], compiled, ansatz, profile: DeviceProfile, t: Mapping[str, Any], *,
-                   max_parallel_threads: int = 0) -> tuple[Scheduled, Plan]:
+                   max_parallel_threads: int = 0, parts: int = 1) -> tuple[Scheduled, Plan]:
     """The head of :func:`method_noise_row`: schedule, the cheap figures and the method plan,
     written into ``out`` as they are computed (so a ToposcoutError raised here leaves them
     there). Also used by ``toposcout.compiler.parts`` to plan a row split across workers."""
@@ -377,7 +380,8 @@ def plan_noise_row(out: dict[str, Any], compiled, ansatz, profile: DeviceProfile
         return per
 
     plan = plan_method(sched, profile, method=method, memory_budget_bytes=budget, time_budget_seconds=time_budget,
-                       precision=t.get("precision"), trajectories=t.get("trajectories"), mps_pilot_seconds=pilot)
+                       precision=t.get("precision"), trajectories=t.get("trajectories"), mps_pilot_seconds=pilot,
+                       parts=parts)
     out.update(method=plan.method, method_reason=plan.reason,
                time_estimate_seconds=None if plan.estimate_seconds is None else round(plan.estimate_seconds, 3))
     if plan.error:

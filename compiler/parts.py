@@ -94,7 +94,7 @@ def plan_row(task: Mapping[str, Any], parts: int) -> dict[str, Any]:
     t, ansatz, compiled, profile = _context(task)
     out: dict[str, Any] = {}
     try:
-        sched, plan = M.plan_noise_row(out, compiled, ansatz, profile, t)
+        sched, plan = M.plan_noise_row(out, compiled, ansatz, profile, t, parts=parts)
     except ToposcoutError as exc:
         out["noise_error"] = M._advice(exc, out)
         out["noise_error_field"] = exc.field

@@ -190,3 +190,15 @@ def test_a_weakly_entangled_row_runs_as_matrix_product_states_an_entangled_one_a
         run = T.run_trajectories(s_, profile, model_cliques, n_trajectories=2, method="matrix_product_state",
                                  max_bond=16, distribution_trajectories=0)
         assert (run.bond_reached < 16) is below, run.bond_reached
+
+
+def test_the_time_budget_is_held_against_the_estimate_on_the_workers_of_a_split_row():
+    from toposcout.compiler.methods import trajectory_cost
+
+    sched, profile = _sched(16)
+    est = trajectory_cost(sched.num_qubits, len(sched.circuit.data)) * 1000
+    kw = dict(method="auto", memory_budget_bytes=2**30, trajectories=1000, time_budget_seconds=0.7 * est)
+    whole = plan_method(sched, profile, **kw)
+    split = plan_method(sched, profile, parts=2, **kw)
+    assert whole.method == "clifford" and split.method == "trajectories"
+    assert "on 2 workers" in split.reason and split.estimate_seconds == pytest.approx(est)
