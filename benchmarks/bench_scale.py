@@ -129,6 +129,7 @@ def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="smaller cases (a few minutes)")
     p.add_argument("--skip-cost-law", action="store_true")
+    p.add_argument("--only-cost-law", action="store_true", help="print only the cost-law table")
     p.add_argument("--json", metavar="FILE", help="also write the rows as JSON")
     p.add_argument("--cases", default=None, help="comma-separated case names to run (default: all)")
     args = p.parse_args(argv)
@@ -144,6 +145,9 @@ def main(argv=None) -> int:
     plaq = load_model(ROOT / "examples" / "parking-bays-64.json").to_dict()
     for conn in (("grid",) if q else ("grid", "heavy-hex")):
         cases.append((f"plaq64-{conn}", plaq, conn, dict(method="clifford"), 60))
+    if args.only_cost_law:
+        print("\n".join(cost_law(q)))
+        return 0
     if args.cases:
         wanted = set(args.cases.split(","))
         unknown = wanted - {c[0] for c in cases}
