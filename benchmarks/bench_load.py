@@ -103,6 +103,19 @@ def run(url: str, token: str | None, clients: int, requests: int) -> dict:
     return out
 
 
+def _lua_long_string(text: str) -> str:
+    """``text`` as a Lua long bracket string whose level (``[==[``) does not occur in it: a JSON body
+    holds ``]]`` (nested arrays), which closes a level-0 ``[[...]]`` early (Lua 5.1 manual, section 2.1).
+
+    >>> _lua_long_string('[["a","b"]]')
+    '[=[[["a","b"]]]=]'
+    """
+    level = 0
+    while f"]{'=' * level}]" in text:
+        level += 1
+    return f"[{'=' * level}[{text}]{'=' * level}]"
+
+
 def _wrk(url: str, clients: int, token: str | None, body: dict | None, seconds: int = 8) -> dict:
     """The same request driven by wrk (C): it measures the server rather than Python clients."""
     import json
@@ -112,12 +125,15 @@ def _wrk(url: str, clients: int, token: str | None, body: dict | None, seconds: 
     lines = [f'wrk.headers["Authorization"] = "Bearer {token}"'] if token else []
     if body is not None:
         lines += ['wrk.method = "POST"', 'wrk.headers["Content-Type"] = "application/json"',
-                  f"wrk.body = [[{json.dumps(body, separators=(',', ':'))}]]"]
+                  f"wrk.body = {_lua_long_string(json.dumps(body, separators=(',', ':')))}"]
     with tempfile.NamedTemporaryFile("w", suffix=".lua", delete=False) as fh:
         fh.write("\n".join(lines) + "\n")
     res = subprocess.run(["wrk", f"-t{min(2, clients)}", f"-c{clients}", f"-d{seconds}s", "--latency", "-s", fh.name,
                           url], capture_output=True, text=True, timeout=seconds + 60)
     os.unlink(fh.name)
+    if res.returncode != 0 or res.stderr.strip():
+        # a script error makes wrk send plain GETs of the URL and say so only on stderr
+        raise SystemExit(f"wrk failed ({res.returncode}): {res.stderr.strip()[:300]}")
     text = res.stdout
 
     def ms(q: str) -> float:
