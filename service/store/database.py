@@ -29,11 +29,13 @@ for the queue, for claims), so a count and the insert that depends on it cannot 
 from __future__ import annotations
 
 import base64
+import collections
 import contextlib
 import datetime as dt
 import hashlib
 import json
 import math
+import os
 import threading
 import uuid
 from pathlib import Path
@@ -46,6 +48,11 @@ from sqlalchemy.engine import Engine
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
 from sqlalchemy.types import TypeDecorator
+
+try:
+    import fcntl
+except ImportError:  # Windows: writers of other processes then wait in SQLite's busy handler
+    fcntl = None  # type: ignore[assignment]
 
 __all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "QueueFull", "best_connectivity", "STUDY_STATES", "FINISHED_STATES",
            "UNFINISHED", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow", "request_summary",
@@ -122,10 +129,6 @@ class RowRecord(Base):
     lease_owner: Mapped[str | None] = mapped_column(String(64), nullable=True)
     lease_until: Mapped[dt.datetime | None] = mapped_column(UTCDateTime, nullable=True)
     attempts: Mapped[int] = mapped_column(Integer, default=0)
-
-
-_STUDY_COLUMNS = ("id", "owner", "status", "model_name", "request", "request_hash", "idempotency_key", "total",
-                  "done", "best_connectivity", "created_at", "updated_at", "claimed_at")
 
 
 class ResultRecord(Base):
@@ -226,6 +229,116 @@ def migrate(engine: Engine) -> None:
         command.upgrade(cfg, "head")
 
 
+class _WriteLock:
+    """SQLite's one writer, queued on instead of polled for. The threads of this process take it in
+    the order they asked (each waiter has a lock of its own that the holder releases), and then the
+    processes sharing the file take ``flock`` on a lock file beside it, where the kernel wakes a
+    waiter as soon as the holder lets go. Without it a writer of another process waits in SQLite's
+    busy handler, which sleeps 1, 2, 5, 10, ... up to 100 ms between tries (``sqliteDefaultBusyCallback``
+    in SQLite's main.c) while this process's writers keep taking the lock: measured with two API
+    processes under 20 clients, a cached POST waited p50 19 ms, p99 205 ms for a 1 ms transaction."""
+
+    def __init__(self, path: str | None):
+        self._path = path if fcntl is not None else None
+        self._fd: int | None = None
+        self._mutex = threading.Lock()
+        self._waiting: collections.deque = collections.deque()
+        self._held = False
+
+    def __enter__(self) -> None:
+        with self._mutex:
+            turn = None
+            if self._held:
+                turn = threading.Lock()
+                turn.acquire()
+                self._waiting.append(turn)
+            self._held = True
+        if turn is not None:
+            turn.acquire()  # released by the holder's __exit__: the lock passes straight to us
+        try:
+            if self._path is not None:
+                if self._fd is None:  # opened at the first write: a store that only reads makes no file
+                    self._fd = os.open(self._path, os.O_RDWR | os.O_CREAT, 0o600)
+                fcntl.flock(self._fd, fcntl.LOCK_EX)
+        except BaseException:
+            self._pass_on()
+            raise
+
+    def __exit__(self, *exc) -> None:
+        if self._fd is not None:
+            fcntl.flock(self._fd, fcntl.LOCK_UN)
+        self._pass_on()
+
+    def _pass_on(self) -> None:
+        with self._mutex:
+            if self._waiting:
+                self._waiting.popleft().release()
+            else:
+                self._held = False
+
+    def close(self) -> None:
+        with self._mutex:
+            if self._fd is not None and not self._held:
+                os.close(self._fd)
+                self._fd = None
+
+
+def _sqlite_file(engine: Engine) -> str | None:
+    """The database file of a SQLite engine (None in memory)."""
+    db = engine.url.database
+    return None if not db or db == ":memory:" or db.startswith("file:") else db
+
+
+class _Memo:
+    """A small thread-safe LRU (plain dict order: a hit moves to the end)."""
+
+    def __init__(self, size: int):
+        self.size, self._d, self._lock = size, {}, threading.Lock()
+
+    def get(self, key: str) -> Any:
+        with self._lock:
+            value = self._d.pop(key, None)
+            if value is not None:
+                self._d[key] = value
+            return value
+
+    def put(self, key: str, value: Any) -> None:
+        with self._lock:
+            self._d.pop(key, None)
+            self._d[key] = value
+            while len(self._d) > self.size:
+                del self._d[next(iter(self._d))]
+
+
+def _new_study(sid: str, owner: str, req: dict, rhash: str, model_name: str, tasks: list[dict], keys: list[str],
+               idempotency_key: str | None, cached: Mapping[str, dict]) -> tuple[dict, list[dict], list]:
+    """The ``studies`` row, the ``study_rows`` rows and the pending ``(task_index, task)`` of a new
+    study, rows whose key is in ``cached`` done at once."""
+    now = utcnow()
+    pending, rows = [], []
+    done = 0
+    any_ok = False
+    for i, (task, key) in enumerate(zip(tasks, keys)):
+        hit = cached.get(key)
+        row = {"study_id": sid, "task_index": i, "task_key": key, "task": _json_safe(task), "updated_at": now,
+               "lease_owner": None, "lease_until": None, "attempts": 0}
+        if hit is not None:
+            done += 1
+            any_ok = any_ok or hit["row"].get("error") is None
+            row.update(status=_row_status(hit["row"]), cached=True, row=hit["row"], seconds=hit["seconds"])
+        else:
+            pending.append((i, task))
+            row.update(status="pending", cached=False, row=None, seconds=None)
+        rows.append(row)
+    status = ("done" if any_ok else "failed") if tasks and done == len(tasks) else "queued"
+    best = (best_connectivity([{**(r["row"] or {}), "status": r["status"]} for r in rows])
+            if status != "queued" else None)
+    study = {"id": sid, "owner": owner, "status": status, "model_name": model_name[:200], "request": req,
+             "request_hash": rhash, "idempotency_key": idempotency_key, "total": len(tasks), "done": done,
+             "best_connectivity": best, "created_at": now, "updated_at": now, "claimed_at": None}
+    return study, rows, pending
+
+
 class Store:
     """Studies and the cache behind a SQLAlchemy engine.
 
@@ -241,9 +354,11 @@ class Store:
         self._session = sessionmaker(self.engine, expire_on_commit=False)
         self._write_session = sessionmaker(self.engine.execution_options(toposcout_write=True),
                                            expire_on_commit=False)
-        # SQLite allows one writer; its busy handler sleeps up to 100 ms per retry, so writers of
-        # this process queue on a lock first (writers of other processes wait in BEGIN IMMEDIATE)
-        self._write_lock = threading.Lock() if self.engine.dialect.name == "sqlite" else contextlib.nullcontext()
+        # SQLite allows one writer: writers queue on _WriteLock first, then BEGIN IMMEDIATE finds it free
+        sqlite = self.engine.dialect.name == "sqlite"
+        path = _sqlite_file(self.engine) if sqlite else None
+        self._write_lock = _WriteLock(path and path + "-writelock") if sqlite else contextlib.nullcontext()
+        self._hits = _Memo(4096)  # task key -> cached row and seconds (see _cached_hits)
 
     @contextlib.contextmanager
     def _writing(self):
@@ -263,6 +378,8 @@ class Store:
 
     def close(self) -> None:
         self.engine.dispose()
+        if isinstance(self._write_lock, _WriteLock):
+            self._write_lock.close()
 
     # --- studies ------------------------------------------------------------------
     def create_study(self, *, owner: str, request: Mapping[str, Any], model_name: str,
@@ -285,38 +402,18 @@ class Store:
             found = self._by_idempotency(owner, idempotency_key, rhash)
             if found is not None:
                 return found, False, []
-        now = utcnow()
-        sid = study_id or new_study_id()
+        # results are only ever added, never changed or removed: read before the write transaction,
+        # so the write lock (SQLite: one writer for every process) is held only for the inserts
+        cached = self._cached_hits(set(keys))
+        study, rows, pending = _new_study(study_id or new_study_id(), owner, req, rhash, model_name, tasks, keys,
+                                          idempotency_key, cached)
         try:
             with self._writing() as s:
-                cached = self._cached(s, set(keys))
-                self._check_caps(s, owner, sum(1 for k in keys if k not in cached), max_active, max_queued)
-                pending = []
-                rows = []
-                done = 0
-                any_ok = False
-                for i, (task, key) in enumerate(zip(tasks, keys)):
-                    hit = cached.get(key)
-                    row = {"study_id": sid, "task_index": i, "task_key": key, "task": _json_safe(task),
-                           "updated_at": now}
-                    if hit is not None:
-                        done += 1
-                        any_ok = any_ok or hit["row"].get("error") is None
-                        row.update(status=_row_status(hit["row"]), cached=True, row=hit["row"], seconds=hit["seconds"])
-                    else:
-                        pending.append((i, task))
-                        row.update(status="pending", cached=False, row=None, seconds=None)
-                    rows.append(row)
-                status = ("done" if any_ok else "failed") if tasks and done == len(tasks) else "queued"
-                best = (best_connectivity([{**(r["row"] or {}), "status": r["status"]} for r in rows])
-                        if status != "queued" else None)
-                rec = StudyRecord(id=sid, owner=owner, status=status, model_name=model_name[:200], request=req,
-                                  request_hash=rhash, idempotency_key=idempotency_key, total=len(tasks), done=done,
-                                  best_connectivity=best, created_at=now, updated_at=now)
-                s.execute(insert(StudyRecord), [{c: getattr(rec, c) for c in _STUDY_COLUMNS}])
+                self._check_caps(s, owner, len(pending), max_active, max_queued)
+                conn = s.connection()
+                conn.execute(insert(StudyRecord.__table__), [study])
                 if rows:
-                    s.execute(insert(RowRecord), rows)
-                summary = self._summary(rec)
+                    conn.execute(insert(RowRecord.__table__), rows)
         except IntegrityError:
             if idempotency_key is None:
                 raise
@@ -324,7 +421,7 @@ class Store:
             if found is None:  # pragma: no cover - the conflicting row vanished again
                 raise
             return found, False, []
-        return summary, True, pending
+        return self._summary(StudyRecord(**study)), True, pending
 
     def _check_caps(self, s: Session, owner: str, must_run: int, max_active: int | None,
                     max_queued: int | None) -> None:
@@ -361,6 +458,19 @@ class Store:
         for key, row, seconds in s.execute(select(ResultRecord.task_key, ResultRecord.row, ResultRecord.seconds)
                                            .where(ResultRecord.task_key.in_(keys))):
             out[key] = {"row": row, "seconds": seconds}
+        return out
+
+    def _cached_hits(self, keys: set[str]) -> dict[str, dict]:
+        """:meth:`_cached` in a read transaction of its own, through a per-process memo of hits (a
+        result never changes once stored; misses are not kept, the key may be stored later)."""
+        out = {k: hit for k in keys if (hit := self._hits.get(k)) is not None}
+        missing = keys - out.keys()
+        if missing:
+            with self._session() as s:
+                found = self._cached(s, missing)
+            for k, hit in found.items():
+                self._hits.put(k, hit)
+            out.update(found)
         return out
 
     def put_result(self, key: str, row: Mapping[str, Any], seconds: float | None = None) -> None:
