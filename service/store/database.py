@@ -22,20 +22,20 @@ task whose worker was killed is taken again and its row is still written exactly
 
 Atomic steps: every write is one transaction that holds the write lock from its start (SQLite:
 ``BEGIN IMMEDIATE``, so processes sharing the file queue on the lock instead of failing on a
-stale snapshot); on PostgreSQL the caps and the claim take ``pg_advisory_xact_lock`` (per owner,
+stale snapshot; they queue first on :class:`~toposcout.service.store.writing.WriteLock`, and new
+studies are written several per transaction by a :class:`~toposcout.service.store.writing.GroupWriter`,
+each study in a savepoint when a cap or an Idempotency-Key can refuse it); on PostgreSQL the caps and the claim take ``pg_advisory_xact_lock`` (per owner,
 for the queue, for claims), so a count and the insert that depends on it cannot interleave.
 """
 
 from __future__ import annotations
 
 import base64
-import collections
 import contextlib
 import datetime as dt
 import hashlib
 import json
 import math
-import os
 import threading
 import uuid
 from pathlib import Path
@@ -49,10 +49,7 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
 from sqlalchemy.types import TypeDecorator
 
-try:
-    import fcntl
-except ImportError:  # Windows: writers of other processes then wait in SQLite's busy handler
-    fcntl = None  # type: ignore[assignment]
+from toposcout.service.store.writing import GroupWriter, WriteLock
 
 __all__ = ["Store", "Base", "StudyConflict", "TooManyActive", "QueueFull", "best_connectivity", "STUDY_STATES", "FINISHED_STATES",
            "UNFINISHED", "ROW_STATES", "UNCACHEABLE_FIELDS", "utcnow", "request_summary",
@@ -186,6 +183,24 @@ def request_hash(request: Mapping[str, Any]) -> str:
                                      default=str).encode()).hexdigest()
 
 
+class JSONText(str):
+    """A value already serialised as JSON: bound as it is into a JSON column (see :func:`_json_dumps`),
+    so a text made outside a write transaction is not made again inside it."""
+
+
+def _json_dumps(value: Any) -> str:
+    """The engines' JSON serialiser: :class:`JSONText` as it is, anything else by ``json.dumps``."""
+    return value if type(value) is JSONText else json.dumps(value)
+
+
+def json_text(value: Any) -> JSONText:
+    """``value`` as JSON text, non-finite floats as null (:func:`_json_safe`)."""
+    try:
+        return JSONText(json.dumps(value, allow_nan=False))
+    except ValueError:  # a NaN or infinity somewhere: the slow walk that replaces them
+        return JSONText(json.dumps(_json_safe(value)))
+
+
 def _iso(t: dt.datetime) -> str:
     return t.astimezone(dt.timezone.utc).isoformat().replace("+00:00", "Z")
 
@@ -194,7 +209,7 @@ def make_engine(url: str) -> Engine:
     """An engine for ``url``; SQLite files get WAL mode, foreign keys and a busy timeout."""
     if url.startswith("sqlite"):
         engine = create_engine(url, connect_args={"check_same_thread": False, "timeout": 30},
-                               pool_size=20, max_overflow=20)
+                               pool_size=20, max_overflow=20, json_serializer=_json_dumps)
 
         @event.listens_for(engine, "connect")
         def _sqlite_pragmas(dbapi_conn, _record):  # pragma: no cover - exercised by every SQLite test
@@ -214,7 +229,7 @@ def make_engine(url: str) -> Engine:
                                  else "BEGIN")
 
         return engine
-    return create_engine(url, pool_pre_ping=True, pool_size=20, max_overflow=20)
+    return create_engine(url, pool_pre_ping=True, pool_size=20, max_overflow=20, json_serializer=_json_dumps)
 
 
 def migrate(engine: Engine) -> None:
@@ -227,60 +242,6 @@ def migrate(engine: Engine) -> None:
     with engine.begin() as conn:
         cfg.attributes["connection"] = conn
         command.upgrade(cfg, "head")
-
-
-class _WriteLock:
-    """SQLite's one writer, queued on instead of polled for. The threads of this process take it in
-    the order they asked (each waiter has a lock of its own that the holder releases), and then the
-    processes sharing the file take ``flock`` on a lock file beside it, where the kernel wakes a
-    waiter as soon as the holder lets go. Without it a writer of another process waits in SQLite's
-    busy handler, which sleeps 1, 2, 5, 10, ... up to 100 ms between tries (``sqliteDefaultBusyCallback``
-    in SQLite's main.c) while this process's writers keep taking the lock: measured with two API
-    processes under 20 clients, a cached POST waited p50 19 ms, p99 205 ms for a 1 ms transaction."""
-
-    def __init__(self, path: str | None):
-        self._path = path if fcntl is not None else None
-        self._fd: int | None = None
-        self._mutex = threading.Lock()
-        self._waiting: collections.deque = collections.deque()
-        self._held = False
-
-    def __enter__(self) -> None:
-        with self._mutex:
-            turn = None
-            if self._held:
-                turn = threading.Lock()
-                turn.acquire()
-                self._waiting.append(turn)
-            self._held = True
-        if turn is not None:
-            turn.acquire()  # released by the holder's __exit__: the lock passes straight to us
-        try:
-            if self._path is not None:
-                if self._fd is None:  # opened at the first write: a store that only reads makes no file
-                    self._fd = os.open(self._path, os.O_RDWR | os.O_CREAT, 0o600)
-                fcntl.flock(self._fd, fcntl.LOCK_EX)
-        except BaseException:
-            self._pass_on()
-            raise
-
-    def __exit__(self, *exc) -> None:
-        if self._fd is not None:
-            fcntl.flock(self._fd, fcntl.LOCK_UN)
-        self._pass_on()
-
-    def _pass_on(self) -> None:
-        with self._mutex:
-            if self._waiting:
-                self._waiting.popleft().release()
-            else:
-                self._held = False
-
-    def close(self) -> None:
-        with self._mutex:
-            if self._fd is not None and not self._held:
-                os.close(self._fd)
-                self._fd = None
 
 
 def _sqlite_file(engine: Engine) -> str | None:
@@ -320,20 +281,20 @@ def _new_study(sid: str, owner: str, req: dict, rhash: str, model_name: str, tas
     any_ok = False
     for i, (task, key) in enumerate(zip(tasks, keys)):
         hit = cached.get(key)
-        row = {"study_id": sid, "task_index": i, "task_key": key, "task": _json_safe(task), "updated_at": now,
+        row = {"study_id": sid, "task_index": i, "task_key": key, "task": json_text(task), "updated_at": now,
                "lease_owner": None, "lease_until": None, "attempts": 0}
         if hit is not None:
             done += 1
             any_ok = any_ok or hit["row"].get("error") is None
-            row.update(status=_row_status(hit["row"]), cached=True, row=hit["row"], seconds=hit["seconds"])
+            row.update(status=_row_status(hit["row"]), cached=True, row=hit["text"], seconds=hit["seconds"])
         else:
             pending.append((i, task))
             row.update(status="pending", cached=False, row=None, seconds=None)
         rows.append(row)
     status = ("done" if any_ok else "failed") if tasks and done == len(tasks) else "queued"
-    best = (best_connectivity([{**(r["row"] or {}), "status": r["status"]} for r in rows])
+    best = (best_connectivity([{**cached[k]["row"], "status": r["status"]} for r, k in zip(rows, keys) if k in cached])
             if status != "queued" else None)
-    study = {"id": sid, "owner": owner, "status": status, "model_name": model_name[:200], "request": req,
+    study = {"id": sid, "owner": owner, "status": status, "model_name": model_name[:200], "request": json_text(req),
              "request_hash": rhash, "idempotency_key": idempotency_key, "total": len(tasks), "done": done,
              "best_connectivity": best, "created_at": now, "updated_at": now, "claimed_at": None}
     return study, rows, pending
@@ -354,10 +315,12 @@ class Store:
         self._session = sessionmaker(self.engine, expire_on_commit=False)
         self._write_session = sessionmaker(self.engine.execution_options(toposcout_write=True),
                                            expire_on_commit=False)
-        # SQLite allows one writer: writers queue on _WriteLock first, then BEGIN IMMEDIATE finds it free
+        # SQLite allows one writer: writers queue on WriteLock (then BEGIN IMMEDIATE finds it free), and
+        # new studies are written several per transaction (store/writing.py)
         sqlite = self.engine.dialect.name == "sqlite"
         path = _sqlite_file(self.engine) if sqlite else None
-        self._write_lock = _WriteLock(path and path + "-writelock") if sqlite else contextlib.nullcontext()
+        self._write_lock = WriteLock(path and path + "-writelock") if sqlite else contextlib.nullcontext()
+        self._group = GroupWriter(self._writing) if sqlite else None
         self._hits = _Memo(4096)  # task key -> cached row and seconds (see _cached_hits)
 
     @contextlib.contextmanager
@@ -377,8 +340,10 @@ class Store:
         return self.engine.dialect.name
 
     def close(self) -> None:
+        if self._group is not None:
+            self._group.close()
         self.engine.dispose()
-        if isinstance(self._write_lock, _WriteLock):
+        if isinstance(self._write_lock, WriteLock):
             self._write_lock.close()
 
     # --- studies ------------------------------------------------------------------
@@ -407,13 +372,21 @@ class Store:
         cached = self._cached_hits(set(keys))
         study, rows, pending = _new_study(study_id or new_study_id(), owner, req, rhash, model_name, tasks, keys,
                                           idempotency_key, cached)
-        try:
-            with self._writing() as s:
+        capped = bool(pending) and (max_active is not None or max_queued is not None)
+
+        def write(s: Session) -> None:
+            if capped:
                 self._check_caps(s, owner, len(pending), max_active, max_queued)
-                conn = s.connection()
-                conn.execute(insert(StudyRecord.__table__), [study])
-                if rows:
-                    conn.execute(insert(RowRecord.__table__), rows)
+            conn = s.connection()
+            conn.execute(insert(StudyRecord.__table__), [study])
+            if rows:
+                conn.execute(insert(RowRecord.__table__), rows)
+        try:
+            if self._group is not None:  # SQLite: in the next group transaction
+                self._group.write(write, may_fail=capped or idempotency_key is not None)
+            else:
+                with self._writing() as s:
+                    write(s)
         except IntegrityError:
             if idempotency_key is None:
                 raise
@@ -421,7 +394,7 @@ class Store:
             if found is None:  # pragma: no cover - the conflicting row vanished again
                 raise
             return found, False, []
-        return self._summary(StudyRecord(**study)), True, pending
+        return self._summary(StudyRecord(**{**study, "request": req})), True, pending
 
     def _check_caps(self, s: Session, owner: str, must_run: int, max_active: int | None,
                     max_queued: int | None) -> None:
@@ -469,6 +442,7 @@ class Store:
             with self._session() as s:
                 found = self._cached(s, missing)
             for k, hit in found.items():
+                hit["text"] = json_text(hit["row"])  # written into every study that reuses it
                 self._hits.put(k, hit)
             out.update(found)
         return out
