@@ -202,3 +202,58 @@ def test_task_duration_histogram(store):
         store.record_row(s["id"], i, {"error": None}, secs)
     counts, total, seconds = store.task_seconds_histogram([0.1, 1.0, 10.0])
     assert counts == [1, 2, 2] and total == 3 and seconds == pytest.approx(20.75)
+
+
+def test_cap_holds_under_concurrent_creation(store):
+    # 20 threads at once, one owner, cap 5: exactly 5 studies; on SQLite they share group transactions,
+    # where each capped study is a savepoint of its own (service/store/writing.py)
+    barrier = threading.Barrier(20)
+    outcomes: list[str] = []
+
+    def submit(i: int) -> None:
+        barrier.wait()
+        try:
+            _new(store, 1, tag=f"burst{i}", max_active=5)
+            outcomes.append("created")
+        except TooManyActive:
+            outcomes.append("refused")
+
+    threads = [threading.Thread(target=submit, args=(i,)) for i in range(20)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert outcomes.count("created") == 5 and outcomes.count("refused") == 15
+    assert store.active_count("alice") == 5 and store.list_studies(owner="alice")[1] == 5
+
+
+def test_resubmission_from_an_event_loop(store):
+    first, _, _ = _new(store, 2, tag="r")
+    assert store.create_study_nowait(owner="alice", request={"tag": "r"}, model_name="r",
+                                     tasks=_tasks(2, "r")[0], keys=_tasks(2, "r")[1]) is None  # nothing cached yet
+    for i in range(2):
+        store.record_row(first["id"], i, {"error": None, "depth": i, "two_qubit_gates": 5 - i,
+                                          "connectivity": f"line-{i + 3}"}, 0.1)
+    threaded, _, _ = _new(store, 2, tag="r")  # reads the cache, so this process now knows both keys
+    tasks, keys = _tasks(2, "r")
+    future = store.create_study_nowait(owner="alice", request={"tag": "r"}, model_name="r", tasks=tasks, keys=keys)
+    if store.dialect != "sqlite":  # PostgreSQL has no group writer: the caller uses create_study in a thread
+        assert future is None
+        return
+    summary, created, pending = future.result(timeout=30)
+    assert created and pending == [] and summary["id"] not in (first["id"], threaded["id"])
+    same = {k: summary[k] for k in ("status", "progress", "best_connectivity", "model_name", "owner", "label")}
+    assert same == {k: threaded[k] for k in same} and same["status"] == "done"
+    got = store.get_study(summary["id"])
+    assert [(r["status"], r["cached"], r["depth"]) for r in got["rows"]] == [("done", True, 0), ("done", True, 1)]
+    assert got["request"] == {"tag": "r"}
+
+
+def test_non_finite_numbers_are_stored_as_null(store):
+    tasks, keys = _tasks(1, "nan")
+    tasks[0]["x"] = float("nan")
+    s, _, _ = store.create_study(owner="alice", request={"tag": "nan", "scale": float("inf")}, model_name="nan",
+                                 tasks=tasks, keys=keys)
+    got = store.get_study(s["id"])
+    assert got["request"] == {"tag": "nan", "scale": None}
+    assert store.unfinished()[0][1][0][1]["x"] is None

@@ -31,6 +31,7 @@ for the queue, for claims), so a count and the insert that depends on it cannot 
 from __future__ import annotations
 
 import base64
+import concurrent.futures
 import contextlib
 import datetime as dt
 import hashlib
@@ -271,33 +272,52 @@ class _Memo:
                 del self._d[next(iter(self._d))]
 
 
-def _new_study(sid: str, owner: str, req: dict, rhash: str, model_name: str, tasks: list[dict], keys: list[str],
-               idempotency_key: str | None, cached: Mapping[str, dict]) -> tuple[dict, list[dict], list]:
-    """The ``studies`` row, the ``study_rows`` rows and the pending ``(task_index, task)`` of a new
-    study, rows whose key is in ``cached`` done at once."""
-    now = utcnow()
-    pending, rows = [], []
-    done = 0
-    any_ok = False
-    for i, (task, key) in enumerate(zip(tasks, keys)):
-        hit = cached.get(key)
-        row = {"study_id": sid, "task_index": i, "task_key": key, "task": json_text(task), "updated_at": now,
-               "lease_owner": None, "lease_until": None, "attempts": 0}
-        if hit is not None:
-            done += 1
-            any_ok = any_ok or hit["row"].get("error") is None
-            row.update(status=_row_status(hit["row"]), cached=True, row=hit["text"], seconds=hit["seconds"])
-        else:
-            pending.append((i, task))
-            row.update(status="pending", cached=False, row=None, seconds=None)
-        rows.append(row)
-    status = ("done" if any_ok else "failed") if tasks and done == len(tasks) else "queued"
-    best = (best_connectivity([{**cached[k]["row"], "status": r["status"]} for r, k in zip(rows, keys) if k in cached])
-            if status != "queued" else None)
-    study = {"id": sid, "owner": owner, "status": status, "model_name": model_name[:200], "request": json_text(req),
-             "request_hash": rhash, "idempotency_key": idempotency_key, "total": len(tasks), "done": done,
-             "best_connectivity": best, "created_at": now, "updated_at": now, "claimed_at": None}
-    return study, rows, pending
+class _NewStudy:
+    """A new study as rows to insert (``study``, ``rows``) and its pending ``(task_index, task)``; rows
+    whose key is in ``cached`` are done at once. :meth:`write` inserts them in a write transaction
+    (after the caps when the study has tasks to run), :meth:`result` is what create_study returns."""
+
+    def __init__(self, store: "Store", sid: str, owner: str, req: dict, rhash: str, model_name: str,
+                 tasks: list[dict], keys: list[str], idempotency_key: str | None, cached: Mapping[str, dict],
+                 max_active: int | None, max_queued: int | None):
+        now = utcnow()
+        self.store, self.owner, self.req, self.max_active, self.max_queued = store, owner, req, max_active, max_queued
+        self.pending, self.rows = [], []
+        done = 0
+        any_ok = False
+        for i, (task, key) in enumerate(zip(tasks, keys)):
+            hit = cached.get(key)
+            row = {"study_id": sid, "task_index": i, "task_key": key, "task": json_text(task), "updated_at": now,
+                   "lease_owner": None, "lease_until": None, "attempts": 0}
+            if hit is not None:
+                done += 1
+                any_ok = any_ok or hit["row"].get("error") is None
+                row.update(status=_row_status(hit["row"]), cached=True, row=hit["text"], seconds=hit["seconds"])
+            else:
+                self.pending.append((i, task))
+                row.update(status="pending", cached=False, row=None, seconds=None)
+            self.rows.append(row)
+        status = ("done" if any_ok else "failed") if tasks and done == len(tasks) else "queued"
+        best = (best_connectivity([{**cached[k]["row"], "status": r["status"]} for r, k in zip(self.rows, keys)
+                                   if k in cached]) if status != "queued" else None)
+        self.study = {"id": sid, "owner": owner, "status": status, "model_name": model_name[:200],
+                      "request": json_text(req), "request_hash": rhash, "idempotency_key": idempotency_key,
+                      "total": len(tasks), "done": done, "best_connectivity": best, "created_at": now,
+                      "updated_at": now, "claimed_at": None}
+        self.capped = bool(self.pending) and (max_active is not None or max_queued is not None)
+        #: a refusal (a cap) or a conflict (the Idempotency-Key) can undo this study alone
+        self.may_fail = self.capped or idempotency_key is not None
+
+    def write(self, s: Session) -> None:
+        if self.capped:
+            self.store._check_caps(s, self.owner, len(self.pending), self.max_active, self.max_queued)
+        conn = s.connection()
+        conn.execute(insert(StudyRecord.__table__), [self.study])
+        if self.rows:
+            conn.execute(insert(RowRecord.__table__), self.rows)
+
+    def result(self) -> tuple[dict, bool, list[tuple[int, dict]]]:
+        return self.store._summary(StudyRecord(**{**self.study, "request": self.req})), True, self.pending
 
 
 class Store:
@@ -369,24 +389,14 @@ class Store:
                 return found, False, []
         # results are only ever added, never changed or removed: read before the write transaction,
         # so the write lock (SQLite: one writer for every process) is held only for the inserts
-        cached = self._cached_hits(set(keys))
-        study, rows, pending = _new_study(study_id or new_study_id(), owner, req, rhash, model_name, tasks, keys,
-                                          idempotency_key, cached)
-        capped = bool(pending) and (max_active is not None or max_queued is not None)
-
-        def write(s: Session) -> None:
-            if capped:
-                self._check_caps(s, owner, len(pending), max_active, max_queued)
-            conn = s.connection()
-            conn.execute(insert(StudyRecord.__table__), [study])
-            if rows:
-                conn.execute(insert(RowRecord.__table__), rows)
+        new = _NewStudy(self, study_id or new_study_id(), owner, req, rhash, model_name, tasks, keys,
+                        idempotency_key, self._cached_hits(set(keys)), max_active, max_queued)
         try:
             if self._group is not None:  # SQLite: in the next group transaction
-                self._group.write(write, may_fail=capped or idempotency_key is not None)
+                self._group.write(new.write, may_fail=new.may_fail)
             else:
                 with self._writing() as s:
-                    write(s)
+                    new.write(s)
         except IntegrityError:
             if idempotency_key is None:
                 raise
@@ -394,7 +404,34 @@ class Store:
             if found is None:  # pragma: no cover - the conflicting row vanished again
                 raise
             return found, False, []
-        return self._summary(StudyRecord(**{**study, "request": req})), True, pending
+        return new.result()
+
+    def create_study_nowait(self, *, owner: str, request: Mapping[str, Any], model_name: str,
+                            tasks: list[dict], keys: list[str], max_active: int | None = None,
+                            max_queued: int | None = None) -> concurrent.futures.Future | None:
+        """:meth:`create_study` without an Idempotency-Key, for an event loop: when it needs no read
+        (SQLite, and every key is one this process already knows as cached: a resubmission) the study
+        is built here and its write handed to the group writer; the future gives ``(summary, True,
+        pending)`` or raises what create_study raises. None when it would have to read first: then call
+        :meth:`create_study` in a thread."""
+        if self._group is None:
+            return None
+        cached = {k: hit for k in set(keys) if (hit := self._hits.get(k)) is not None}
+        if len(cached) < len(set(keys)):
+            return None
+        req = _json_safe(dict(request))
+        new = _NewStudy(self, new_study_id(), owner, req, request_hash(req), model_name, tasks, keys, None, cached,
+                        max_active, max_queued)
+        out: concurrent.futures.Future = concurrent.futures.Future()
+
+        def done(f: concurrent.futures.Future) -> None:
+            exc = f.exception()
+            if exc is not None:
+                out.set_exception(exc)
+            else:
+                out.set_result(new.result())
+        self._group.submit(new.write, may_fail=new.may_fail).add_done_callback(done)
+        return out
 
     def _check_caps(self, s: Session, owner: str, must_run: int, max_active: int | None,
                     max_queued: int | None) -> None:

@@ -112,10 +112,14 @@ class GroupWriter:
 
     def write(self, write: Callable[[Any], Any], *, may_fail: bool = True) -> Any:
         """``may_fail``: the call can raise (it then runs in a savepoint); a call that cannot skips it."""
+        return self.submit(write, may_fail=may_fail).result()
+
+    def submit(self, write: Callable[[Any], Any], *, may_fail: bool = True) -> concurrent.futures.Future:
+        """:meth:`write` without waiting: the future of its result."""
         job = _Job(write, may_fail)
         self._ensure_thread()
         self._queue.put(job)
-        return job.future.result()
+        return job.future
 
     def _ensure_thread(self) -> None:
         if self._thread is not None and self._thread.is_alive():

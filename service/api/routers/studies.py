@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import collections
 import io
 import json
@@ -37,7 +38,30 @@ IDEMPOTENCY_KEY = Header(alias="Idempotency-Key", min_length=1, max_length=200, 
 async def submit_study(request: Request, owner: Owner, settings: SettingsDep, store: StoreDep,
                        idempotency_key: Annotated[str | None, IDEMPOTENCY_KEY] = None):
     kind, payload, filename = await read_request(request, settings)
+    if idempotency_key is None and _small(request):
+        # a resubmission answered from the cache: built on the loop, only its insert waits (for the
+        # store's group writer), so no thread of the pool is woken for it
+        prep = _PREPARED.peek(kind, payload, filename, settings)
+        future = None if prep is None else store.create_study_nowait(
+            owner=owner, request=prep.request, model_name=prep.model.name, tasks=prep.tasks, keys=prep.keys,
+            max_active=settings.max_active_studies_per_owner, max_queued=settings.max_queued_tasks)
+        if future is not None:
+            try:
+                summary, _, _ = await asyncio.wrap_future(future)
+            except (TooManyActive, QueueFull) as exc:
+                return _refused(exc, owner, settings, prep)
+            return _accepted(summary)
     return await run_in_threadpool(_submit, kind, payload, filename, owner, idempotency_key, settings, store)
+
+
+#: bodies up to this size are looked up in the memo on the event loop (a key of a form's fields is
+#: their canonical JSON, made there)
+SMALL_BODY_BYTES = 16384
+
+
+def _small(request: Request) -> bool:
+    length = request.headers.get("content-length", "")
+    return length.isdigit() and int(length) <= SMALL_BODY_BYTES
 
 
 class _PreparedMemo:
@@ -63,14 +87,24 @@ class _PreparedMemo:
             return None
         return kind, text, filename, id(settings)
 
+    def _hit(self, key: tuple | None) -> Prepared | None:
+        if key is None:
+            return None
+        with self._lock:
+            hit = self._d.get(key)
+            if hit is not None:
+                self._d.move_to_end(key)
+            return hit
+
+    def peek(self, kind: str, payload, filename: str | None, settings) -> Prepared | None:
+        """The prepared request if this process prepared the same one before, else None (no work)."""
+        return self._hit(self._key(kind, payload, filename, settings))
+
     def get(self, kind: str, payload, filename: str | None, settings) -> Prepared:
         key = self._key(kind, payload, filename, settings)
-        if key is not None:
-            with self._lock:
-                hit = self._d.get(key)
-                if hit is not None:
-                    self._d.move_to_end(key)
-                    return hit
+        hit = self._hit(key)
+        if hit is not None:
+            return hit
         prep = prepare_request(kind, payload, filename, settings)
         if key is not None:
             with self._lock:
@@ -95,14 +129,22 @@ def _submit(kind: str, payload, filename: str | None, owner: str, idempotency_ke
             owner=owner, request=prep.request, model_name=prep.model.name, tasks=prep.tasks, keys=prep.keys,
             idempotency_key=idempotency_key, max_active=settings.max_active_studies_per_owner,
             max_queued=settings.max_queued_tasks)
-    except TooManyActive as exc:
+    except (TooManyActive, QueueFull) as exc:
+        return _refused(exc, owner, settings, prep)
+    return _accepted(summary)
+
+
+def _refused(exc: TooManyActive | QueueFull, owner: str, settings, prep: Prepared) -> JSONResponse:
+    if isinstance(exc, TooManyActive):
         return error(429, f"owner {owner} already has {exc.active} studies queued or running (cap "
                           f"max_active_studies_per_owner={settings.max_active_studies_per_owner}); wait for one "
                           "to finish or cancel one, then retry", None, {"Retry-After": "5"})
-    except QueueFull as exc:
-        return error(429, f"the service already has {exc.queued} tasks queued and this study's "
-                          f"{len(prep.tasks)} would pass its cap (max_queued_tasks={settings.max_queued_tasks}); "
-                          "retry later", None, {"Retry-After": "30"})
+    return error(429, f"the service already has {exc.queued} tasks queued and this study's "
+                      f"{len(prep.tasks)} would pass its cap (max_queued_tasks={settings.max_queued_tasks}); "
+                      "retry later", None, {"Retry-After": "30"})
+
+
+def _accepted(summary: dict) -> JSONResponse:
     url = f"/v1/studies/{summary['id']}"
     body = {"id": summary["id"], "url": url, "status": summary["status"], "progress": summary["progress"]}
     return JSONResponse(body, status_code=202, headers={"Location": url})
