@@ -4,7 +4,8 @@ Measures throughput and p50/p99 latency of
   * ``GET /v1/studies/{id}`` on a finished study (target p99 < 25 ms), and
   * a cached ``POST /v1/studies`` (every task already in the cache: answered without work;
     target p99 < 50 ms),
-and, on PostgreSQL (``--postgres``, a fresh database made and dropped here):
+both on SQLite and, with ``--postgres``, again on a fresh PostgreSQL database; and on PostgreSQL
+(``--postgres``, fresh databases made and dropped here):
   * the per-owner cap under a burst: 20 concurrent submissions of one owner, exactly the cap
     (8) accepted;
   * 200 submissions from 20 clients (one owner each, 10 studies each, an Idempotency-Key per
@@ -316,30 +317,40 @@ def main(argv=None) -> int:
     p.add_argument("--requests", type=int, default=50, help="requests per client per phase (default 50)")
     p.add_argument("--api-workers", type=int, default=1, help="API processes of the server started here (default 1)")
     p.add_argument("--postgres", nargs="?", const=os.environ.get("TOPOSCOUT_TEST_POSTGRES_URL", PG_DEFAULT),
-                   metavar="ADMIN_URL", help="also the PostgreSQL phase (cap burst, 200 submissions with a kill); "
-                                             f"default admin URL {PG_DEFAULT}")
+                   metavar="ADMIN_URL", help="also the latency phases on PostgreSQL, and the cap burst and 200 "
+                                             f"submissions with a kill; default admin URL {PG_DEFAULT}")
     p.add_argument("--skip-latency", action="store_true", help="only the PostgreSQL phase")
     args = p.parse_args(argv)
     if not 1 <= args.clients <= 200 or not 1 <= args.requests <= 1000 or not 1 <= args.api_workers <= 8:
         p.error("--clients must be 1..200, --requests 1..1000, --api-workers 1..8 (the benchmark is bounded)")
     if not args.skip_latency:
-        server = None
-        url = args.url
-        if url is None:
-            from tests.conftest import Server
+        stores = ["SQLite"] + (["PostgreSQL"] if args.postgres and args.url is None else [])
+        for store in stores:
+            server = None
+            drop = None
+            url = args.url
+            if url is None:
+                from tests.conftest import Server
 
-            tmp = Path(tempfile.mkdtemp(prefix="toposcout-bench-"))
-            server = Server(tmp, env={"TOPOSCOUT_WORKERS": "2"}, args=["--workers", str(args.api_workers)]).start()
-            url = server.url
-        host = urlparse(url).hostname
-        if host not in ("127.0.0.1", "localhost", "::1"):
-            p.error("the load benchmark only runs against a loopback address")
-        try:
-            out = run(url, args.token, args.clients, args.requests)
-        finally:
-            if server is not None:
-                server.stop()
-        _print(out, args.clients, args.requests, url + f" ({args.api_workers} API processes)")
+                tmp = Path(tempfile.mkdtemp(prefix="toposcout-bench-"))
+                database_url = None
+                if store == "PostgreSQL":
+                    database_url, drop = _fresh_pg(args.postgres)
+                server = Server(tmp, env={"TOPOSCOUT_WORKERS": "2"}, database_url=database_url,
+                                args=["--workers", str(args.api_workers)]).start()
+                url = server.url
+            host = urlparse(url).hostname
+            if host not in ("127.0.0.1", "localhost", "::1"):
+                p.error("the load benchmark only runs against a loopback address")
+            try:
+                out = run(url, args.token, args.clients, args.requests)
+            finally:
+                if server is not None:
+                    server.stop()
+                if drop is not None:
+                    drop()
+            where = f" ({args.api_workers} API processes, {store})" if args.url is None else ""
+            _print(out, args.clients, args.requests, url + where)
     if args.postgres:
         pg = run_postgres(args.postgres, args.api_workers)
         b, s = pg["burst"], pg["submissions"]
