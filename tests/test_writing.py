@@ -9,6 +9,7 @@ import threading
 import time
 
 import pytest
+from sqlalchemy import Column, ForeignKey, Integer, MetaData, Table, create_engine, select
 
 from toposcout.service.store.writing import GroupWriter, WriteLock
 
@@ -88,6 +89,50 @@ def test_a_failed_transaction_fails_its_whole_group():
             writer.write(lambda s: 2)
     finally:
         writer.close()
+
+
+def test_plain_inserts_of_a_group_go_in_one_statement_per_table_parents_first(tmp_path):
+    meta = MetaData()
+    parent = Table("parent", meta, Column("id", Integer, primary_key=True))
+    child = Table("child", meta, Column("id", Integer, primary_key=True), Column("parent", ForeignKey("parent.id")))
+    engine = create_engine(f"sqlite:///{tmp_path / 'group.db'}")
+    meta.create_all(engine)
+    statements: list[str] = []
+    gate = threading.Event()
+
+    @contextlib.contextmanager
+    def transaction():
+        gate.wait(10)
+        with engine.begin() as conn:
+            yield _Connected(conn, statements)
+
+    writer = GroupWriter(transaction)
+    try:
+        jobs = [writer.submit(inserts=[(parent, [{"id": i}]), (child, [{"id": 10 * i + j, "parent": i}
+                                                                      for j in range(2)])]) for i in range(4)]
+        gate.set()
+        assert [f.result(10) for f in jobs] == [None] * 4
+    finally:
+        writer.close()
+    with engine.connect() as conn:
+        assert conn.execute(select(child.c.parent)).scalars().all() == [0, 0, 1, 1, 2, 2, 3, 3]
+    # the first job may have gone alone; the rest shared one statement per table, parents first
+    assert statements[-2:] == ["parent", "child"] and len(statements) in (2, 4)
+
+
+class _Connected(_Session):
+    def __init__(self, conn, statements: list):
+        super().__init__([])
+        self.conn, self.statements = conn, statements
+
+    def connection(self):
+        outer = self
+
+        class _Recording:
+            def execute(self, stmt, rows):
+                outer.statements.append(stmt.table.name)
+                return outer.conn.execute(stmt, rows)
+        return _Recording()
 
 
 def test_write_lock_serves_threads_in_arrival_order(tmp_path):

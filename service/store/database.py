@@ -24,7 +24,8 @@ Atomic steps: every write is one transaction that holds the write lock from its 
 ``BEGIN IMMEDIATE``, so processes sharing the file queue on the lock instead of failing on a
 stale snapshot; they queue first on :class:`~toposcout.service.store.writing.WriteLock`, and new
 studies are written several per transaction by a :class:`~toposcout.service.store.writing.GroupWriter`,
-each study in a savepoint when a cap or an Idempotency-Key can refuse it); on PostgreSQL the caps and the claim take ``pg_advisory_xact_lock`` (per owner,
+each study in a savepoint when a cap or an Idempotency-Key can refuse it; on PostgreSQL only the studies
+nothing can refuse are grouped); on PostgreSQL the caps and the claim take ``pg_advisory_xact_lock`` (per owner,
 for the queue, for claims), so a count and the insert that depends on it cannot interleave.
 """
 
@@ -308,6 +309,12 @@ class _NewStudy:
         #: a refusal (a cap) or a conflict (the Idempotency-Key) can undo this study alone
         self.may_fail = self.capped or idempotency_key is not None
 
+    def job(self) -> dict:
+        """The group writer's job for this study: plain inserts when nothing can refuse it."""
+        if self.may_fail:
+            return {"write": self.write, "may_fail": True}
+        return {"inserts": [(StudyRecord.__table__, [self.study]), (RowRecord.__table__, self.rows)]}
+
     def write(self, s: Session) -> None:
         if self.capped:
             self.store._check_caps(s, self.owner, len(self.pending), self.max_active, self.max_queued)
@@ -335,12 +342,12 @@ class Store:
         self._session = sessionmaker(self.engine, expire_on_commit=False)
         self._write_session = sessionmaker(self.engine.execution_options(toposcout_write=True),
                                            expire_on_commit=False)
-        # SQLite allows one writer: writers queue on WriteLock (then BEGIN IMMEDIATE finds it free), and
-        # new studies are written several per transaction (store/writing.py)
+        # SQLite allows one writer: writers queue on WriteLock (then BEGIN IMMEDIATE finds it free); new
+        # studies are written several per transaction (store/writing.py; on PostgreSQL the uncapped ones)
         sqlite = self.engine.dialect.name == "sqlite"
         path = _sqlite_file(self.engine) if sqlite else None
         self._write_lock = WriteLock(path and path + "-writelock") if sqlite else contextlib.nullcontext()
-        self._group = GroupWriter(self._writing) if sqlite else None
+        self._group = GroupWriter(self._writing)
         self._hits = _Memo(4096)  # task key -> cached row and seconds (see _cached_hits)
 
     @contextlib.contextmanager
@@ -360,8 +367,7 @@ class Store:
         return self.engine.dialect.name
 
     def close(self) -> None:
-        if self._group is not None:
-            self._group.close()
+        self._group.close()
         self.engine.dispose()
         if isinstance(self._write_lock, WriteLock):
             self._write_lock.close()
@@ -392,8 +398,8 @@ class Store:
         new = _NewStudy(self, study_id or new_study_id(), owner, req, rhash, model_name, tasks, keys,
                         idempotency_key, self._cached_hits(set(keys)), max_active, max_queued)
         try:
-            if self._group is not None:  # SQLite: in the next group transaction
-                self._group.write(new.write, may_fail=new.may_fail)
+            if self._grouped(new):
+                self._group.submit(**new.job()).result()
             else:
                 with self._writing() as s:
                     new.write(s)
@@ -410,18 +416,18 @@ class Store:
                             tasks: list[dict], keys: list[str], max_active: int | None = None,
                             max_queued: int | None = None) -> concurrent.futures.Future | None:
         """:meth:`create_study` without an Idempotency-Key, for an event loop: when it needs no read
-        (SQLite, and every key is one this process already knows as cached: a resubmission) the study
-        is built here and its write handed to the group writer; the future gives ``(summary, True,
+        (every key is one this process already knows as cached: a resubmission) the study is built
+        here and its inserts handed to the group writer; the future gives ``(summary, True,
         pending)`` or raises what create_study raises. None when it would have to read first: then call
         :meth:`create_study` in a thread."""
-        if self._group is None:
-            return None
         cached = {k: hit for k in set(keys) if (hit := self._hits.get(k)) is not None}
         if len(cached) < len(set(keys)):
             return None
         req = _json_safe(dict(request))
         new = _NewStudy(self, new_study_id(), owner, req, request_hash(req), model_name, tasks, keys, None, cached,
                         max_active, max_queued)
+        if not self._grouped(new):  # pragma: no cover - every key cached and no Idempotency-Key: never refused
+            return None
         out: concurrent.futures.Future = concurrent.futures.Future()
 
         def done(f: concurrent.futures.Future) -> None:
@@ -430,8 +436,13 @@ class Store:
                 out.set_exception(exc)
             else:
                 out.set_result(new.result())
-        self._group.submit(new.write, may_fail=new.may_fail).add_done_callback(done)
+        self._group.submit(**new.job()).add_done_callback(done)
         return out
+
+    def _grouped(self, new: "_NewStudy") -> bool:
+        """Whether ``new`` goes to the group writer: always on SQLite; on PostgreSQL when nothing can
+        refuse it (writing.py's module text)."""
+        return self.dialect == "sqlite" or not new.may_fail
 
     def _check_caps(self, s: Session, owner: str, must_run: int, max_active: int | None,
                     max_queued: int | None) -> None:

@@ -16,7 +16,10 @@ checkpoint). Measured with two API processes and 20 clients each resubmitting a 
   techniques for main memory database systems", SIGMOD 1984; from memory), each in a savepoint of
   its own when it can fail (a cap, an Idempotency-Key), so one study's refusal does not undo the others.
 
-PostgreSQL needs neither: it runs concurrent writers itself (the caps there take advisory locks).
+PostgreSQL needs no lock of ours (it runs concurrent writers itself; the caps take advisory locks),
+but its commits wait for the WAL to be flushed, so new studies that no cap or key can refuse (every
+task cached) are group-committed there too; the others keep a transaction each, whose advisory locks
+could otherwise be taken in different orders by two groups.
 """
 
 from __future__ import annotations
@@ -27,6 +30,8 @@ import os
 import queue
 import threading
 from typing import Any, Callable
+
+from sqlalchemy import insert
 
 try:
     import fcntl
@@ -89,19 +94,21 @@ class WriteLock:
 
 
 class _Job:
-    __slots__ = ("write", "may_fail", "future")
+    __slots__ = ("write", "may_fail", "inserts", "future")
 
-    def __init__(self, write: Callable[[Any], Any], may_fail: bool):
-        self.write, self.may_fail = write, may_fail
+    def __init__(self, write: Callable[[Any], Any] | None, may_fail: bool, inserts: list | None):
+        self.write, self.may_fail, self.inserts = write, may_fail, inserts
         self.future: concurrent.futures.Future = concurrent.futures.Future()
 
 
 class GroupWriter:
-    """Runs ``write(session)`` calls of many threads in shared transactions (module text).
+    """Runs the writes of many threads in shared transactions (module text).
 
     ``transaction()`` is a context manager giving a session in a write transaction (the store's
-    ``_writing``); :meth:`write` blocks until the transaction holding its call committed and returns
-    the call's result or raises its exception (or the commit's)."""
+    ``_writing``). A job is either ``write(session)``, which may raise (it then runs in a savepoint of
+    its own unless ``may_fail`` is False), or plain ``inserts`` (``[(table, rows), ...]``) that cannot
+    fail: those of the whole group go in one statement per table, after the calls, tables in the order
+    first named (so a parent table named before its children stays before them)."""
 
     def __init__(self, transaction: Callable[[], Any], max_group: int = MAX_GROUP):
         self._transaction = transaction
@@ -111,12 +118,16 @@ class GroupWriter:
         self._start = threading.Lock()
 
     def write(self, write: Callable[[Any], Any], *, may_fail: bool = True) -> Any:
-        """``may_fail``: the call can raise (it then runs in a savepoint); a call that cannot skips it."""
+        """Blocks until the transaction holding ``write`` committed; its result, or its exception (or
+        the commit's)."""
         return self.submit(write, may_fail=may_fail).result()
 
-    def submit(self, write: Callable[[Any], Any], *, may_fail: bool = True) -> concurrent.futures.Future:
-        """:meth:`write` without waiting: the future of its result."""
-        job = _Job(write, may_fail)
+    def submit(self, write: Callable[[Any], Any] | None = None, *, may_fail: bool = True,
+               inserts: list[tuple[Any, list[dict]]] | None = None) -> concurrent.futures.Future:
+        """:meth:`write` without waiting (or plain ``inserts``): the future of its result."""
+        if (write is None) == (inserts is None):
+            raise ValueError("give write or inserts")
+        job = _Job(write, may_fail and write is not None, inserts)
         self._ensure_thread()
         self._queue.put(job)
         return job.future
@@ -160,14 +171,17 @@ class GroupWriter:
         try:
             with self._transaction() as s:
                 for job in group:
+                    if job.write is None:
+                        continue
                     if not job.may_fail:
                         outcome.append((job, True, job.write(s)))
                         continue
                     try:
                         with s.begin_nested():
                             outcome.append((job, True, job.write(s)))
-                    except Exception as exc:  # this study only: its savepoint is rolled back
+                    except Exception as exc:  # this job only: its savepoint is rolled back
                         outcome.append((job, False, exc))
+                _insert_together(s, [job for job in group if job.inserts is not None])
         except BaseException as exc:  # the transaction itself failed: nothing of the group was written
             for job in group:
                 job.future.set_exception(exc)
@@ -179,3 +193,19 @@ class GroupWriter:
                 job.future.set_result(value)
             else:
                 job.future.set_exception(value)
+        for job in group:
+            if job.inserts is not None:
+                job.future.set_result(None)
+
+
+def _insert_together(s: Any, jobs: list[_Job]) -> None:
+    """The plain inserts of ``jobs``: one executemany per table."""
+    by_table: dict[Any, list[dict]] = {}
+    for job in jobs:
+        for table, rows in job.inserts:
+            by_table.setdefault(table, []).extend(rows)
+    if by_table:
+        conn = s.connection()
+        for table, rows in by_table.items():
+            if rows:
+                conn.execute(insert(table), rows)
