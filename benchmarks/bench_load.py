@@ -16,7 +16,10 @@ both on SQLite and, with ``--postgres``, again on a fresh PostgreSQL database; a
 By default it starts its own ``toposcout serve`` on 127.0.0.1 (a free port, a temporary data
 folder, SQLite; ``--api-workers N`` API processes) and stops it afterwards; ``--url`` points
 the first two phases at a running server instead (``--token`` for one with tokens). Only
-loopback addresses are accepted.
+loopback addresses are accepted. The Python clients are threads of one process unless
+``--client-processes P`` spreads them over P processes: in one process they share one interpreter
+lock, and the time a client waits for it is in its latency (wrk, when installed, measures the
+same requests from C).
 
     .venv/bin/python benchmarks/bench_load.py                  # 20 clients x 50 requests per phase
     .venv/bin/python benchmarks/bench_load.py --api-workers 2 --postgres
@@ -52,40 +55,76 @@ def _percentile(xs: list[float], q: float) -> float:
     return xs[k]
 
 
-def _phase(url: str, headers: dict, clients: int, requests: int, call) -> dict:
+def _call(c: httpx.Client, spec: tuple) -> httpx.Response:
+    method, path, body = spec
+    return c.get(path) if method == "GET" else c.post(path, json=body)
+
+
+def _clients(url: str, headers: dict, clients: int, requests: int, spec: tuple, barrier) -> tuple:
+    """``clients`` threads of this process, each ``requests`` calls after the barrier: latencies,
+    errors, and the first start and last end (perf_counter: CLOCK_MONOTONIC, one clock for all processes)."""
     latencies: list[float] = []
     errors: list[str] = []
+    spans: list[tuple[float, float]] = []
     lock = threading.Lock()
-    barrier = threading.Barrier(clients)
 
     def worker():
         mine, bad = [], []
         with httpx.Client(base_url=url, headers=headers, timeout=30) as c:
-            call(c)  # warm the connection
+            _call(c, spec)  # warm the connection
             barrier.wait()
+            start = time.perf_counter()
             for _ in range(requests):
                 t0 = time.perf_counter()
-                r = call(c)
+                r = _call(c, spec)
                 mine.append(time.perf_counter() - t0)
                 if r.status_code >= 300:
                     bad.append(f"{r.status_code} {r.text[:100]}")
+            end = time.perf_counter()
         with lock:
             latencies.extend(mine)
             errors.extend(bad)
+            spans.append((start, end))
 
     threads = [threading.Thread(target=worker) for _ in range(clients)]
-    t0 = time.perf_counter()
     for t in threads:
         t.start()
     for t in threads:
         t.join()
-    wall = time.perf_counter() - t0
+    return latencies, errors, min(s for s, _ in spans), max(e for _, e in spans)
+
+
+def _client_process(url, headers, clients, requests, spec, barrier, out) -> None:
+    out.put(_clients(url, headers, clients, requests, spec, barrier))
+
+
+def _phase(url: str, headers: dict, clients: int, requests: int, spec: tuple, processes: int = 1) -> dict:
+    """``clients`` concurrent clients (threads), spread over ``processes`` load-generator processes
+    (one: every client shares one interpreter lock, which then adds to what they measure)."""
+    if processes == 1:
+        parts = [_clients(url, headers, clients, requests, spec, threading.Barrier(clients))]
+    else:
+        import multiprocessing  # only for a load generator of several processes
+
+        ctx = multiprocessing.get_context("spawn")
+        barrier, out = ctx.Barrier(clients), ctx.Queue()
+        shares = [n for n in (clients // processes + (i < clients % processes) for i in range(processes)) if n]
+        procs = [ctx.Process(target=_client_process, args=(url, headers, n, requests, spec, barrier, out))
+                 for n in shares]
+        for pr in procs:
+            pr.start()
+        parts = [out.get(timeout=600) for _ in procs]
+        for pr in procs:
+            pr.join(30)
+    latencies = [x for part in parts for x in part[0]]
+    errors = [x for part in parts for x in part[1]]
+    wall = max(p[3] for p in parts) - min(p[2] for p in parts)
     return {"requests": len(latencies), "errors": len(errors), "first_error": errors[0] if errors else None,
             "throughput_rps": len(latencies) / wall, "p50_ms": 1000 * statistics.median(latencies),
             "p99_ms": 1000 * _percentile(latencies, 99), "max_ms": 1000 * max(latencies)}
 
 
-def run(url: str, token: str | None, clients: int, requests: int) -> dict:
+def run(url: str, token: str | None, clients: int, requests: int, processes: int = 1) -> dict:
     headers = {"Authorization": f"Bearer {token}"} if token else {}
     with httpx.Client(base_url=url, headers=headers, timeout=120) as c:
         sid = c.post("/v1/studies", json=BODY).json()["id"]
@@ -95,8 +134,8 @@ def run(url: str, token: str | None, clients: int, requests: int) -> dict:
                 raise SystemExit("the warm-up study did not finish within 300 s")
             time.sleep(0.2)
         n_rows = len(c.get(f"/v1/studies/{sid}").json()["rows"])
-    get = _phase(url, headers, clients, requests, lambda c: c.get(f"/v1/studies/{sid}"))
-    post = _phase(url, headers, clients, requests, lambda c: c.post("/v1/studies", json=BODY))
+    get = _phase(url, headers, clients, requests, ("GET", f"/v1/studies/{sid}", None), processes)
+    post = _phase(url, headers, clients, requests, ("POST", "/v1/studies", BODY), processes)
     out = {"rows_per_study": n_rows, "get_done_study": get, "cached_post": post}
     if shutil.which("wrk"):
         out["wrk_get"] = _wrk(f"{url}/v1/studies/{sid}", clients, token, None)
@@ -315,14 +354,18 @@ def main(argv=None) -> int:
     p.add_argument("--token", default=os.environ.get("TOPOSCOUT_TOKEN"), help="bearer token for --url")
     p.add_argument("--clients", type=int, default=20, help="concurrent clients (default 20)")
     p.add_argument("--requests", type=int, default=50, help="requests per client per phase (default 50)")
+    p.add_argument("--client-processes", type=int, default=1, metavar="P",
+                   help="spread the Python clients over P processes (default 1: all 20 share one interpreter lock)")
     p.add_argument("--api-workers", type=int, default=1, help="API processes of the server started here (default 1)")
     p.add_argument("--postgres", nargs="?", const=os.environ.get("TOPOSCOUT_TEST_POSTGRES_URL", PG_DEFAULT),
                    metavar="ADMIN_URL", help="also the latency phases on PostgreSQL, and the cap burst and 200 "
                                              f"submissions with a kill; default admin URL {PG_DEFAULT}")
     p.add_argument("--skip-latency", action="store_true", help="only the PostgreSQL phase")
     args = p.parse_args(argv)
-    if not 1 <= args.clients <= 200 or not 1 <= args.requests <= 1000 or not 1 <= args.api_workers <= 8:
-        p.error("--clients must be 1..200, --requests 1..1000, --api-workers 1..8 (the benchmark is bounded)")
+    if not 1 <= args.clients <= 200 or not 1 <= args.requests <= 1000 or not 1 <= args.api_workers <= 8 \
+            or not 1 <= args.client_processes <= min(16, args.clients):
+        p.error("--clients must be 1..200, --requests 1..1000, --api-workers 1..8, --client-processes 1..16 and at "
+                "most --clients (the benchmark is bounded)")
     if not args.skip_latency:
         stores = ["SQLite"] + (["PostgreSQL"] if args.postgres and args.url is None else [])
         for store in stores:
@@ -343,13 +386,14 @@ def main(argv=None) -> int:
             if host not in ("127.0.0.1", "localhost", "::1"):
                 p.error("the load benchmark only runs against a loopback address")
             try:
-                out = run(url, args.token, args.clients, args.requests)
+                out = run(url, args.token, args.clients, args.requests, args.client_processes)
             finally:
                 if server is not None:
                     server.stop()
                 if drop is not None:
                     drop()
             where = f" ({args.api_workers} API processes, {store})" if args.url is None else ""
+            where += f", clients in {args.client_processes} processes" if args.client_processes > 1 else ""
             _print(out, args.clients, args.requests, url + where)
     if args.postgres:
         pg = run_postgres(args.postgres, args.api_workers)
