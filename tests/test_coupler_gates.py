@@ -289,3 +289,22 @@ def test_the_grid_example_has_a_corner_of_cz_couplers_and_compiles_to_them(chain
                        placements=[[4, 5, 11, 10]])
     used = _two_qubit_gates(c.circuit)
     assert all(name == want[pair] for name, pair in used) and "cz" in {n for n, _ in used}
+
+
+def test_the_api_compiles_to_the_devices_own_gate_unless_the_request_names_one(tmp_path, chain_model):
+    # the device file's native_gate is the default gate set, as on the CLI; a request's gate_set wins
+    from fastapi.testclient import TestClient
+
+    from toposcout.service.api.app import create_app
+    from toposcout.service.settings import Settings
+
+    text = _text(("cz", "cz", "cz", "cz"))
+    with TestClient(create_app(Settings(data_dir=tmp_path / "data", workers=1))) as c:
+        own = c.post("/v1/compile", json={"model": chain_model(4), "device": text})
+        named = c.post("/v1/compile", json={"model": chain_model(4), "device": text, "gate_set": "cx"})
+        plain = c.post("/v1/compile", json={"model": chain_model(4), "connectivities": ["line"]})
+    assert own.status_code == named.status_code == plain.status_code == 200, (own.text, named.text)
+    rows = {k: r.json()["rows"] for k, r in (("own", own), ("named", named), ("plain", plain))}
+    assert {r["gate_set"] for r in rows["own"]} == {"cz"}
+    assert {r["gate_set"] for r in rows["named"]} == {"cx"}
+    assert {r["gate_set"] for r in rows["plain"]} == {"cx"}

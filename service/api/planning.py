@@ -206,7 +206,8 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
                 settings.max_study_model_bytes)
     _work_caps(req, settings)
     profile = None if compile_only else _profile(req.profile)
-    options: dict[str, Any] = dict(gate_set=req.gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
+    gate_set = req.gate_set or (device.native_gate if device is not None else "cx")
+    options: dict[str, Any] = dict(gate_set=gate_set, strategy=req.strategy, seeds=req.seeds, family=req.family,
                                    layers=req.layers, seed=req.seed, compile_only=compile_only, profile=profile,
                                    keep_circuit=keep_circuit)
     if device is not None:
@@ -230,7 +231,7 @@ def _prepare(req: StudyRequest, settings, *, filename: str | None = None, compil
     for fam in families:
         tasks += make_tasks(model, specs, noise_scales=scales, **{**options, "family": fam})
     keys = [task_key({**t, "model": model}) for t in tasks]  # the parsed model: no second parse per task
-    normalised = {"label": req.label, "model": model.to_dict(), "connectivities": specs, "gate_set": req.gate_set,
+    normalised = {"label": req.label, "model": model.to_dict(), "connectivities": specs, "gate_set": gate_set,
                   "strategy": req.strategy, "profile": profile, "noise_scales": scales, "compile_only": compile_only,
                   "seeds": req.seeds, "family": req.family, "layers": req.layers, "seed": req.seed,
                   "max_order": model.max_order,
@@ -315,7 +316,7 @@ def _targets(req: StudyRequest, settings, model: Model, max_targets: int) -> lis
         specs = [{"family": f, "size": None, "edges": None} for f in BUILTIN_FAMILIES][:max_targets]
     else:
         specs = [_connectivity(i, c, settings, model.num_variables) for i, c in enumerate(conns)]
-    if req.gate_set not in GATE_SETS:
+    if req.gate_set is not None and req.gate_set not in GATE_SETS:
         raise TargetError(f"gate_set: unknown gate set {req.gate_set[:40]!r}; choose one of {', '.join(GATE_SETS)}",
                           field="gate_set")
     return specs
@@ -422,7 +423,7 @@ def form_to_request(fields: Mapping[str, list[str]]) -> dict:
             if v.lower() not in ("true", "false", "1", "0", "yes", "no", "on", "off"):
                 raise ModelError(f"{key}: {v[:40]!r} is not true or false", field=key)
             out[key] = v.lower() in ("true", "1", "yes", "on")
-        elif key in ("model_format", "profile", "device", "placement") and v == "":
+        elif key in ("model_format", "profile", "device", "placement", "gate_set") and v == "":
             continue
         elif key == "fit":  # the form's fit field is the loss (kl | mmd); the other fit options keep their defaults
             if v:

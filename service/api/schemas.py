@@ -79,7 +79,7 @@ class StudyRequest(BaseModel):
     connectivities: list[str | ConnectivitySpec] | None = Field(
         default=None, min_length=1, max_length=64,
         description="default null: every built-in family, sized to the model")
-    gate_set: str = Field(default="cx", max_length=32)
+    gate_set: str | None = Field(default=None, max_length=32)  # None: the device's native gate, else cx
     strategy: Literal[STRATEGIES] = "auto"
     profile: str | dict[str, Any] | list[str | dict[str, Any]] | None = Field(
         default=None, description="a built-in profile name, or a profile object, or a list of them (one study "

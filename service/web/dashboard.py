@@ -496,7 +496,7 @@ def _form_choices() -> dict:
 
 
 _FORM_DEFAULTS = {"connectivities": ["line", "grid", "all-to-all"], "extra_connectivities": "", "profiles": [], "label": "",
-                  "noise_scales": "1", "fidelity_target": "", "compile_only": False, "gate_set": "cx",
+                  "noise_scales": "1", "fidelity_target": "", "compile_only": False, "gate_set": "",
                   "strategy": "auto", "seeds": "5", "layers": "1", "families": ["clique"], "fit": False}
 
 
