@@ -288,3 +288,22 @@ def test_worker_help_names_both_kinds_and_a_bad_count_is_refused(capsys):
     err = io.StringIO()
     assert main(["worker", "sqlite:///x.db", "--nworkers", "0"], err=err) == 2
     assert "--nworkers must be at least 1" in err.getvalue()
+
+
+def test_serve_with_several_api_processes_refuses_a_port_in_use(tmp_path, free_port):
+    # every API process listens with SO_REUSEPORT (socket(7)); a port held by a socket without it
+    # cannot be shared, and serve says so with exit code 2 before starting anything
+    import socket
+
+    port = free_port()
+    holder = socket.socket()
+    holder.bind(("127.0.0.1", port))
+    holder.listen(1)
+    try:
+        env = {**os.environ, "TOPOSCOUT_DATA_DIR": str(tmp_path), "TOPOSCOUT_RUN_WORKERS": "0"}
+        proc = subprocess.run([sys.executable, "-m", "toposcout.service.cli", "serve", "--port", str(port),
+                               "--workers", "2"], env=env, capture_output=True, text=True, timeout=120)
+    finally:
+        holder.close()
+    assert proc.returncode == 2, proc.stderr
+    assert f"127.0.0.1:{port}" in proc.stderr and "--port" in proc.stderr
