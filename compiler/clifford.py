@@ -571,13 +571,13 @@ def _weighted_figures(tally: Tally, rel_se: float) -> dict[str, Any]:
     state = ParityEstimate.from_dict(tally.weighted["state"])
     readout = tally.weighted["readout"]
     f, se = tally.scale * state.value, tally.scale * state.se
-    if readout is None:
+    ro = None if readout is None else ParityEstimate.from_dict(readout)
+    if ro is None:
         fr, ser = f, se
     else:
-        ro = ParityEstimate.from_dict(readout)
         fr = f * ro.value
         ser = math.hypot(se * ro.value, f * ro.se)
-    exact = state.exact and (readout is None or ParityEstimate.from_dict(readout).exact)
+    exact = state.exact and (ro is None or ro.exact)
     return {
         "clifford_estimator": "exact stabilizer average" if exact else "weighted stabilizer average",
         "clifford_samples": state.samples,

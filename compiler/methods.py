@@ -196,8 +196,8 @@ def plan_method(sched: Scheduled, profile: DeviceProfile, *, method: str = "auto
     traj_est: float | None = None
     # saving the variables' 2^k probabilities costs about two statevector trajectories
     # (measured on a 20-variable chain: 0.69 s against 0.29 s), for the trajectories that save it
-    dist_n = 0 if k > T.DISTRIBUTION_MAX_VARIABLES else (
-        n_traj if k <= T.DISTRIBUTION_CAP_FROM_VARIABLES else min(n_traj, T.DISTRIBUTION_TRAJECTORIES))
+    dist_cap = T.distribution_cap(k)
+    dist_n = 0 if k > T.DISTRIBUTION_MAX_VARIABLES else n_traj if dist_cap is None else min(n_traj, dist_cap)
     mps_dist_seconds = dist_n * 2 * trajectory_cost(n, ops)
 
     def traj_estimate() -> float:
@@ -210,14 +210,6 @@ def plan_method(sched: Scheduled, profile: DeviceProfile, *, method: str = "auto
                 traj_est = per * n_traj + mps_dist_seconds
         return traj_est
 
-    if mps_pilot_seconds is not None:
-        pilot_cache: list[float] = []
-
-        def measured_pilot(_pilot=mps_pilot_seconds) -> float:
-            if not pilot_cache:
-                pilot_cache.append(_pilot())
-            return pilot_cache[0]
-        mps_pilot_seconds = measured_pilot
     if (sv_fits and n >= MPS_PREFERRED_FROM_QUBITS and mps_pilot_seconds is not None
             and (method == "trajectories" or (method == "auto" and not dm_ok))):
         # a weakly entangled circuit (the pilot's bond stayed below its cap) runs far cheaper as

@@ -108,14 +108,10 @@ class ParityProblem:
             if v:
                 pivots[v.bit_length() - 1] = (v, combo ^ (1 << len(pivots)))
         self.rank = len(pivots)
-        coords = [_reduce(v, pivots)[1] for v in vs]
-        self.coords = np.zeros((len(vs), self.rank), dtype=np.uint8)
-        for j, c in enumerate(coords):
-            for i in range(self.rank):
-                if c >> i & 1:
-                    self.coords[j, i] = 1
-        # the combination masks of each pivot refer to basis vectors in insertion order, which is
-        # the heavy-first order; coordinate i is basis vector i.
+        # coordinate i of a symptom is its share of basis vector i (inserted heavy-first)
+        combos = [_reduce(v, pivots)[1] for v in vs]
+        self.coords = np.array([[(c >> i) & 1 for i in range(self.rank)] for c in combos],
+                               dtype=np.uint8).reshape(len(vs), self.rank)
 
     @property
     def mechanisms(self) -> int:
@@ -124,23 +120,25 @@ class ParityProblem:
     def no_fire_log_probability(self) -> float:
         """log of the probability that no mechanism fires (the "no error" term, a lower
         bound of F when every c_j <= 1)."""
-        c = np.exp(self.log_c)
-        p = np.clip((1 - c) / 2, 0.0, 1.0)
-        return float(np.sum(np.log1p(-np.minimum(p, 1 - 1e-300))))
+        # 1 - p = (1 + c) / 2; a factor c > 1 (a "negative probability") counts as never firing
+        return float(np.sum(np.log((1 + np.minimum(np.exp(self.log_c), 1.0)) / 2)))
 
 
 def _reduce(v: int, pivots: dict[int, tuple[int, int]]) -> tuple[int, int]:
-    combo = 0
+    """(residual, combination): ``v`` with every bit that has a pivot cleared by XOR with that
+    pivot's vector (highest first; a pivot's vector has no bit above its pivot), and the mask of
+    basis vectors those pivot vectors add up to. ``v`` is in the span when the residual is 0."""
+    combo = residual = 0
     while v:
         top = v.bit_length() - 1
-        if top not in pivots:
-            # lower bits may still be reducible: clear this bit only if a pivot exists below
-            rest, c2 = _reduce(v & ~(1 << top), pivots)
-            return (1 << top) | rest, combo ^ c2
-        rv, rc = pivots[top]
-        v ^= rv
-        combo ^= rc
-    return 0, combo
+        if top in pivots:
+            rv, rc = pivots[top]
+            v ^= rv
+            combo ^= rc
+        else:
+            residual |= 1 << top
+            v ^= 1 << top
+    return residual, combo
 
 
 @dataclass

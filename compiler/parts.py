@@ -135,9 +135,9 @@ def plan_row(task: Mapping[str, Any], parts: int) -> dict[str, Any]:
                               "seed_offset": p * cap, "max_trajectories": cap, "n_trajectories": counts[p],
                               "precision": prec, "trajectory_method": plan.trajectory_method,
                               "time_budget_seconds": left,
-                              # the first 128 trajectories of the row save the full distribution,
-                              # shared out so that splitting does not multiply that cost
-                              "distribution_trajectories": int(math.ceil(T.DISTRIBUTION_TRAJECTORIES / parts))})
+                              # the row's full-distribution saves are shared out, so that
+                              # splitting does not multiply that cost
+                              "distribution_trajectories": T.distribution_cap(len(sched.measured), parts)})
     else:
         from toposcout.compiler.clifford import part_seed
 
@@ -176,9 +176,7 @@ def run_part(part: Mapping[str, Any]) -> dict[str, Any]:
                                      time_budget_seconds=part["time_budget_seconds"],
                                      memory_budget_bytes=M._memory_budget(t), seed=part["seed"],
                                      seed_offset=part["seed_offset"], method=part["trajectory_method"],
-                                     distribution_trajectories=(part.get("distribution_trajectories") if
-                                                                len(ansatz.model.variables) >
-                                                                T.DISTRIBUTION_CAP_FROM_VARIABLES else None), **kw)
+                                     distribution_trajectories=part.get("distribution_trajectories"), **kw)
             return {**head, "result": run}
         if part["kind"] == "clifford":
             from toposcout.compiler.clifford import clifford_tally

@@ -63,6 +63,7 @@ __all__ = [
     "STATEVECTOR_MAX_QUBITS",
     "DISTRIBUTION_MAX_VARIABLES",
     "DISTRIBUTION_TRAJECTORIES",
+    "distribution_cap",
     "GROUPS",
     "DEFAULT_PRECISION",
     "MAX_TRAJECTORIES",
@@ -219,6 +220,15 @@ def _run_shots(sim: AerSimulator, circ, shots: int, seed: int):
     return result
 
 
+def distribution_cap(k: int, parts: int = 1) -> int | None:
+    """Trajectories (of one of ``parts`` parts of a row) that save the full distribution of ``k``
+    variables with matrix product states: all (None) up to
+    :data:`DISTRIBUTION_CAP_FROM_VARIABLES`, else :data:`DISTRIBUTION_TRAJECTORIES` shared out."""
+    if k <= DISTRIBUTION_CAP_FROM_VARIABLES:
+        return None
+    return int(math.ceil(DISTRIBUTION_TRAJECTORIES / parts))
+
+
 def run_trajectories(sched: Scheduled, profile: DeviceProfile, cliques: Sequence[Sequence[int]],
                      switches: NoiseSwitches = NoiseSwitches(), *, ideal_amplitudes: np.ndarray | None = None,
                      ideal_mps=None, n_trajectories: int | None = None, precision: float | None = None,
@@ -237,8 +247,7 @@ def run_trajectories(sched: Scheduled, profile: DeviceProfile, cliques: Sequence
     of the unsplit run, so parts of one row given offsets ``p * cap`` (cap: each part's
     ``max_trajectories``) take consecutive, non-overlapping seed ranges.
     ``distribution_trajectories``: with MPS, how many trajectories save the variables' full
-    distribution (default: :data:`DISTRIBUTION_TRAJECTORIES` above
-    :data:`DISTRIBUTION_CAP_FROM_VARIABLES` variables, else all)."""
+    distribution (default: :func:`distribution_cap`)."""
     n, k = sched.num_qubits, len(sched.measured)
     method = method or trajectory_method_for(n)
     if n_trajectories is None and precision is None:
@@ -274,8 +283,8 @@ def run_trajectories(sched: Scheduled, profile: DeviceProfile, cliques: Sequence
         if with_dist:
             plain = circ.copy()
             circ.save_probabilities(qubits=list(sched.measured), label="p", pershot=True)
-            if distribution_trajectories is None and k > DISTRIBUTION_CAP_FROM_VARIABLES:
-                distribution_trajectories = DISTRIBUTION_TRAJECTORIES
+            if distribution_trajectories is None:
+                distribution_trajectories = distribution_cap(k)
         sim = AerSimulator(method="matrix_product_state", noise_model=nm, max_parallel_threads=max_parallel_threads,
                            matrix_product_state_max_bond_dimension=max_bond,
                            matrix_product_state_truncation_threshold=MPS_TRUNCATION)
