@@ -13,8 +13,6 @@ from __future__ import annotations
 import argparse
 import io
 import json
-import math
-import random
 import sys
 import tempfile
 import time
@@ -65,42 +63,11 @@ def in_process() -> None:
 
 def placement_gain(cases: int = 32) -> None:
     """ESP(error-aware) / ESP(count-only) on seeded random devices (the check of tests/test_devices.py)."""
-    from toposcout.compiler.ansatz import build_ansatz
-    from toposcout.compiler.compile import compile_ansatz
-    from toposcout.compiler.devices import parse_device
-    from toposcout.compiler.model import parse_model
-    from toposcout.compiler.regions import compiled_esp
-    from toposcout.compiler.targets import get_gate_set, make_connectivity
+    from toposcout.compiler import regions
 
-    rng = random.Random(2026)
     out = {"generic": [], "structured": []}
-    for k in range(cases):
-        fam, size = rng.choice([("grid", "3x3"), ("grid", "3x4"), ("ring", "8"), ("line", "7"), ("heavy-hex", "3")])
-        conn = make_connectivity(fam, 1, size=size)
-        qubits = []
-        for q in range(conn.num_qubits):
-            t1 = 120 * math.exp(rng.gauss(0, 0.4)) * (0.15 if rng.random() < 0.1 else 1)
-            qubits.append({"index": q, "t1_us": t1, "t2_us": min(t1 * 0.8 * math.exp(rng.gauss(0, 0.3)), 1.9 * t1),
-                           "one_qubit_error": min(3e-4 * math.exp(rng.gauss(0, 0.5)), 0.1),
-                           "p1_given_0": min(0.012 * math.exp(rng.gauss(0, 0.6)), 0.4),
-                           "p0_given_1": min(0.025 * math.exp(rng.gauss(0, 0.6)) * (5 if rng.random() < 0.1 else 1),
-                                             0.5)})
-        couplers = [{"qubits": list(e), "two_qubit_error": min(8e-3 * math.exp(rng.gauss(0, 0.5))
-                                                               * (8 if rng.random() < 0.1 else 1), 0.3)}
-                    for e in conn.edges]
-        dev = parse_device({"name": "r", "qubits": conn.num_qubits, "edges": [list(e) for e in conn.edges],
-                            "base": "superconducting", "defaults": {"two_qubit_error": 0.005},
-                            "coupler": couplers, "qubit": qubits})
-        n = rng.randint(3, 5)
-        v = [f"x{i}" for i in range(n)]
-        cl = [[v[i], v[i + 1]] for i in range(n - 1)]
-        if rng.random() < 0.5:
-            cl.append(rng.sample(v, 3))
-        ans = build_ansatz(parse_model({"variables": v, "cliques": cl}))
-        st = ("structured", "generic")[k % 2]
-        a = compile_ansatz(ans, dev.connectivity, get_gate_set("cx"), strategy=st, seeds=1, profile=dev.profile)
-        c = compile_ansatz(ans, dev.connectivity, get_gate_set("cx"), strategy=st, seeds=1)
-        out[st].append(compiled_esp(a, dev.profile) / compiled_esp(c, dev.profile))
+    for strategy, ratio in regions.placement_gain(cases, seed=2026):
+        out[strategy].append(ratio)
     for st, r in out.items():
         r = np.array(r)
         print(f"{st:<10} ESP(errors)/ESP(count) over {len(r)} random devices: min {r.min():.3f}, "
