@@ -118,16 +118,22 @@ def healthz_during(url: str, body: dict, probes: int = 40) -> list[float]:
     for t in threads:
         t.start()
     time.sleep(0.2)
+    lat = probe_healthz(url, probes, pause=0.02)
+    stop.set()
+    for t in threads:
+        t.join()
+    return lat
+
+
+def probe_healthz(url: str, probes: int, *, pause: float) -> list[float]:
+    """Seconds of ``probes`` sequential ``GET /healthz``, ``pause`` s apart."""
     lat = []
     with httpx.Client(base_url=url, timeout=10) as c:
         for _ in range(probes):
             t0 = time.perf_counter()
             c.get("/healthz")
             lat.append(time.perf_counter() - t0)
-            time.sleep(0.02)
-    stop.set()
-    for t in threads:
-        t.join()
+            time.sleep(pause)
     return lat
 
 
@@ -163,14 +169,8 @@ def healthz_while_worst(url: str, clients: int, probes: int) -> list[float]:
     proc = ctx.Process(target=_hammer_worst, args=(url, clients, stop))
     proc.start()
     time.sleep(1.0)
-    lat = []
     try:
-        with httpx.Client(base_url=url, timeout=10) as c:
-            for _ in range(probes):
-                t0 = time.perf_counter()
-                c.get("/healthz")
-                lat.append(time.perf_counter() - t0)
-                time.sleep(0.05)
+        lat = probe_healthz(url, probes, pause=0.05)
     finally:
         stop.set()
         proc.join(60)

@@ -11,7 +11,7 @@ from __future__ import annotations
 import abc
 from typing import Any, Mapping
 
-__all__ = ["Executor", "failure_row", "timeout_message", "TaskTimeout", "WorkerDied"]
+__all__ = ["Executor", "failure_row", "timeout_message", "row_parts", "TaskTimeout", "WorkerDied"]
 
 
 class Executor(abc.ABC):
@@ -60,3 +60,11 @@ class WorkerDied(Exception):
 def timeout_message(limit: float) -> str:
     return (f"the task ran past the time limit of {limit:g} s and was stopped; use a smaller model, fewer seeds "
             f"or compile-only, or ask for a larger TOPOSCOUT_TASK_TIME_LIMIT_SECONDS")
+
+
+def row_parts(slots: int, rows: int) -> int:
+    """Parts a row is split into (``toposcout.compiler.parts``): ``slots // rows`` for ``rows``
+    rows running or waiting (the row itself included), at least 1: when every slot already has
+    a row of its own, no row is split. The one rule of the CLI pool, the local and the Dask
+    executors."""
+    return max(1, slots // max(rows, 1))

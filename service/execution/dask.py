@@ -59,7 +59,7 @@ from typing import Any, Mapping
 from toposcout.compiler.errors import CapacityError, ToposcoutError
 from toposcout.compiler.simulate import MEMORY_FRACTION, check_memory
 from toposcout.compiler.study import run_task
-from toposcout.service.execution.base import Executor, failure_row, timeout_message
+from toposcout.service.execution.base import Executor, failure_row, row_parts, timeout_message
 
 __all__ = ["DaskExecutor", "run_task_split", "task_key_for", "worker_memory_budget", "precheck_memory", "run_worker",
            "parse_memory"]
@@ -487,7 +487,7 @@ class DaskExecutor(Executor):
         threads, _budget = self.cluster_info()
         with self._lock:
             rows = len(self._backlog) + len(self._running) + 1
-        return max(1, threads // rows)
+        return row_parts(threads, rows)
 
     def _drain_done(self) -> None:
         while True:

@@ -18,17 +18,17 @@ killed worker's tasks are taken again when their leases expire.
 from __future__ import annotations
 
 import collections
-import concurrent.futures
 import logging
 import multiprocessing
 import os
 import threading
 import time
-from concurrent.futures import Future
+from concurrent.futures import Future, wait
 from dataclasses import dataclass, field
 from typing import Any
 
-from toposcout.service.execution.base import Executor, TaskTimeout, WorkerDied, failure_row, timeout_message
+from toposcout.service.execution.base import (Executor, TaskTimeout, WorkerDied, failure_row, row_parts,
+                                               timeout_message)
 from toposcout.service.execution.threads import threads_per_worker
 from toposcout.compiler.study import task_key
 from toposcout.service.execution.child import worker_main as _worker_main
@@ -315,11 +315,11 @@ class LocalExecutor(Executor):
     # --- a row split into parts -------------------------------------------------------
     def _parts_for(self, item: _QueuedTask) -> int:
         """Parts for ``item``: workers // (rows running or waiting), as the CLI's pool does."""
-        if not self.split_rows or item.task.get("compile_only") or self.workers < 2:
+        if not self.split_rows or item.task.get("compile_only"):
             return 1
         with self._cv:
             rows = len(self._running) + sum(1 for q in self._queue if isinstance(q, _QueuedTask))
-        return max(1, self.workers // max(rows, 1))
+        return row_parts(self.workers, rows)
 
     def _compute(self, worker: _Worker, item: _QueuedTask) -> dict | None:
         """The row of ``item``: whole, or planned, run in parts on every idle slot (this one
@@ -358,7 +358,7 @@ class LocalExecutor(Executor):
     def _wait_parts(self, steps: list[_PartItem], stop) -> list[dict] | None:
         futures = [s.result for s in steps]
         while True:
-            done, _ = concurrent.futures.wait(futures, timeout=0.5)
+            done, _ = wait(futures, timeout=0.5)
             if len(done) == len(futures):
                 results = [f.result() for f in futures]  # raises a part's TaskTimeout / WorkerDied
                 return None if any(r is None for r in results) else results

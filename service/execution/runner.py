@@ -17,6 +17,7 @@ from multiprocessing import get_context
 from typing import Callable, Sequence
 
 from toposcout.compiler.study import run_task
+from toposcout.service.execution.base import row_parts
 from toposcout.service.execution.threads import default_workers, limit_threads, threads_per_worker
 
 __all__ = ["run_tasks", "parts_per_row"]
@@ -26,9 +27,7 @@ def parts_per_row(tasks: Sequence[dict], workers: int) -> int:
     """Parts each simulating row is split into: workers // simulating rows when there are
     fewer such rows than workers, else 1 (every worker already has a row of its own)."""
     simulate = sum(1 for t in tasks if not t.get("compile_only"))
-    if workers <= 1 or simulate == 0 or simulate >= workers:
-        return 1
-    return workers // simulate
+    return row_parts(workers, simulate) if simulate else 1
 
 
 def run_tasks(
