@@ -266,11 +266,6 @@ def test_noiseless_twin_returns_every_shot():
 
 
 # --- (d) no returns: an upper bound, never 0 -------------------------------------------
-def _chain(n: int) -> dict:
-    v = [f"x{i}" for i in range(n)]
-    return {"name": f"chain{n}", "variables": v, "cliques": [v[i:i + 2] for i in range(n - 1)]}
-
-
 @pytest.mark.parametrize("shots", [1, 10, 300, 5000])
 def test_no_returns_give_the_clopper_pearson_upper_bound(shots):
     f, se, upper = C.fidelity_from_counts(0, shots)
@@ -281,9 +276,9 @@ def test_no_returns_give_the_clopper_pearson_upper_bound(shots):
         assert f == pytest.approx(3 / shots, rel=0.01)   # the rule of three
 
 
-def test_a_row_with_no_returns_reports_an_upper_bound():
+def test_a_row_with_no_returns_reports_an_upper_bound(chain_model):
     # 20 variables under 20x noise: F ~ 2^-20, 200 shots return none
-    m = parse_model(_chain(20))
+    m = parse_model(chain_model(20))
     ansatz = build_ansatz(m, seed=0)
     compiled = compile_ansatz(ansatz, make_connectivity("line", 20), get_gate_set("cx"), strategy="structured",
                               seeds=1)

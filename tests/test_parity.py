@@ -107,11 +107,6 @@ def test_weighted_parts_merge_to_one_estimate():
         _ = both + P.ParityEstimate(0.5, 0.0, True)
 
 
-def _chain(n: int) -> dict:
-    v = [f"x{i}" for i in range(n)]
-    return {"name": f"chain{n}", "variables": v, "cliques": [v[i:i + 2] for i in range(n - 1)]}
-
-
 def _sched(model: dict, connectivity: str, n: int, profile):
     m = parse_model(model)
     compiled = compile_ansatz(build_ansatz(m, seed=0), make_connectivity(connectivity, n), get_gate_set("cx"),
@@ -120,10 +115,10 @@ def _sched(model: dict, connectivity: str, n: int, profile):
 
 
 @pytest.mark.parametrize("switches", [NoiseSwitches(), NoiseSwitches().without("idle")], ids=["all", "no-idle"])
-def test_stabilizer_average_agrees_with_counted_returns_on_the_same_twin(switches):
+def test_stabilizer_average_agrees_with_counted_returns_on_the_same_twin(switches, chain_model):
     # 10 variables on a line (rank <= 20: exact) against stim's shot sampler on the same twin
     profile = load_profile("superconducting", noise_scale=3.0)
-    sched = _sched(_chain(10), "line", 10, profile)
+    sched = _sched(chain_model(10), "line", 10, profile)
     avg = C.clifford_figures(sched, profile, switches, estimator="weighted")
     shots = C.clifford_figures(sched, profile, switches, estimator="returns", rel_se=0.01, seed=3)
     assert avg["clifford_estimator"] == "exact stabilizer average"
@@ -148,11 +143,11 @@ def test_weighted_average_agrees_with_counted_returns_at_24_variables():
         avg["clifford_state_fidelity"], shots["clifford_state_fidelity"])
 
 
-def test_auto_estimator_gives_a_figure_where_no_shot_would_return():
+def test_auto_estimator_gives_a_figure_where_no_shot_would_return(chain_model):
     # 20 variables under 20x noise: F ~ 1e-4, counting would need ~1e7 shots; the weighted
     # average gives a figure with its standard error (not an upper bound), and a budget
     profile = load_profile("superconducting", noise_scale=20.0)
-    sched = _sched(_chain(20), "line", 20, profile)
+    sched = _sched(chain_model(20), "line", 20, profile)
     est = C.clifford_figures(sched, profile)
     assert est["clifford_estimator"] != "counted returns" and est["clifford_upper_bound"] is False
     assert est["clifford_state_fidelity"] < 1e-3
